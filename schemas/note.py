@@ -1,0 +1,244 @@
+"""The note contract: one Nd:YAG posterior capsulotomy session, as the sender gives it.
+
+The models check shape and type only (what a value *is*). Ranges that a site may tune, and
+every rule that spans several fields, live in service.rules so that they can come back as
+findings with a source, not as bare parse errors. Field names are plain English or the
+trade's own terms; see schemas/README.md for the contract's rules.
+"""
+
+from __future__ import annotations
+
+from datetime import date
+from typing import Annotated, Literal
+
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StringConstraints
+
+Text = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=200)]
+Uri = Annotated[
+    str, StringConstraints(strip_whitespace=True, min_length=3, max_length=255, pattern=r"^\S+$")
+]
+IdValue = Annotated[
+    str, StringConstraints(strip_whitespace=True, min_length=1, max_length=64, pattern=r"^\S+$")
+]
+
+Eye = Literal["right", "left"]
+IopMethod = Literal["applanation", "rebound", "non-contact", "other"]
+# "qualitative" takes CF, HM, LP or NLP: recorded as entered, with no logMAR.
+AcuityNotation = Literal["snellen-metric", "snellen-imperial", "decimal", "logmar", "qualitative"]
+AcuityCorrection = Literal["best-corrected", "habitual", "uncorrected", "pinhole"]
+GlaucomaSeverity = Literal["none", "suspect", "mild", "moderate", "advanced"]
+IolMaterial = Literal["hydrophobic-acrylic", "hydrophilic-acrylic", "silicone", "pmma", "other"]
+IolPosition = Literal["bag", "sulcus"]
+FocusMethod = Literal["posterior-offset", "manual-behind-capsule"]
+OpeningPattern = Literal["cruciate", "circular", "other"]
+Outcome = Literal["complete", "partial", "failed"]
+ComplicationKind = Literal[
+    "iol-pit", "iris-bleeding", "iop-spike", "vitreous-in-anterior-chamber", "other"
+]
+DropTiming = Literal["before", "after", "both"]
+NoteStatus = Literal["draft", "final"]
+
+
+class Contract(BaseModel):
+    """Base for every part of the note: unknown fields are refused, not dropped."""
+
+    # strict: "2" is not a number and "yes" is not a boolean; notes are parsed from JSON, where
+    # strict mode still reads dates and date-times from their ISO strings.
+    model_config = ConfigDict(extra="forbid", frozen=True, strict=True, allow_inf_nan=False)
+
+
+class Identifier(Contract):
+    """A business identifier: the namespace (a URI) and the value inside it."""
+
+    system: Uri
+    value: IdValue
+
+
+class Clinician(Contract):
+    """The clinician who performed the laser session."""
+
+    identifier: Identifier
+    name: Text
+
+
+class Location(Contract):
+    """Where the session took place."""
+
+    name: Text
+    identifier: Identifier | None = None
+
+
+class Consent(Contract):
+    """Whether consent was given, and when it was recorded."""
+
+    given: bool
+    recorded_at: AwareDatetime | None = None
+
+
+class VisualAcuity(Contract):
+    """Visual acuity as entered; logMAR is derived, never asked for twice."""
+
+    notation: AcuityNotation
+    value: Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=16)]
+    correction: AcuityCorrection = "best-corrected"
+
+
+class IopReading(Contract):
+    """One intraocular pressure reading."""
+
+    value_mmhg: float
+    method: IopMethod
+    measured_at: AwareDatetime | None = None
+
+
+class TimedIopReading(IopReading):
+    """A post-laser IOP reading: its time is required, so the rise can be dated."""
+
+    measured_at: AwareDatetime
+
+
+class Iol(Contract):
+    """The intraocular lens behind the capsule."""
+
+    optic_diameter_mm: float = 6.0
+    optic_material: IolMaterial | None = None
+    position: IolPosition = "bag"
+
+
+class RiskFactors(Contract):
+    """Risk factors for retinal detachment, CME and IOP rise; absent means not present."""
+
+    glaucoma: GlaucomaSeverity = "none"
+    high_myopia: bool = False
+    axial_length_mm: float | None = None
+    uveitis: bool = False
+    diabetic_macular_oedema: bool = False
+    retinal_detachment_this_eye: bool = False
+    retinal_detachment_fellow_eye: bool = False
+    lattice_degeneration: bool = False
+    vitreous_loss_at_cataract_surgery: bool = False
+
+
+class BeforeLaser(Contract):
+    """Findings before the laser."""
+
+    iop: IopReading
+    visual_acuity: VisualAcuity | None = None
+    pupil_dilated: bool
+    iol: Iol = Iol()
+    cataract_surgery_date: date | None = None
+    risk_factors: RiskFactors = RiskFactors()
+
+
+class Series(Contract):
+    """One run of pulses at one energy setting."""
+
+    energy_mj: float
+    pulses: int
+
+
+class Focus(Contract):
+    """Where the treatment beam was focused relative to the capsule."""
+
+    method: FocusMethod
+    distance_mm: float | None = None
+
+
+class ContactLens(Contract):
+    """Whether a capsulotomy contact lens was used, and its cone angle if known."""
+
+    used: bool
+    cone_angle_deg: float | None = None
+
+
+class LaserSettings(Contract):
+    """The laser and how it was used."""
+
+    wavelength_nm: float = 1064.0
+    series: Annotated[list[Series], Field(min_length=1, max_length=50)]
+    focus: Focus | None = None
+    pattern: OpeningPattern
+    pattern_text: Text | None = None
+    contact_lens: ContactLens
+    reported_total_energy_mj: float | None = None
+
+
+class Opening(Contract):
+    """The capsule opening: one diameter (round) or two axes (horizontal, vertical)."""
+
+    horizontal_mm: float
+    vertical_mm: float | None = None
+    centred: bool = True
+
+
+class PitPosition(Contract):
+    """An IOL pit's place on the optic, from its centre (x to the patient's right, y up)."""
+
+    x_mm: float
+    y_mm: float
+
+
+class Complication(Contract):
+    """A complication seen during or right after the laser."""
+
+    kind: ComplicationKind
+    on_visual_axis: bool | None = None
+    positions: Annotated[list[PitPosition], Field(max_length=50)] = []
+    text: Text | None = None
+
+
+class Result(Contract):
+    """What came of the laser."""
+
+    outcome: Outcome
+    opening: Opening | None = None
+    complications: Annotated[list[Complication], Field(max_length=20)] = []
+    iop_after: Annotated[list[TimedIopReading], Field(max_length=20)] = []
+    visual_acuity_after: VisualAcuity | None = None
+
+
+class ClinicDrop(Contract):
+    """An IOP prophylaxis drop given in clinic."""
+
+    agent: Text
+    strength_percent: float | None = None
+    timing: DropTiming
+
+
+class HomeDrop(Contract):
+    """Drops the patient takes home."""
+
+    agent: Text
+    strength_percent: float | None = None
+    times_per_day: int
+    days: int
+
+
+class Plan(Contract):
+    """What happens next."""
+
+    prophylaxis: Annotated[list[ClinicDrop], Field(max_length=10)] = []
+    take_home: Annotated[list[HomeDrop], Field(max_length=10)] = []
+    iop_recheck_minutes: int | None = None
+    review_days: int | None = None
+    rd_warning_given: bool
+    further_session_planned: bool = False
+
+
+class Note(Contract):
+    """One laser session on one eye: the whole note as it comes in."""
+
+    note_id: Identifier
+    patient: Identifier
+    encounter: Identifier | None = None
+    performer: Clinician
+    location: Location
+    started_at: AwareDatetime
+    ended_at: AwareDatetime | None = None
+    consent: Consent
+    eye: Eye
+    before: BeforeLaser
+    laser: LaserSettings
+    result: Result
+    plan: Plan
+    status: NoteStatus

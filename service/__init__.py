@@ -1,0 +1,1 @@
+"""Capnote: structured, checked FHIR R4 records of Nd:YAG posterior capsulotomy."""

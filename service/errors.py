@@ -1,0 +1,77 @@
+"""The one exception tree of capnote.
+
+    CapnoteError             (500, exception)   base; never raised bare
+    ├── InputError           (422, invalid)     a payload capnote cannot accept; has findings
+    ├── NotFoundError        (404, not-found)   no such record
+    ├── ConflictError        (409, conflict)    same identifier, different content
+    ├── PolicyError          (500, invalid)     the site policy file is unusable
+    └── UnavailableError     (503, transient)   a dependency (database, receiver) is down
+
+Each class carries a stable code, the HTTP status and the FHIR issue type, so that the one
+mapping to OperationOutcome (service.fhir.outcome) needs no per-class branches. Messages
+never contain patient data: they name fields and rules, not what a patient's record holds.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import TYPE_CHECKING, ClassVar
+
+if TYPE_CHECKING:
+    from service.findings import Finding
+
+
+class CapnoteError(Exception):
+    """Base of every error capnote raises on purpose."""
+
+    code: ClassVar[str] = "internal"
+    http_status: ClassVar[int] = 500
+    issue_type: ClassVar[str] = "exception"
+
+    def __init__(self, message: str) -> None:
+        super().__init__(message)
+        self.message = message
+
+
+class InputError(CapnoteError):
+    """The payload breaks the contract or a blocking rule; the findings say where."""
+
+    code = "input-invalid"
+    http_status = 422
+    issue_type = "invalid"
+
+    def __init__(self, message: str, findings: Sequence[Finding]) -> None:
+        super().__init__(message)
+        self.findings = tuple(findings)
+
+
+class NotFoundError(CapnoteError):
+    """The record asked for does not exist."""
+
+    code = "not-found"
+    http_status = 404
+    issue_type = "not-found"
+
+
+class ConflictError(CapnoteError):
+    """The identifier is taken by different content."""
+
+    code = "conflict"
+    http_status = 409
+    issue_type = "conflict"
+
+
+class PolicyError(CapnoteError):
+    """The site policy cannot be read or breaks the policy schema."""
+
+    code = "policy-invalid"
+    http_status = 500
+    issue_type = "invalid"
+
+
+class UnavailableError(CapnoteError):
+    """A dependency is down; the caller may retry."""
+
+    code = "unavailable"
+    http_status = 503
+    issue_type = "transient"

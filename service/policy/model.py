@@ -1,0 +1,189 @@
+"""The site policy as typed data: limits (errors), thresholds (warnings), schedule and calendar.
+
+Every value carries its source so that a finding can say where its threshold came from.
+"""
+
+from __future__ import annotations
+
+from datetime import date, time
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field, model_validator
+
+Weekday = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
+WEEKDAYS: tuple[Weekday, ...] = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
+
+
+class PolicyPart(BaseModel):
+    """Base of every policy table: unknown keys are refused so typos cannot pass silently."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class Range(PolicyPart):
+    """An allowed range; ``above`` is an exclusive lower bound (for "must be more than 0")."""
+
+    min: float | None = None
+    above: float | None = None
+    max: float | None = None
+    unit: str
+    source: str
+
+    def contains(self, value: float) -> bool:
+        """True when value lies inside the range."""
+        if self.min is not None and value < self.min:
+            return False
+        if self.above is not None and value <= self.above:
+            return False
+        return not (self.max is not None and value > self.max)
+
+    def describe(self) -> str:
+        """The range in words, with its unit, for findings."""
+        parts: list[str] = []
+        if self.min is not None:
+            parts.append(f">= {self.min:g}")
+        if self.above is not None:
+            parts.append(f"> {self.above:g}")
+        if self.max is not None:
+            parts.append(f"<= {self.max:g}")
+        return " and ".join(parts) + f" {self.unit}"
+
+
+class Number(PolicyPart):
+    """One threshold value."""
+
+    value: float
+    unit: str
+    source: str
+
+
+class Bands(PolicyPart):
+    """Ascending cut points that split a scale into bands."""
+
+    values: list[float] = Field(min_length=1)
+    unit: str
+    source: str
+
+    @model_validator(mode="after")
+    def _ascending(self) -> Bands:
+        if sorted(self.values) != self.values:
+            raise ValueError("band cut points must ascend")
+        return self
+
+
+class Choice(PolicyPart):
+    """A set of codes a rule treats alike."""
+
+    values: list[str]
+    source: str
+
+
+class Tolerance(PolicyPart):
+    """How far a reported figure may stray from the computed one: the larger of the two."""
+
+    percent: float = Field(ge=0)
+    mj: float = Field(ge=0)
+    source: str
+
+
+class Limits(PolicyPart):
+    """Hard limits: a value outside is an error."""
+
+    iop_mmhg: Range
+    pulse_energy_mj: Range
+    pulses_per_series: Range
+    wavelength_nm: Range
+    focus_distance_mm: Range
+    cone_angle_deg: Range
+    opening_mm: Range
+    iol_optic_mm: Range
+    axial_length_mm: Range
+    logmar: Range
+    drop_strength_percent: Range
+    drop_times_per_day: Range
+    drop_days: Range
+    iop_recheck_minutes: Range
+    review_days: Range
+    future_tolerance_minutes: Number
+    total_energy_tolerance: Tolerance
+
+
+class Thresholds(PolicyPart):
+    """Clinical thresholds: crossing one is a warning."""
+
+    wavelength_nm: Number
+    usual_pulse_energy_max_mj: Number
+    total_energy_bands_mj: Bands
+    glaucoma_total_energy_mj: Number
+    iop_rise_moderate_mmhg: Number
+    iop_rise_severe_mmhg: Number
+    iop_high_mmhg: Number
+    iop_normal_max_mmhg: Number
+    opening_min_mm: Number
+    posterior_offset_mm: Range
+    manual_focus_mm: Range
+    days_after_cataract_surgery: Number
+    rd_axial_length_mm: Number
+    cone_angle_without_lens_deg: Number
+    cone_angle_with_lens_deg: Number
+    glaucoma_severities: Choice
+
+
+class Window(PolicyPart):
+    """A due item's window, as offsets from the end of the session."""
+
+    unit: Literal["min", "h", "d"]
+    earliest: int = Field(ge=0)
+    target: int = Field(ge=0)
+    latest: int = Field(ge=0)
+    source: str
+
+    @model_validator(mode="after")
+    def _ordered(self) -> Window:
+        if not self.earliest <= self.target <= self.latest:
+            raise ValueError("a window needs earliest <= target <= latest")
+        return self
+
+
+class NextDayWindow(Window):
+    """The next-day IOP check, with the glaucoma severities that call for it."""
+
+    glaucoma_severities: list[str]
+
+
+class Schedule(PolicyPart):
+    """Follow-up windows."""
+
+    iop_recheck: Window
+    next_day_iop: NextDayWindow
+    review_routine: Window
+    review_raised: Window
+
+
+class CalendarPolicy(PolicyPart):
+    """The clinic's open days and hours."""
+
+    timezone: str
+    holiday_country: str | None
+    holiday_subdivision: str | None = None
+    working_days: list[Weekday] = Field(min_length=1)
+    opens: time
+    closes: time
+    closures: list[date] = []
+    source: str
+
+    @model_validator(mode="after")
+    def _hours(self) -> CalendarPolicy:
+        if self.opens >= self.closes:
+            raise ValueError("the clinic must open before it closes")
+        return self
+
+
+class Policy(PolicyPart):
+    """The whole site policy."""
+
+    policy_name: str
+    limits: Limits
+    thresholds: Thresholds
+    schedule: Schedule
+    calendar: CalendarPolicy

@@ -1,0 +1,281 @@
+"""Clinical checks: settings and findings that should raise a question. Never blocking.
+
+Each threshold comes from the site policy, and each finding names the policy's source.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator
+
+from schemas.note import Note
+from service.derive import (
+    energy_band,
+    iop_course,
+    session_reference,
+    spike_grade,
+    total_energy_mj,
+)
+from service.findings import Finding
+from service.rules.base import Check, Context, above, information, warning
+
+
+def energy(note: Note, ctx: Context) -> Iterator[Finding]:
+    """Pulse energy above the usual, total energy in the higher bands, and in glaucoma."""
+    t = ctx.policy.thresholds
+    usual = t.usual_pulse_energy_max_mj
+    for i, s in enumerate(note.laser.series):
+        if above(s.energy_mj, usual):
+            yield warning(
+                "pulse-energy-above-usual",
+                f"laser.series[{i}].energy_mj",
+                f"pulse energy {s.energy_mj:g} mJ is above the usual {usual.value:g} mJ",
+                "pulse energy is titrated up from a low start",
+                value=s.energy_mj,
+                allowed=f"<= {usual.value:g} mJ",
+                source=usual.source,
+            )
+    total = total_energy_mj(note.laser)
+    band = energy_band(total, t.total_energy_bands_mj)
+    if band.index > 1:
+        yield warning(
+            "total-energy-band",
+            "laser.series",
+            f"total energy {total:g} mJ falls in the higher-risk band {band.label}",
+            "total energy bands for IOP rise and complications",
+            value=total,
+            allowed=f"<= {t.total_energy_bands_mj.values[0]:g} mJ",
+            source=t.total_energy_bands_mj.source,
+        )
+    glaucoma = note.before.risk_factors.glaucoma
+    limit = t.glaucoma_total_energy_mj
+    if glaucoma in t.glaucoma_severities.values and above(total, limit):
+        yield warning(
+            "glaucoma-total-energy",
+            "laser.series",
+            f"total energy {total:g} mJ in a patient with glaucoma ({glaucoma})",
+            f"more than {limit.value:g} mJ is linked with a higher IOP after the laser",
+            value=total,
+            allowed=f"<= {limit.value:g} mJ",
+            source=limit.source,
+        )
+
+
+def wavelength(note: Note, ctx: Context) -> Iterator[Finding]:
+    """A wavelength other than the Nd:YAG line."""
+    expected = ctx.policy.thresholds.wavelength_nm
+    if note.laser.wavelength_nm != expected.value:
+        yield warning(
+            "wavelength-unusual",
+            "laser.wavelength_nm",
+            f"wavelength {note.laser.wavelength_nm:g} nm is not the Nd:YAG {expected.value:g} nm",
+            "posterior capsulotomy uses the Nd:YAG line",
+            value=note.laser.wavelength_nm,
+            allowed=f"{expected.value:g} nm",
+            source=expected.source,
+        )
+
+
+def iop(note: Note, ctx: Context) -> Iterator[Finding]:
+    """IOP rise after the laser, a high reading, and no reading at all."""
+    t = ctx.policy.thresholds
+    if not note.result.iop_after:
+        yield warning(
+            "iop-after-missing",
+            "result.iop_after",
+            "no IOP was measured after the laser",
+            "IOP is checked after the laser; rises peak within hours",
+            source=ctx.policy.schedule.iop_recheck.source,
+        )
+        return
+    course = iop_course(note.before.iop, note.result.iop_after, session_reference(note), t)
+    for change in course.changes:
+        where = f"result.iop_after[{change.reading_index}].value_mmhg"
+        grade = spike_grade(change.change_mmhg, t)
+        if grade in ("moderate", "severe"):
+            threshold = t.iop_rise_severe_mmhg if grade == "severe" else t.iop_rise_moderate_mmhg
+            yield warning(
+                f"iop-rise-{grade}",
+                where,
+                f"IOP rose {change.change_mmhg:g} mmHg above the pre-laser value ({grade})",
+                f"a rise of {threshold.value:g} mmHg or more is a {grade} spike",
+                value=change.value_mmhg,
+                allowed=f"rise < {t.iop_rise_moderate_mmhg.value:g} mmHg",
+                source=threshold.source,
+            )
+        if change.value_mmhg >= t.iop_high_mmhg.value:
+            yield warning(
+                "iop-high",
+                where,
+                f"IOP of {change.value_mmhg:g} mmHg after the laser",
+                f"an IOP of {t.iop_high_mmhg.value:g} mmHg or more is checked again next day",
+                value=change.value_mmhg,
+                allowed=f"< {t.iop_high_mmhg.value:g} mmHg",
+                source=t.iop_high_mmhg.source,
+            )
+
+
+def prophylaxis(note: Note, ctx: Context) -> Iterator[Finding]:
+    """IOP prophylaxis: expected in glaucoma, noted when absent otherwise."""
+    if note.plan.prophylaxis:
+        return
+    t = ctx.policy.thresholds
+    glaucoma = note.before.risk_factors.glaucoma
+    if glaucoma in t.glaucoma_severities.values:
+        yield warning(
+            "glaucoma-no-prophylaxis",
+            "plan.prophylaxis",
+            f"no IOP prophylaxis was given to a patient with glaucoma ({glaucoma})",
+            "IOP-lowering drops around the laser in glaucoma and glaucoma suspects",
+            source=t.glaucoma_severities.source,
+        )
+    else:
+        yield information(
+            "no-prophylaxis",
+            "plan.prophylaxis",
+            "no IOP prophylaxis was given",
+            "apraclonidine or brimonidine before and after the laser blunts the IOP rise",
+            source="Pollack et al., Arch Ophthalmol 1988;106:754; Gartaganis et al., "
+            "Ophthalmic Surg Lasers 1999;30:647",
+        )
+
+
+def optics(note: Note, ctx: Context) -> Iterator[Finding]:
+    """No contact lens; focus outside the usual offsets."""
+    t = ctx.policy.thresholds
+    if not note.laser.contact_lens.used:
+        yield warning(
+            "no-contact-lens",
+            "laser.contact_lens.used",
+            "no capsulotomy contact lens was used",
+            "a converging contact lens steadies the eye and protects the IOL",
+            source="common practice; J Cataract Refract Surg 1990;16:732 (contact lens, low "
+            "energy and focus behind the capsule reduce IOL pitting)",
+        )
+    focus = note.laser.focus
+    if focus is None or focus.distance_mm is None:
+        return
+    usual = t.posterior_offset_mm if focus.method == "posterior-offset" else t.manual_focus_mm
+    if not usual.contains(focus.distance_mm):
+        yield warning(
+            "focus-outside-usual",
+            "laser.focus.distance_mm",
+            f"focus {focus.distance_mm:g} mm ({focus.method}) is outside the usual "
+            f"{usual.describe()}",
+            "focusing just behind the capsule protects the IOL",
+            value=focus.distance_mm,
+            allowed=usual.describe(),
+            source=usual.source,
+        )
+
+
+def opening(note: Note, ctx: Context) -> Iterator[Finding]:
+    """Opening larger than the optic, smaller than usual, or off centre."""
+    found = note.result.opening
+    if found is None:
+        return
+    t = ctx.policy.thresholds
+    optic = note.before.iol.optic_diameter_mm
+    axes = [("horizontal_mm", found.horizontal_mm)]
+    if found.vertical_mm is not None:
+        axes.append(("vertical_mm", found.vertical_mm))
+    for name, size in axes:
+        where = f"result.opening.{name}"
+        if size > optic:
+            yield warning(
+                "opening-larger-than-optic",
+                where,
+                f"the opening ({size:g} mm) is larger than the IOL optic ({optic:g} mm)",
+                "an opening should not exceed the IOL optic",
+                value=size,
+                allowed=f"<= {optic:g} mm",
+                source="from memory: an opening should not exceed the IOL optic (commonly 6 mm)",
+            )
+        if size < t.opening_min_mm.value:
+            yield warning(
+                "opening-small",
+                where,
+                f"the opening ({size:g} mm) is smaller than {t.opening_min_mm.value:g} mm",
+                "the opening should clear the visual axis",
+                value=size,
+                allowed=f">= {t.opening_min_mm.value:g} mm",
+                source=t.opening_min_mm.source,
+            )
+    if not found.centred:
+        yield warning(
+            "opening-off-centre",
+            "result.opening.centred",
+            "the opening is not centred on the visual axis",
+            "the opening is made over the pupil axis",
+            source=t.opening_min_mm.source,
+        )
+
+
+def timing(note: Note, ctx: Context) -> Iterator[Finding]:
+    """Treatment soon after the cataract operation; conditions that argue for deferral."""
+    t = ctx.policy.thresholds
+    surgery = note.before.cataract_surgery_date
+    if surgery is not None:
+        days = (note.started_at.date() - surgery).days
+        if 0 <= days < t.days_after_cataract_surgery.value:
+            yield warning(
+                "soon-after-cataract-surgery",
+                "before.cataract_surgery_date",
+                f"the laser comes {days} days after the cataract operation",
+                f"capsulotomy is usually deferred for {t.days_after_cataract_surgery.value:g} days",
+                value=surgery.isoformat(),
+                allowed=f">= {t.days_after_cataract_surgery.value:g} days before the session",
+                source=t.days_after_cataract_surgery.source,
+            )
+    factors = note.before.risk_factors
+    if factors.uveitis or factors.diabetic_macular_oedema:
+        field = "uveitis" if factors.uveitis else "diabetic_macular_oedema"
+        yield warning(
+            "cme-risk",
+            f"before.risk_factors.{field}",
+            "uveitis or macular oedema raises the risk of cystoid macular oedema",
+            "defer when there is active inflammation or recent CME",
+            source="secondary report: defer with active inflammation or recent CME; "
+            "from memory: uveitis raises CME risk",
+        )
+
+
+def safety_net(note: Note, ctx: Context) -> Iterator[Finding]:
+    """Warning signs, consent and IOL pits on the visual axis."""
+    if not note.plan.rd_warning_given:
+        yield warning(
+            "rd-warning-not-given",
+            "plan.rd_warning_given",
+            "the patient was not told the warning signs of retinal detachment",
+            "tell the patient about flashes, new floaters or a shadow, and whom to call",
+            source="common practice; RD after capsulotomy 0.89 % (Steinberg et al., "
+            "Am J Ophthalmol 1991;112:373)",
+        )
+    if not note.consent.given:
+        yield warning(
+            "consent-not-recorded",
+            "consent.given",
+            "consent is not recorded as given",
+            "consent is taken before the laser",
+            source="common practice",
+        )
+    for i, c in enumerate(note.result.complications):
+        if c.kind == "iol-pit" and c.on_visual_axis:
+            yield warning(
+                "iol-pit-on-axis",
+                f"result.complications[{i}].on_visual_axis",
+                "an IOL pit lies on the visual axis",
+                "pits on the visual axis can cause lasting glare and halos",
+                source="common practice",
+            )
+
+
+CHECKS: Iterable[Check] = (
+    energy,
+    wavelength,
+    iop,
+    prophylaxis,
+    optics,
+    opening,
+    timing,
+    safety_net,
+)
