@@ -5,6 +5,7 @@
     ├── NotFoundError        (404, not-found)   no such record
     ├── ConflictError        (409, conflict)    same identifier, different content
     ├── PolicyError          (500, invalid)     the site policy file is unusable
+    ├── EmissionError        (500, exception)   emitted FHIR broke a required binding (a bug)
     └── UnavailableError     (503, transient)   a dependency (database, receiver) is down
 
 Each class carries a stable code, the HTTP status and the FHIR issue type, so that the one
@@ -67,6 +68,12 @@ class PolicyError(CapnoteError):
     code = "policy-invalid"
     http_status = 500
     issue_type = "invalid"
+
+
+class EmissionError(CapnoteError):
+    """A Bundle about to leave breaks a required binding: a bug in capnote, never sent."""
+
+    code = "emission-invalid"
 
 
 class UnavailableError(CapnoteError):

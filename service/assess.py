@@ -1,0 +1,56 @@
+"""One note through the whole job: check, derive, schedule, emit.
+
+The command line and (later) the REST routes call this and nothing below it, so both give
+the same answer for the same note.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+from schemas.note import Note
+from service.clinic_calendar import ClinicCalendar, PolicyCalendar
+from service.derive import Derived, PriorSession, derive
+from service.fhir.bundle import bundle
+from service.findings import Finding, has_errors
+from service.policy.model import Policy
+from service.rules import Context, check_payload
+from service.schedule import DueItem, schedule
+
+
+@dataclass(frozen=True, slots=True)
+class Assessment:
+    """What capnote makes of one payload; derived values and the Bundle need a clean note."""
+
+    note: Note | None
+    findings: list[Finding]
+    derived: Derived | None = None
+    due: tuple[DueItem, ...] = ()
+    bundle: dict[str, Any] | None = None
+
+    @property
+    def accepted(self) -> bool:
+        """True when nothing blocks saving the note."""
+        return self.note is not None and not has_errors(self.findings)
+
+
+class Assessor:
+    """Holds the policy and calendar so that many notes share one set-up."""
+
+    def __init__(self, policy: Policy, calendar: ClinicCalendar | None = None) -> None:
+        self.policy = policy
+        self.calendar = calendar or PolicyCalendar.from_policy(policy.calendar)
+
+    def assess(
+        self, payload: bytes | str, now: datetime, prior: Sequence[PriorSession] = ()
+    ) -> Assessment:
+        """Check a raw note and, when it is clean of errors, derive, schedule and emit."""
+        note, findings = check_payload(payload, Context(self.policy, now))
+        if note is None or has_errors(findings):
+            return Assessment(note, findings)
+        derived = derive(note, self.policy, prior)
+        due = schedule(note, derived, self.policy, self.calendar)
+        return Assessment(note, findings, derived, tuple(due), bundle(note, derived, due))

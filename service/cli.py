@@ -1,0 +1,207 @@
+"""The command line: a thin layer over service.assess and service.fhir.validate.
+
+Exit codes: 0 no file has an error; 1 some file has an error; 2 usage or configuration
+error; 3 an unexpected failure (a generic message with an incident id, never a traceback).
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Annotated
+
+import click
+import orjson
+import typer
+from rich.progress import Progress
+
+from schemas.export import write_schemas
+from service.assess import Assessor
+from service.config import Settings, effective_policy
+from service.derive import Derived
+from service.errors import CapnoteError
+from service.fhir.outcome import incident_outcome, outcome
+from service.fhir.validate import validate_resource
+from service.findings import Finding, Severity, has_errors
+from service.report import CAUTION, derived_lines, due_line, finding_line, summary
+from service.schedule import DueItem
+
+log = logging.getLogger("capnote.cli")
+app = typer.Typer(
+    add_completion=False,
+    no_args_is_help=True,
+    help="capnote: check, derive and emit Nd:YAG posterior capsulotomy notes as FHIR R4.",
+)
+
+Files = Annotated[
+    list[Path],
+    typer.Argument(exists=True, dir_okay=False, readable=True, help="Note or FHIR JSON files."),
+]
+PolicyOption = Annotated[
+    Path | None,
+    typer.Option("--policy", exists=True, dir_okay=False, help="Site policy TOML file."),
+]
+NowOption = Annotated[
+    datetime | None,
+    typer.Option(
+        "--now",
+        formats=["%Y-%m-%dT%H:%M:%S%z", "%Y-%m-%dT%H:%M%z"],
+        help="Treat this as the present time (ISO 8601 with offset); default: the clock.",
+    ),
+]
+
+
+@dataclass(frozen=True, slots=True)
+class Checked:
+    """One file's result: a note's assessment or a FHIR resource's findings."""
+
+    path: Path
+    kind: str
+    findings: list[Finding]
+    derived: Derived | None = None
+    due: tuple[DueItem, ...] = ()
+
+
+def _assessor(policy_file: Path | None) -> Assessor:
+    settings = Settings()
+    if policy_file is not None:
+        settings = settings.model_copy(update={"policy_file": policy_file})
+    return Assessor(effective_policy(settings))
+
+
+def _present(now: datetime | None) -> datetime:
+    return now if now is not None else datetime.now(UTC)
+
+
+def check_file(path: Path, assessor: Assessor, now: datetime) -> Checked:
+    """Check one file as a FHIR resource when it has a resourceType, else as a note."""
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        finding = Finding(
+            Severity.ERROR,
+            "file-unreadable",
+            "",
+            f"the file cannot be read: {exc.strerror}",
+            "input files are readable",
+            issue_type="exception",
+        )
+        return Checked(path, "file", [finding])
+    try:
+        data = orjson.loads(raw)
+    except orjson.JSONDecodeError:
+        data = None
+    if isinstance(data, dict) and "resourceType" in data:
+        return Checked(path, "fhir", validate_resource(data))
+    result = assessor.assess(raw, now)
+    return Checked(path, "note", result.findings, result.derived, result.due)
+
+
+def _print_text(checked: Checked) -> None:
+    errors = sum(1 for f in checked.findings if f.severity is Severity.ERROR)
+    state = "FAILED" if errors else "ok"
+    typer.echo(f"{checked.path} ({checked.kind}): {state}")
+    for f in checked.findings:
+        typer.echo(finding_line(f))
+    if checked.derived is not None:
+        for line in derived_lines(checked.derived):
+            typer.echo(line)
+    if checked.due:
+        typer.echo("  follow-up:")
+        for item in checked.due:
+            typer.echo("  " + due_line(item))
+
+
+def _json_report(results: list[Checked]) -> bytes:
+    report = {
+        "resourceType": "Bundle",
+        "type": "collection",
+        "entry": [
+            {"fullUrl": r.path.resolve().as_uri(), "resource": outcome(r.findings)} for r in results
+        ],
+    }
+    return orjson.dumps(report, option=orjson.OPT_INDENT_2)
+
+
+@app.command()
+def check(
+    files: Files,
+    policy: PolicyOption = None,
+    now: NowOption = None,
+    output_format: Annotated[
+        str, typer.Option("--format", help="text (default) or json (OperationOutcomes).")
+    ] = "text",
+) -> None:
+    """Validate notes, or FHIR R4 resources and Bundles; exit 1 when any file has an error."""
+    if output_format not in ("text", "json"):
+        raise typer.BadParameter("use text or json", param_hint="--format")
+    assessor = _assessor(policy)
+    moment = _present(now)
+    results: list[Checked] = []
+    show_progress = len(files) > 1 and sys.stderr.isatty()
+    with Progress(transient=True, disable=not show_progress) as progress:
+        task = progress.add_task("checking", total=len(files))
+        for path in files:
+            results.append(check_file(path, assessor, moment))
+            progress.advance(task)
+    if output_format == "json":
+        sys.stdout.buffer.write(_json_report(results) + b"\n")
+    else:
+        for r in results:
+            _print_text(r)
+        typer.echo(summary([r.findings for r in results]))
+        typer.echo(CAUTION)
+    if any(has_errors(r.findings) for r in results):
+        raise typer.Exit(1)
+
+
+@app.command()
+def emit(
+    file: Annotated[Path, typer.Argument(exists=True, dir_okay=False)],
+    policy: PolicyOption = None,
+    now: NowOption = None,
+) -> None:
+    """Print the FHIR R4 transaction Bundle for a note (the same bytes for the same note)."""
+    result = _assessor(policy).assess(file.read_bytes(), _present(now))
+    if result.bundle is None:
+        for f in result.findings:
+            if f.blocking:
+                typer.echo(finding_line(f), err=True)
+        typer.echo(f"{file}: not emitted, the note has errors", err=True)
+        raise typer.Exit(1)
+    sys.stdout.buffer.write(orjson.dumps(result.bundle, option=orjson.OPT_INDENT_2) + b"\n")
+
+
+@app.command()
+def schema(
+    out: Annotated[Path, typer.Option(help="Folder to write the schema files to.")] = Path(
+        "schemas"
+    ),
+) -> None:
+    """Write the note contract's JSON Schema and the project CodeSystem."""
+    for path in write_schemas(out):
+        typer.echo(f"wrote {path}")
+
+
+def main() -> None:
+    """Entry point: run the app; turn every failure into a message and an exit code."""
+    try:
+        code = app(standalone_mode=False)
+    except click.ClickException as exc:  # usage errors: bad option, missing file
+        exc.show()
+        sys.exit(2)
+    except click.Abort:
+        typer.echo("aborted", err=True)
+        sys.exit(2)
+    except CapnoteError as exc:
+        typer.echo(f"capnote: {exc.message}", err=True)
+        sys.exit(2)
+    except Exception:
+        incident, _ = incident_outcome()
+        log.exception("unexpected failure, incident %s", incident)
+        typer.echo(f"capnote: unexpected failure (incident {incident})", err=True)
+        sys.exit(3)
+    sys.exit(code if isinstance(code, int) else 0)

@@ -1,0 +1,42 @@
+"""The one Settings class: environment variables with a CAPNOTE_ prefix, or a .env file.
+
+Nothing else in capnote reads the environment; entry points build Settings and pass it on.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+from service.policy import Policy, load_policy
+
+
+class Settings(BaseSettings):
+    """Deployment settings; clinical thresholds live in the site policy file instead."""
+
+    model_config = SettingsConfigDict(env_prefix="CAPNOTE_", env_file=".env", extra="ignore")
+
+    policy_file: Path | None = None
+    clinic_timezone: str | None = None
+    holiday_country: str | None = None
+    holiday_subdivision: str | None = None
+    database_url: str = "sqlite:///capnote.sqlite3"
+
+
+def effective_policy(settings: Settings) -> Policy:
+    """The site policy with the settings' calendar overrides laid on top."""
+    policy = load_policy(settings.policy_file)
+    overrides = {
+        key: value
+        for key, value in (
+            ("timezone", settings.clinic_timezone),
+            ("holiday_country", settings.holiday_country),
+            ("holiday_subdivision", settings.holiday_subdivision),
+        )
+        if value is not None
+    }
+    if not overrides:
+        return policy
+    calendar = policy.calendar.model_copy(update=overrides)
+    return policy.model_copy(update={"calendar": calendar})

@@ -1,0 +1,1 @@
+"""Note -> FHIR R4 resources; OperationOutcome; payload validation for analysts."""

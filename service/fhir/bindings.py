@@ -1,0 +1,144 @@
+"""Required code bindings of FHIR R4, checked before a Bundle leaves and on analysts' payloads.
+
+fhir.resources accepts any string in a code element (Procedure.status "done" passes), so
+capnote checks the required bindings of the elements it emits itself. The codes are those
+of the FHIR R4 (4.0.1) value sets named beside each; a test compares this table with the
+official core package.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from typing import Any, Final
+
+_EVENT_STATUS = frozenset(
+    {
+        "preparation",
+        "in-progress",
+        "not-done",
+        "on-hold",
+        "stopped",
+        "completed",
+        "entered-in-error",
+        "unknown",
+    }
+)  # ValueSet event-status
+_OBSERVATION_STATUS = frozenset(
+    {
+        "registered",
+        "preliminary",
+        "final",
+        "amended",
+        "corrected",
+        "cancelled",
+        "entered-in-error",
+        "unknown",
+    }
+)  # ValueSet observation-status
+_REQUEST_STATUS = frozenset(
+    {"draft", "active", "on-hold", "revoked", "completed", "entered-in-error", "unknown"}
+)  # ValueSet request-status
+_REQUEST_INTENT = frozenset(
+    {
+        "proposal",
+        "plan",
+        "directive",
+        "order",
+        "original-order",
+        "reflex-order",
+        "filler-order",
+        "instance-order",
+        "option",
+    }
+)  # ValueSet request-intent
+_MEDREQ_STATUS = frozenset(
+    {
+        "active",
+        "on-hold",
+        "cancelled",
+        "completed",
+        "entered-in-error",
+        "stopped",
+        "draft",
+        "unknown",
+    }
+)  # ValueSet medicationrequest-status
+_MEDREQ_INTENT = frozenset(
+    {
+        "proposal",
+        "plan",
+        "order",
+        "original-order",
+        "reflex-order",
+        "filler-order",
+        "instance-order",
+        "option",
+    }
+)  # ValueSet medicationrequest-intent
+_MEDADMIN_STATUS = frozenset(
+    {"in-progress", "not-done", "on-hold", "completed", "entered-in-error", "stopped", "unknown"}
+)  # ValueSet medication-admin-status
+_BUNDLE_TYPE = frozenset(
+    {
+        "document",
+        "message",
+        "transaction",
+        "transaction-response",
+        "batch",
+        "batch-response",
+        "history",
+        "searchset",
+        "collection",
+    }
+)  # ValueSet bundle-type
+_HTTP_VERB = frozenset({"GET", "HEAD", "POST", "PUT", "DELETE", "PATCH"})  # ValueSet http-verb
+_NARRATIVE_STATUS = frozenset({"generated", "extensions", "additional", "empty"})
+_ISSUE_SEVERITY = frozenset({"fatal", "error", "warning", "information"})
+_UNITS_OF_TIME = frozenset({"s", "min", "h", "d", "wk", "mo", "a"})
+
+# (resource type, path of the code element) -> (allowed codes, value set id)
+REQUIRED: Final[dict[tuple[str, str], tuple[frozenset[str], str]]] = {
+    ("Procedure", "status"): (_EVENT_STATUS, "event-status"),
+    ("Observation", "status"): (_OBSERVATION_STATUS, "observation-status"),
+    ("ServiceRequest", "status"): (_REQUEST_STATUS, "request-status"),
+    ("ServiceRequest", "intent"): (_REQUEST_INTENT, "request-intent"),
+    ("MedicationRequest", "status"): (_MEDREQ_STATUS, "medicationrequest-status"),
+    ("MedicationRequest", "intent"): (_MEDREQ_INTENT, "medicationrequest-intent"),
+    ("MedicationAdministration", "status"): (_MEDADMIN_STATUS, "medication-admin-status"),
+    ("Bundle", "type"): (_BUNDLE_TYPE, "bundle-type"),
+    ("Bundle", "entry.request.method"): (_HTTP_VERB, "http-verb"),
+    ("OperationOutcome", "issue.severity"): (_ISSUE_SEVERITY, "issue-severity"),
+    ("*", "text.status"): (_NARRATIVE_STATUS, "narrative-status"),
+    ("MedicationRequest", "dosageInstruction.timing.repeat.periodUnit"): (
+        _UNITS_OF_TIME,
+        "units-of-time",
+    ),
+}
+
+
+def _values(node: Any, path: list[str]) -> Iterator[tuple[str, Any]]:
+    """Values at a dotted path, with their indexed FHIRPath locations."""
+    if not path:
+        yield "", node
+        return
+    if not isinstance(node, dict) or path[0] not in node:
+        return
+    child = node[path[0]]
+    items = child if isinstance(child, list) else [child]
+    for i, item in enumerate(items):
+        step = f".{path[0]}[{i}]" if isinstance(child, list) else f".{path[0]}"
+        for rest, value in _values(item, path[1:]):
+            yield step + rest, value
+
+
+def binding_problems(resource: dict[str, Any]) -> list[tuple[str, str, str]]:
+    """(location, value, value set) for every code outside its required value set."""
+    kind = resource.get("resourceType")
+    problems: list[tuple[str, str, str]] = []
+    for (owner, path), (allowed, value_set) in REQUIRED.items():
+        if owner not in (kind, "*"):
+            continue
+        for where, value in _values(resource, path.split(".")):
+            if value not in allowed:
+                problems.append((f"{kind}{where}", str(value), value_set))
+    return problems

@@ -1,0 +1,61 @@
+"""One note's FHIR R4 transaction Bundle: safe to send twice.
+
+Every fullUrl is a urn:uuid derived from the note identifier and the resource's role, and
+every entry's request carries ifNoneExist on its identifier, so a receiver that honours
+conditional create makes nothing new when the same note arrives again.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from schemas.note import Note
+from service.derive import Derived
+from service.errors import EmissionError
+from service.fhir.bindings import binding_problems
+from service.fhir.codes import RESOURCE_KEY
+from service.fhir.common import Context, Entry, stable_uuid
+from service.fhir.observations import observations
+from service.fhir.procedure import procedure
+from service.fhir.requests import administrations, medication_request, service_request
+from service.schedule import DueItem
+
+
+def entries(note: Note, derived: Derived, due: list[DueItem]) -> list[Entry]:
+    """Every resource for the note, the Procedure first."""
+    ctx = Context(note)
+    proc = procedure(ctx, derived, due)
+    out = [proc, *observations(ctx, proc, derived)]
+    out += [service_request(ctx, proc, item) for item in due]
+    for i, drop in enumerate(note.plan.prophylaxis):
+        out += administrations(ctx, proc, drop, i)
+    out += [medication_request(ctx, proc, drop, i) for i, drop in enumerate(note.plan.take_home)]
+    return out
+
+
+def bundle(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, Any]:
+    """The transaction Bundle; raises EmissionError rather than emit a bad code."""
+    items = entries(note, derived, due)
+    result: dict[str, Any] = {
+        "resourceType": "Bundle",
+        "identifier": {"system": RESOURCE_KEY, "value": stable_uuid(note, "bundle")},
+        "type": "transaction",
+        "entry": [
+            {
+                "fullUrl": e.full_url,
+                "resource": e.resource,
+                "request": {
+                    "method": "POST",
+                    "url": e.resource["resourceType"],
+                    "ifNoneExist": e.if_none_exist,
+                },
+            }
+            for e in items
+        ],
+    }
+    problems = [p for e in items for p in binding_problems(e.resource)]
+    problems += binding_problems(result)
+    if problems:
+        where = ", ".join(f"{loc} = {value!r} (ValueSet {vs})" for loc, value, vs in problems)
+        raise EmissionError(f"required binding broken in emitted FHIR: {where}")
+    return result

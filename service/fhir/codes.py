@@ -1,0 +1,163 @@
+"""Code systems and codes the emitted record uses.
+
+Standard codes come from ../shared/reference/coding.md and carry only verified meanings; a
+code marked "from memory" there is not emitted. What has no standard code lives in the
+project's own CodeSystem (CAPNOTE_CS, published as schemas/capnote-codesystem.json).
+"""
+
+from __future__ import annotations
+
+from typing import Any, Final
+
+SNOMED: Final = "http://snomed.info/sct"
+LOINC: Final = "http://loinc.org"
+ICD10CM: Final = "http://hl7.org/fhir/sid/icd-10-cm"
+UCUM: Final = "http://unitsofmeasure.org"
+OBS_CATEGORY: Final = "http://terminology.hl7.org/CodeSystem/observation-category"
+
+CANONICAL: Final = "https://capnote.org/fhir"
+CAPNOTE_CS: Final = f"{CANONICAL}/CodeSystem/capnote"
+RESOURCE_KEY: Final = f"{CANONICAL}/sid/resource-key"
+FINDING_CS: Final = f"{CANONICAL}/CodeSystem/finding"
+
+# SNOMED CT, all [confirmed] in coding.md.
+EYE_STRUCTURE: Final = {"right": "18944008", "left": "8966001"}
+EYE_DISPLAY: Final = {"right": "Right eye structure", "left": "Left eye structure"}
+DISCISSION_SECONDARY_MEMBRANE: Final = "9137006"
+IOP_OBSERVABLE: Final = "41633001"
+OUTCOME: Final = {
+    "complete": ("385669000", "Successful"),
+    "partial": ("385670004", "Partially successful"),
+    "failed": ("385671000", "Unsuccessful"),
+}
+
+# LOINC, [confirmed]; right is 79892-6 (one public file swaps them; a test pins it).
+IOP_BY_EYE: Final = {"right": "79892-6", "left": "79893-4"}
+BCVA_SNELLEN_BY_EYE: Final = {"right": "79880-1", "left": "79881-9"}
+
+# ICD-10-CM H26.49x "other secondary cataract", by eye.
+PCO_ICD10: Final = {"right": "H26.491", "left": "H26.492"}
+
+# The project's own CodeSystem: code -> (display, definition).
+CONCEPTS: Final[dict[str, tuple[str, str]]] = {
+    "yag-posterior-capsulotomy": (
+        "Nd:YAG laser posterior capsulotomy",
+        "Opening of an opacified posterior lens capsule by Nd:YAG photodisruption.",
+    ),
+    "posterior-capsule-opacification": (
+        "Posterior capsule opacification",
+        "Opacification of the posterior lens capsule after cataract surgery.",
+    ),
+    "nd-yag-laser": ("Nd:YAG photodisruption laser", "A Q-switched Nd:YAG ophthalmic laser."),
+    "capsulotomy-contact-lens": (
+        "Capsulotomy contact lens",
+        "A converging contact lens placed on the eye for the laser.",
+    ),
+    "laser-series": (
+        "Laser series",
+        "One run of pulses at one energy setting; components give energy and count.",
+    ),
+    "pulse-energy": ("Energy per pulse", "Set energy of each pulse in a series."),
+    "pulse-count": ("Number of pulses", "Pulses delivered in a series."),
+    "total-energy": ("Total laser energy", "Sum of energy times pulses over all series."),
+    "total-pulses": ("Total number of pulses", "Pulses delivered over all series."),
+    "opening-size": (
+        "Capsule opening size",
+        "Size of the capsule opening; components give the horizontal and vertical diameters.",
+    ),
+    "opening-diameter-horizontal": ("Opening diameter, horizontal", "Horizontal diameter."),
+    "opening-diameter-vertical": ("Opening diameter, vertical", "Vertical diameter."),
+    "opening-area": ("Capsule opening area", "Area of a round or elliptical opening."),
+    "iop-change": (
+        "IOP change after laser",
+        "Highest post-laser IOP minus the pre-laser IOP; a component gives the spike grade.",
+    ),
+    "iop-spike-grade": ("IOP spike grade", "Grade of the highest IOP rise."),
+    "spike-none": ("No IOP rise", "The IOP did not rise."),
+    "spike-mild": ("Mild IOP rise", "A rise below the moderate threshold."),
+    "spike-moderate": ("Moderate IOP rise", "A rise at or above the moderate threshold."),
+    "spike-severe": ("Severe IOP rise", "A rise at or above the severe threshold."),
+    "focal-fluence-idealised": (
+        "Idealised peak focal fluence",
+        "Diffraction-limited estimate for the highest pulse energy; not a measurement.",
+    ),
+    "focal-spot-diameter-idealised": (
+        "Idealised focal spot diameter",
+        "Airy disk diameter 1.22 lambda / NA; not a measurement.",
+    ),
+    "visual-acuity": ("Visual acuity", "Visual acuity as entered, with its logMAR."),
+    "logmar": ("logMAR acuity", "Visual acuity as log10 of the minimum angle of resolution."),
+    "cumulative-energy": (
+        "Cumulative laser energy, this eye",
+        "Total energy of this and all earlier sessions on the same eye.",
+    ),
+    "session-number": ("Session number, this eye", "Which session on this eye this is."),
+    "days-since-last-session": ("Days since last session", "Days since the previous session."),
+    "iol-pit-visual-axis": ("IOL pit on the visual axis", "Laser pit in the IOL optic, central."),
+    "iol-pit-peripheral": (
+        "IOL pit off the visual axis",
+        "Laser pit in the IOL optic, peripheral.",
+    ),
+    "iris-bleeding": ("Iris bleeding", "Bleeding from the iris during the laser."),
+    "iop-spike": ("IOP spike", "A rise of intraocular pressure after the laser."),
+    "vitreous-in-anterior-chamber": (
+        "Vitreous in the anterior chamber",
+        "Vitreous came forward through the opening.",
+    ),
+    "other-complication": ("Other complication", "A complication described in text."),
+    "iop-recheck": ("IOP recheck after laser", "Same-day IOP measurement after the laser."),
+    "next-day-iop-check": ("Next-day IOP check", "IOP measurement the day after the laser."),
+    "capsulotomy-review": ("Review after capsulotomy", "Clinic review after the laser."),
+}
+
+
+def coding(system: str, code: str, display: str | None = None) -> dict[str, Any]:
+    """A FHIR Coding."""
+    out: dict[str, Any] = {"system": system, "code": code}
+    if display is not None:
+        out["display"] = display
+    return out
+
+
+def own(code: str) -> dict[str, Any]:
+    """A Coding from the project's CodeSystem, with its display."""
+    return coding(CAPNOTE_CS, code, CONCEPTS[code][0])
+
+
+def concept(*codings: dict[str, Any], text: str | None = None) -> dict[str, Any]:
+    """A FHIR CodeableConcept."""
+    out: dict[str, Any] = {}
+    if codings:
+        out["coding"] = list(codings)
+    if text is not None:
+        out["text"] = text
+    return out
+
+
+def quantity(value: float, unit: str, code: str) -> dict[str, Any]:
+    """A UCUM Quantity; unit is what people read, code is the UCUM code."""
+    return {"value": value, "unit": unit, "system": UCUM, "code": code}
+
+
+def code_system_resource() -> dict[str, Any]:
+    """The project's CodeSystem as a FHIR R4 resource."""
+    return {
+        "resourceType": "CodeSystem",
+        "id": "capnote",
+        "url": CAPNOTE_CS,
+        "version": "1",
+        "name": "CapnoteCodes",
+        "title": "capnote codes for Nd:YAG posterior capsulotomy records",
+        "status": "active",
+        "experimental": False,
+        "publisher": "capnote",
+        "description": "Concepts for which no SNOMED CT or LOINC code was found; standard "
+        "codes are carried beside them wherever one exists.",
+        "caseSensitive": True,
+        "content": "complete",
+        "count": len(CONCEPTS),
+        "concept": [
+            {"code": code, "display": display, "definition": definition}
+            for code, (display, definition) in CONCEPTS.items()
+        ],
+    }

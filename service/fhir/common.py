@@ -1,0 +1,93 @@
+"""Pieces every resource builder shares: stable ids, references, times and search tokens.
+
+Resources are built as plain dicts (fhir.resources models cost ~100x more per request and
+are kept for validation at the edges and in tests).
+"""
+
+from __future__ import annotations
+
+import uuid
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+from schemas.note import Identifier, Note
+from service.fhir.codes import CANONICAL, RESOURCE_KEY
+
+_NAMESPACE = uuid.uuid5(uuid.NAMESPACE_URL, CANONICAL)
+
+
+def stable_uuid(note: Note, role: str) -> str:
+    """The same UUID for the same note and role, every time, on every machine."""
+    return str(uuid.uuid5(_NAMESPACE, f"{note.note_id.system}|{note.note_id.value}|{role}"))
+
+
+def search_escape(value: str) -> str:
+    """Escape FHIR search's special characters (R4 search, 'Escaping Search Parameters')."""
+    for char in ("\\", ",", "$", "|"):
+        value = value.replace(char, "\\" + char)
+    return value
+
+
+def identifier_query(system: str, value: str) -> str:
+    """An ``identifier=system|value`` search, as ifNoneExist takes it."""
+    return f"identifier={search_escape(system)}|{search_escape(value)}"
+
+
+def fhir_identifier(identifier: Identifier) -> dict[str, Any]:
+    """A FHIR Identifier from a note identifier."""
+    return {"system": identifier.system, "value": identifier.value}
+
+
+def when(moment: datetime) -> str:
+    """A FHIR dateTime with its UTC offset (the note's own offset is kept)."""
+    return moment.isoformat()
+
+
+@dataclass(frozen=True, slots=True)
+class Entry:
+    """One resource on its way into the Bundle, with its stable key."""
+
+    key: str
+    resource: dict[str, Any]
+    if_none_exist: str
+
+    @property
+    def full_url(self) -> str:
+        """The entry's urn:uuid, resolved by the receiving server."""
+        return f"urn:uuid:{self.key}"
+
+    @property
+    def reference(self) -> dict[str, str]:
+        """A reference to this entry from another in the same Bundle."""
+        return {"reference": self.full_url}
+
+
+def keyed(note: Note, role: str, resource: dict[str, Any]) -> Entry:
+    """An entry whose identifier is the project's resource key (used by ifNoneExist)."""
+    key = stable_uuid(note, role)
+    resource["identifier"] = [{"system": RESOURCE_KEY, "value": key}]
+    # Keep resourceType first and identifier second, as FHIR JSON is usually read.
+    ordered = {"resourceType": resource.pop("resourceType"), **resource}
+    return Entry(key, ordered, identifier_query(RESOURCE_KEY, key))
+
+
+class Context:
+    """References every resource of one note shares: patient, encounter, clinician."""
+
+    def __init__(self, note: Note) -> None:
+        self.note = note
+        self.subject: dict[str, Any] = {"identifier": fhir_identifier(note.patient)}
+        self.encounter: dict[str, Any] | None = (
+            {"identifier": fhir_identifier(note.encounter)} if note.encounter else None
+        )
+        self.clinician: dict[str, Any] = {
+            "identifier": fhir_identifier(note.performer.identifier),
+            "display": note.performer.name,
+        }
+        self.draft = note.status == "draft"
+
+    def with_encounter(self, resource: dict[str, Any], field: str = "encounter") -> None:
+        """Add the encounter reference where the note has one."""
+        if self.encounter is not None:
+            resource[field] = self.encounter

@@ -1,0 +1,273 @@
+"""Observations of one session: IOP, acuity, laser dose, opening, and derived estimates.
+
+Each is partOf the Procedure; computed values carry derivedFrom links to their inputs.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from schemas.note import IopReading, VisualAcuity
+from service.acuity import QUALITATIVE
+from service.derive import Derived, acuity_logmar
+from service.fhir import codes
+from service.fhir.codes import LOINC, OBS_CATEGORY, SNOMED, coding, concept, own, quantity
+from service.fhir.common import Context, Entry, keyed, when
+
+_METHOD = {
+    "applanation": "applanation tonometry",
+    "rebound": "rebound tonometry",
+    "non-contact": "non-contact tonometry",
+    "other": "other tonometry",
+}
+
+
+class ObservationMaker:
+    """Builds the Observations of one note, sharing status, subject and partOf."""
+
+    def __init__(self, ctx: Context, procedure: Entry) -> None:
+        self.ctx = ctx
+        self.procedure = procedure
+        self.status = "preliminary" if ctx.draft else "final"
+
+    def make(
+        self,
+        role: str,
+        category: str,
+        code: dict[str, Any],
+        effective: str,
+        value: dict[str, Any] | None = None,
+        **extra: Any,
+    ) -> Entry:
+        """One Observation; value is a ``{"valueX": ...}`` dict or None."""
+        resource: dict[str, Any] = {
+            "resourceType": "Observation",
+            "status": self.status,
+            "partOf": [self.procedure.reference],
+            "category": [concept(coding(OBS_CATEGORY, category))],
+            "code": code,
+            "subject": self.ctx.subject,
+        }
+        self.ctx.with_encounter(resource)
+        resource["effectiveDateTime"] = effective
+        resource["performer"] = [self.ctx.clinician]
+        if value:
+            resource.update(value)
+        resource.update(extra)
+        if "bodySite" not in resource:
+            eye = self.ctx.note.eye
+            resource["bodySite"] = concept(
+                coding(SNOMED, codes.EYE_STRUCTURE[eye], codes.EYE_DISPLAY[eye])
+            )
+        return keyed(self.ctx.note, role, resource)
+
+    def iop(self, role: str, reading: IopReading, fallback: str) -> Entry:
+        """An IOP reading, coded by eye."""
+        eye = self.ctx.note.eye
+        code = concept(
+            coding(LOINC, codes.IOP_BY_EYE[eye]),
+            coding(SNOMED, codes.IOP_OBSERVABLE),
+            text=f"Intraocular pressure, {eye} eye",
+        )
+        effective = when(reading.measured_at) if reading.measured_at else fallback
+        return self.make(
+            role,
+            "exam",
+            code,
+            effective,
+            {"valueQuantity": quantity(reading.value_mmhg, "mmHg", "mm[Hg]")},
+            method=concept(text=_METHOD[reading.method]),
+        )
+
+    def acuity(self, role: str, entered: VisualAcuity, effective: str) -> Entry:
+        """Visual acuity as entered, with its logMAR as a component."""
+        eye = self.ctx.note.eye
+        snellen_bcva = entered.correction == "best-corrected" and entered.notation.startswith(
+            "snellen"
+        )
+        label = f"Visual acuity ({entered.correction}, {entered.notation}), {eye} eye"
+        code = (
+            concept(coding(LOINC, codes.BCVA_SNELLEN_BY_EYE[eye]), text=label)
+            if snellen_bcva
+            else concept(own("visual-acuity"), text=label)
+        )
+        shown = QUALITATIVE.get(entered.value.upper(), entered.value)
+        logmar = acuity_logmar(entered)
+        extra: dict[str, Any] = {}
+        if logmar is not None:
+            extra["component"] = [
+                {
+                    "code": concept(own("logmar")),
+                    "valueQuantity": quantity(logmar, "logMAR", "{logMAR}"),
+                }
+            ]
+        return self.make(role, "exam", code, effective, {"valueString": shown}, **extra)
+
+
+def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry]:
+    """Every Observation for the note, inputs before the values derived from them."""
+    note = ctx.note
+    make = ObservationMaker(ctx, procedure)
+    start = when(note.started_at)
+    finish = when(note.ended_at or note.started_at)
+    out: list[Entry] = []
+
+    before = make.iop("iop-before", note.before.iop, start)
+    out.append(before)
+    after = [make.iop(f"iop-after-{i}", r, finish) for i, r in enumerate(note.result.iop_after)]
+    out += after
+    if note.before.visual_acuity is not None:
+        out.append(make.acuity("acuity-before", note.before.visual_acuity, start))
+    if note.result.visual_acuity_after is not None:
+        out.append(make.acuity("acuity-after", note.result.visual_acuity_after, finish))
+
+    series = [
+        make.make(
+            f"series-{i}",
+            "procedure",
+            concept(own("laser-series")),
+            start,
+            component=[
+                {
+                    "code": concept(own("pulse-energy")),
+                    "valueQuantity": quantity(s.energy_mj, "mJ", "mJ"),
+                },
+                {
+                    "code": concept(own("pulse-count")),
+                    "valueQuantity": quantity(s.pulses, "pulses", "{pulses}"),
+                },
+            ],
+        )
+        for i, s in enumerate(note.laser.series)
+    ]
+    out += series
+    from_series = [e.reference for e in series]
+    out.append(
+        make.make(
+            "total-energy",
+            "procedure",
+            concept(own("total-energy")),
+            start,
+            {"valueQuantity": quantity(derived.total_energy_mj, "mJ", "mJ")},
+            derivedFrom=from_series,
+        )
+    )
+    out.append(
+        make.make(
+            "total-pulses",
+            "procedure",
+            concept(own("total-pulses")),
+            start,
+            {"valueQuantity": quantity(derived.total_pulses, "pulses", "{pulses}")},
+            derivedFrom=from_series,
+        )
+    )
+    spot = derived.focal_spot
+    assumed = " (cone angle assumed)" if spot.cone_angle_assumed else ""
+    out.append(
+        make.make(
+            "focal-fluence",
+            "procedure",
+            concept(own("focal-fluence-idealised")),
+            start,
+            {"valueQuantity": quantity(_sig(spot.peak_fluence_j_cm2), "J/cm2", "J/cm2")},
+            derivedFrom=from_series,
+            component=[
+                {
+                    "code": concept(own("focal-spot-diameter-idealised")),
+                    "valueQuantity": quantity(round(spot.airy_diameter_um, 1), "um", "um"),
+                },
+            ],
+            note=[
+                {
+                    "text": "Idealised diffraction-limited estimate for "
+                    f"{spot.pulse_energy_mj:g} mJ at a {spot.cone_angle_deg:g} degree cone"
+                    f"{assumed}; not a measurement."
+                }
+            ],
+        )
+    )
+    cumulative = derived.cumulative
+    out.append(
+        make.make(
+            "cumulative-energy",
+            "procedure",
+            concept(own("cumulative-energy")),
+            start,
+            {"valueQuantity": quantity(cumulative.cumulative_energy_mj, "mJ", "mJ")},
+            derivedFrom=from_series,
+            component=_cumulative_components(derived),
+        )
+    )
+
+    opening = note.result.opening
+    if opening is not None and derived.opening is not None:
+        vertical = opening.vertical_mm if opening.vertical_mm is not None else opening.horizontal_mm
+        size = make.make(
+            "opening-size",
+            "exam",
+            concept(own("opening-size")),
+            finish,
+            component=[
+                {
+                    "code": concept(own("opening-diameter-horizontal")),
+                    "valueQuantity": quantity(opening.horizontal_mm, "mm", "mm"),
+                },
+                {
+                    "code": concept(own("opening-diameter-vertical")),
+                    "valueQuantity": quantity(vertical, "mm", "mm"),
+                },
+            ],
+        )
+        out.append(size)
+        out.append(
+            make.make(
+                "opening-area",
+                "exam",
+                concept(own("opening-area")),
+                finish,
+                {"valueQuantity": quantity(derived.opening.area_mm2, "mm2", "mm2")},
+                derivedFrom=[size.reference],
+            )
+        )
+
+    highest = derived.iop.highest
+    if highest is not None:
+        grade = derived.iop.spike_grade
+        out.append(
+            make.make(
+                "iop-change",
+                "exam",
+                concept(own("iop-change")),
+                when(note.result.iop_after[highest.reading_index].measured_at),
+                {"valueQuantity": quantity(highest.change_mmhg, "mmHg", "mm[Hg]")},
+                derivedFrom=[before.reference, after[highest.reading_index].reference],
+                component=[
+                    {
+                        "code": concept(own("iop-spike-grade")),
+                        "valueCodeableConcept": concept(own(f"spike-{grade}")),
+                    },
+                ],
+            )
+        )
+    return out
+
+
+def _cumulative_components(derived: Derived) -> list[dict[str, Any]]:
+    c = derived.cumulative
+    parts: list[dict[str, Any]] = [
+        {"code": concept(own("session-number")), "valueInteger": c.session_number}
+    ]
+    if c.days_since_last_session is not None:
+        parts.append(
+            {
+                "code": concept(own("days-since-last-session")),
+                "valueQuantity": quantity(c.days_since_last_session, "days", "d"),
+            }
+        )
+    return parts
+
+
+def _sig(value: float, digits: int = 3) -> float:
+    """Round to significant figures: an idealised estimate claims no more precision."""
+    return float(f"{value:.{digits}g}")

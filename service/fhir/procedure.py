@@ -1,0 +1,109 @@
+"""The Procedure resource for one laser session, with its human-readable narrative."""
+
+from __future__ import annotations
+
+from html import escape
+from typing import Any
+
+from schemas.note import Complication, Note
+from service.derive import Derived
+from service.fhir import codes
+from service.fhir.codes import SNOMED, coding, concept, own
+from service.fhir.common import Context, Entry, fhir_identifier, identifier_query, stable_uuid, when
+from service.schedule import DueItem
+
+_PATTERN = {"cruciate": "cruciate", "circular": "circular", "other": "other"}
+
+
+def complication_concept(c: Complication) -> dict[str, Any]:
+    """A complication as a CodeableConcept of the project's codes."""
+    if c.kind == "iol-pit":
+        code = "iol-pit-visual-axis" if c.on_visual_axis else "iol-pit-peripheral"
+    elif c.kind == "other":
+        code = "other-complication"
+    else:
+        code = c.kind
+    return concept(own(code), text=c.text or codes.CONCEPTS[code][0])
+
+
+def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, str]:
+    """A short XHTML summary; clinical content only, no identifiers."""
+    opening = note.result.opening
+    size = "not recorded"
+    if opening is not None:
+        size = f"{opening.horizontal_mm:g} mm"
+        if opening.vertical_mm is not None:
+            size += f" x {opening.vertical_mm:g} mm"
+    after = ", ".join(f"{r.value_mmhg:g}" for r in note.result.iop_after) or "not measured"
+    lines = [
+        f"Nd:YAG posterior capsulotomy, {note.eye} eye: {note.result.outcome}.",
+        f"{derived.total_pulses} pulses, {derived.total_energy_mj:g} mJ in total "
+        f"(highest {derived.highest_pulse_energy_mj:g} mJ per pulse), "
+        f"{_PATTERN[note.laser.pattern]} opening {size}.",
+        f"IOP {note.before.iop.value_mmhg:g} mmHg before; after: {after} mmHg "
+        f"(spike grade {derived.iop.spike_grade}).",
+    ]
+    lines += [f"{item.title}: {item.target.date().isoformat()}." for item in due]
+    lines.append(
+        "Thresholds are literature defaults; local protocol and the treating clinician decide."
+    )
+    body = "".join(f"<p>{escape(line)}</p>" for line in lines)
+    return {"status": "generated", "div": f'<div xmlns="http://www.w3.org/1999/xhtml">{body}</div>'}
+
+
+def procedure(ctx: Context, derived: Derived, due: list[DueItem]) -> Entry:
+    """The Procedure: what was done, to which eye, by whom, with what result."""
+    note = ctx.note
+    outcome_code, outcome_display = codes.OUTCOME[note.result.outcome]
+    performed: dict[str, Any] = {"start": when(note.started_at)}
+    if note.ended_at is not None:
+        performed["end"] = when(note.ended_at)
+    used = [concept(own("nd-yag-laser"))]
+    if note.laser.contact_lens.used:
+        used.append(concept(own("capsulotomy-contact-lens")))
+    resource: dict[str, Any] = {
+        "resourceType": "Procedure",
+        "text": _narrative(note, derived, due),
+        "identifier": [fhir_identifier(note.note_id)],
+        # The procedure happened whatever the note's state; a draft note marks its
+        # Observations preliminary instead.
+        "status": "completed",
+        "code": concept(
+            coding(SNOMED, codes.DISCISSION_SECONDARY_MEMBRANE),
+            own("yag-posterior-capsulotomy"),
+            text="Nd:YAG laser posterior capsulotomy",
+        ),
+        "subject": ctx.subject,
+    }
+    ctx.with_encounter(resource)
+    resource["performedPeriod"] = performed
+    resource["performer"] = [{"actor": ctx.clinician}]
+    location: dict[str, Any] = {"display": note.location.name}
+    if note.location.identifier is not None:
+        location["identifier"] = fhir_identifier(note.location.identifier)
+    resource["location"] = location
+    resource["reasonCode"] = [
+        concept(
+            coding(codes.ICD10CM, codes.PCO_ICD10[note.eye]),
+            own("posterior-capsule-opacification"),
+            text="Posterior capsule opacification",
+        )
+    ]
+    resource["bodySite"] = [
+        concept(
+            coding(SNOMED, codes.EYE_STRUCTURE[note.eye], codes.EYE_DISPLAY[note.eye]),
+            text=f"{note.eye} eye",
+        )
+    ]
+    resource["outcome"] = concept(
+        coding(SNOMED, outcome_code, outcome_display), text=note.result.outcome
+    )
+    if note.result.complications:
+        resource["complication"] = [complication_concept(c) for c in note.result.complications]
+    if due:
+        resource["followUp"] = [
+            concept(text=f"{item.title}: {item.target.date().isoformat()}") for item in due
+        ]
+    resource["usedCode"] = used
+    key = stable_uuid(note, "procedure")
+    return Entry(key, resource, identifier_query(note.note_id.system, note.note_id.value))

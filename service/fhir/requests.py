@@ -1,0 +1,135 @@
+"""What follows the session: follow-up ServiceRequests, drops given and drops to take home."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any
+
+from schemas.note import ClinicDrop, HomeDrop
+from service.fhir.codes import concept, own, quantity
+from service.fhir.common import Context, Entry, keyed, when
+from service.schedule import DueItem
+
+_DUE_CODE = {
+    "iop-recheck": "iop-recheck",
+    "next-day-iop": "next-day-iop-check",
+    "review": "capsulotomy-review",
+}
+_ROUTE = concept(text="ophthalmic")
+
+
+def _moment(item: DueItem, moment: datetime) -> str:
+    """Whole-day items go out as dates, timed ones as date-times in the clinic's zone."""
+    return moment.date().isoformat() if item.all_day else when(moment)
+
+
+def _due_note(item: DueItem) -> str:
+    parts = ["Due because: " + "; ".join(item.reasons) + "."]
+    if item.moved_from is not None:
+        passed = ", ".join(f"{c.day.isoformat()} ({c.reason})" for c in item.passed_over)
+        parts.append(
+            f"Target moved from {_moment(item, item.moved_from)}"
+            + (f" past {passed}." if passed else " to an open time.")
+        )
+    if item.flag:
+        parts.append(item.flag[0].upper() + item.flag[1:] + ".")
+    if item.done_by_reading is not None:
+        parts.append("Done: a post-laser reading in this note lies inside the window.")
+    return " ".join(parts)
+
+
+def service_request(ctx: Context, procedure: Entry, item: DueItem) -> Entry:
+    """One due item as a ServiceRequest with its window (Timing.repeat.boundsPeriod)."""
+    status = "draft" if ctx.draft else "completed" if item.done_by_reading is not None else "active"
+    resource: dict[str, Any] = {
+        "resourceType": "ServiceRequest",
+        "status": status,
+        "intent": "order",
+        "code": concept(own(_DUE_CODE[item.kind]), text=item.title),
+        "subject": ctx.subject,
+    }
+    ctx.with_encounter(resource)
+    resource["occurrenceTiming"] = {
+        "event": [_moment(item, item.target)],
+        "repeat": {
+            "count": 1,
+            "boundsPeriod": {
+                "start": _moment(item, item.earliest),
+                "end": _moment(item, item.latest),
+            },
+        },
+    }
+    resource["authoredOn"] = when(ctx.note.ended_at or ctx.note.started_at)
+    resource["requester"] = ctx.clinician
+    # reasonReference cannot point at a Procedure in R4; supportingInfo takes any resource.
+    resource["supportingInfo"] = [procedure.reference]
+    resource["note"] = [{"text": _due_note(item)}]
+    return keyed(ctx.note, f"due-{item.kind}", resource)
+
+
+def _drug(agent: str, strength: float | None) -> dict[str, Any]:
+    strength_text = f" {strength:g}%" if strength is not None else ""
+    return concept(text=f"{agent}{strength_text} eye drops")
+
+
+def administrations(ctx: Context, procedure: Entry, drop: ClinicDrop, index: int) -> list[Entry]:
+    """A prophylaxis drop given in clinic: one administration per time it was given."""
+    note = ctx.note
+    moments = {
+        "before": [("before", note.started_at)],
+        "after": [("after", note.ended_at or note.started_at)],
+    }
+    moments["both"] = moments["before"] + moments["after"]
+    out = []
+    for label, moment in moments[drop.timing]:
+        resource: dict[str, Any] = {
+            "resourceType": "MedicationAdministration",
+            "status": "completed",
+            "partOf": [procedure.reference],
+            "medicationCodeableConcept": _drug(drop.agent, drop.strength_percent),
+            "subject": ctx.subject,
+        }
+        ctx.with_encounter(resource, "context")
+        resource["effectiveDateTime"] = when(moment)
+        resource["performer"] = [{"actor": ctx.clinician}]
+        resource["dosage"] = {
+            "text": f"one drop to the {note.eye} eye {label} the laser",
+            "route": _ROUTE,
+            "dose": quantity(1, "drop", "{drop}"),
+        }
+        out.append(keyed(note, f"prophylaxis-{index}-{label}", resource))
+    return out
+
+
+def medication_request(ctx: Context, procedure: Entry, drop: HomeDrop, index: int) -> Entry:
+    """Drops to take home, with how often and for how long."""
+    note = ctx.note
+    resource: dict[str, Any] = {
+        "resourceType": "MedicationRequest",
+        "status": "draft" if ctx.draft else "active",
+        "intent": "order",
+        "medicationCodeableConcept": _drug(drop.agent, drop.strength_percent),
+        "subject": ctx.subject,
+    }
+    ctx.with_encounter(resource)
+    resource["authoredOn"] = when(note.ended_at or note.started_at)
+    resource["requester"] = ctx.clinician
+    # As for ServiceRequest: the Procedure is supporting information, not a reason.
+    resource["supportingInformation"] = [procedure.reference]
+    resource["dosageInstruction"] = [
+        {
+            "text": f"one drop to the {note.eye} eye {drop.times_per_day} times a day "
+            f"for {drop.days} days",
+            "timing": {
+                "repeat": {
+                    "boundsDuration": quantity(drop.days, "days", "d"),
+                    "frequency": drop.times_per_day,
+                    "period": 1,
+                    "periodUnit": "d",
+                }
+            },
+            "route": _ROUTE,
+            "doseAndRate": [{"doseQuantity": quantity(1, "drop", "{drop}")}],
+        }
+    ]
+    return keyed(note, f"take-home-{index}", resource)
