@@ -20,6 +20,15 @@ class PolicyPart(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
+# UCUM codes that read badly in a sentence, and what people write instead.
+_SPOKEN_UNITS = {"mm[Hg]": "mmHg", "{pulses}": "pulses", "{logMAR}": "logMAR", "/d": "per day"}
+
+
+def spoken_unit(ucum: str) -> str:
+    """A UCUM code as people write it."""
+    return _SPOKEN_UNITS.get(ucum, ucum)
+
+
 class Range(PolicyPart):
     """An allowed range; ``above`` is an exclusive lower bound (for "must be more than 0")."""
 
@@ -46,7 +55,7 @@ class Range(PolicyPart):
             parts.append(f"> {self.above:g}")
         if self.max is not None:
             parts.append(f"<= {self.max:g}")
-        return " and ".join(parts) + f" {self.unit}"
+        return " and ".join(parts) + f" {spoken_unit(self.unit)}"
 
 
 class Number(PolicyPart):

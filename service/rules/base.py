@@ -8,7 +8,7 @@ from datetime import datetime
 
 from schemas.note import Note
 from service.findings import Finding, Severity, show_value
-from service.policy.model import Number, Policy, Range
+from service.policy.model import Number, Policy, Range, spoken_unit
 
 
 @dataclass(frozen=True, slots=True)
@@ -87,7 +87,7 @@ def outside_limit(location: str, value: float | None, limit: Range, what: str) -
     return error(
         "out-of-range",
         location,
-        f"{what} of {value:g} {limit.unit} is outside {limit.describe()}",
+        f"{what} of {value:g} {spoken_unit(limit.unit)} is outside {limit.describe()}",
         f"{what} must be {limit.describe()}",
         value=value,
         allowed=limit.describe(),
