@@ -13,7 +13,6 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Annotated
 
-import click
 import orjson
 import typer
 from rich.progress import Progress
@@ -33,6 +32,7 @@ log = logging.getLogger("capnote.cli")
 app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
+    pretty_exceptions_enable=False,
     help="capnote: check, derive and emit Nd:YAG posterior capsulotomy notes as FHIR R4.",
 )
 
@@ -189,19 +189,15 @@ def schema(
 def main() -> None:
     """Entry point: run the app; turn every failure into a message and an exit code."""
     try:
-        code = app(standalone_mode=False)
-    except click.ClickException as exc:  # usage errors: bad option, missing file
-        exc.show()
-        sys.exit(2)
-    except click.Abort:
-        typer.echo("aborted", err=True)
-        sys.exit(2)
+        # Standalone mode: the framework answers usage errors with exit 2 and its own message.
+        app()
     except CapnoteError as exc:
         typer.echo(f"capnote: {exc.message}", err=True)
         sys.exit(2)
     except Exception:
         incident, _ = incident_outcome()
-        log.exception("unexpected failure, incident %s", incident)
+        # Debug level: the terminal gets the incident id only; operators who turn logging on
+        # get the details.
+        log.debug("unexpected failure, incident %s", incident, exc_info=True)
         typer.echo(f"capnote: unexpected failure (incident {incident})", err=True)
         sys.exit(3)
-    sys.exit(code if isinstance(code, int) else 0)

@@ -27,7 +27,7 @@ class Settings(BaseSettings):
 def effective_policy(settings: Settings) -> Policy:
     """The site policy with the settings' calendar overrides laid on top."""
     policy = load_policy(settings.policy_file)
-    overrides = {
+    overrides: dict[str, str | None] = {
         key: value
         for key, value in (
             ("timezone", settings.clinic_timezone),
@@ -38,5 +38,8 @@ def effective_policy(settings: Settings) -> Policy:
     }
     if not overrides:
         return policy
+    if settings.holiday_country is not None and settings.holiday_subdivision is None:
+        # A subdivision belongs to its country: another country starts without one.
+        overrides["holiday_subdivision"] = None
     calendar = policy.calendar.model_copy(update=overrides)
     return policy.model_copy(update={"calendar": calendar})

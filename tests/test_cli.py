@@ -1,0 +1,117 @@
+"""The command line, run as a user runs it: a real process, real files, real exit codes."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from tests.conftest import EXAMPLES, INVALID, ROOT, VALID
+from tests.fhir_r4_check import r4_problems
+
+NOW = "2026-12-01T12:00:00+00:00"
+
+
+def capnote(*args: str, env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [sys.executable, "-c", "from service.cli import main; main()", *args],
+        capture_output=True, text=True, cwd=ROOT, timeout=120,
+        env={**os.environ, **(env or {})}, check=False,
+    )
+
+
+def test_check_demo_notes_passes_with_a_summary() -> None:
+    run = capnote("check", *map(str, VALID), "--now", NOW)
+    assert run.returncode == 0, run.stdout + run.stderr
+    assert f"{len(VALID)} file(s): {len(VALID)} without errors, 0 with errors" in run.stdout
+    assert "local protocol and the treating clinician decide" in run.stdout
+    assert "Review visit: Tue 29 Dec 2026" in run.stdout
+
+
+def test_check_invalid_notes_fails_with_every_location() -> None:
+    run = capnote("check", *map(str, INVALID), "--now", NOW)
+    assert run.returncode == 1
+    assert "laser.series[1].pulses" in run.stdout
+    assert "Traceback" not in run.stdout + run.stderr
+
+
+def test_json_format_gives_operation_outcomes_that_are_valid_r4() -> None:
+    files = [EXAMPLES / "invalid" / "eye-both.json", EXAMPLES / "notes" / "right-routine.json"]
+    run = capnote("check", "--format", "json", *map(str, files), "--now", NOW)
+    assert run.returncode == 1
+    report = json.loads(run.stdout)
+    assert r4_problems(report) == []  # a collection Bundle of OperationOutcomes
+    first, second = (e["resource"] for e in report["entry"])
+    assert first["issue"][0]["expression"] == ["eye"]
+    assert first["issue"][0]["severity"] == "error"
+    assert second["issue"][0]["severity"] == "information"
+    assert report["entry"][0]["fullUrl"].endswith("eye-both.json")
+
+
+def test_check_validates_fhir_resources_for_the_analyst(tmp_path: Path) -> None:
+    emitted = capnote("emit", str(EXAMPLES / "notes" / "right-routine.json"), "--now", NOW)
+    bundle = json.loads(emitted.stdout)
+    good = tmp_path / "bundle.json"
+    good.write_text(json.dumps(bundle))
+    bundle["entry"][0]["resource"]["status"] = "done"  # fhir.resources alone would accept it
+    bad = tmp_path / "bad-bundle.json"
+    bad.write_text(json.dumps(bundle))
+    assert capnote("check", str(good)).returncode == 0
+    run = capnote("check", str(bad))
+    assert run.returncode == 1
+    assert "Bundle.entry[0].resource.status" in run.stdout
+    assert "event-status" in run.stdout
+
+
+def test_emit_is_byte_identical_across_processes() -> None:
+    note = str(EXAMPLES / "notes" / "left-raised-risk-multi-series.json")
+    one = capnote("emit", note, "--now", NOW, env={"PYTHONHASHSEED": "1"})
+    two = capnote("emit", note, "--now", NOW, env={"PYTHONHASHSEED": "2"})
+    assert one.returncode == 0, one.stderr
+    assert one.stdout == two.stdout
+    assert r4_problems(json.loads(one.stdout)) == []
+
+
+def test_emit_refuses_a_note_with_errors() -> None:
+    run = capnote("emit", str(EXAMPLES / "invalid" / "iop-out-of-range.json"), "--now", NOW)
+    assert run.returncode == 1
+    assert run.stdout == ""
+    assert "before.iop.value_mmhg" in run.stderr
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ("check", "no-such-file.json"),
+        ("check", "--format", "xml", str(EXAMPLES / "notes" / "right-routine.json")),
+        ("check", "--now", "yesterday", str(EXAMPLES / "notes" / "right-routine.json")),
+        ("frobnicate",),
+    ],
+)
+def test_usage_errors_exit_2_without_traceback(args: tuple[str, ...]) -> None:
+    run = capnote(*args)
+    assert run.returncode == 2, run.stdout + run.stderr
+    assert "Traceback" not in run.stderr
+
+
+def test_bad_site_policy_exits_2_with_a_clear_message(tmp_path: Path) -> None:
+    site = tmp_path / "site.toml"
+    site.write_text("[thresholds]\nusual_pulse_energy_max_mj = 'lots'\n")
+    run = capnote("check", "--policy", str(site), str(VALID[0]))
+    assert run.returncode == 2
+    assert "usual_pulse_energy_max_mj" in run.stderr
+    assert "Traceback" not in run.stderr
+
+
+def test_garbage_files_are_findings_not_crashes(tmp_path: Path) -> None:
+    files = {"binary.json": b"\x00\xff\xfe garbage", "list.json": b"[1, 2, 3]", "empty.json": b""}
+    for name, content in files.items():
+        (tmp_path / name).write_bytes(content)
+    run = capnote("check", *(str(tmp_path / n) for n in files))
+    assert run.returncode == 1
+    assert "Traceback" not in run.stdout + run.stderr
+    assert run.stdout.count("FAILED") == 3

