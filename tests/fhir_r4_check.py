@@ -26,7 +26,7 @@ a. **structure** - ``google.fhir.r4.json_format.json_fhir_string_to_proto(...,
    JSON-shape faults that the StructureDefinitions make obvious (unknown
    property, array vs. single value, two members of one ``[x]`` choice,
    primitive type/regex); google-fhir misses some of these outright (see
-   ``_walk_object``).
+   ``_Walker._object``).
 b. **invariants** - every ``constraint`` with severity ``error`` of the
    element definitions that apply to each node present in the instance: the
    resource's own snapshot (ele-1, dom-*, obs-6, bdl-7, ...), and, by walking
@@ -37,7 +37,14 @@ c. **required bindings** - code / Coding / CodeableConcept elements whose
    StructureDefinitions), checked against a simple expansion of the ValueSet.
 
 Deliberately *not* here: profiles other than the core resource definitions,
-terminology beyond the core package, reference resolution.
+terminology beyond the core package, reference resolution (so the target type
+of ``#id`` and ``urn:uuid:`` references is not checked; google-fhir checks it
+for ``Type/id`` references).
+
+Known false positives of google-fhir-r4 0.11 (valid FHIR JSON it rejects):
+a code-typed primitive that has only an extension (``"_status": {...}`` with
+no ``"status"``), and ``null`` placeholders in primitive arrays
+(``"given": ["a", null], "_given": [null, {...}]``).  Layers b and c accept both.
 
 Do not import ``google.fhir.r4.fhir_path`` or ``google.fhir.core.fhir_path``:
 they need an ANTLR 4.9 runtime, while this venv has the ANTLR 4.13 runtime that
@@ -47,6 +54,7 @@ fhirpathpy needs.  ``json_format`` does not load ANTLR.
 from __future__ import annotations
 
 import functools
+import html.entities
 import importlib
 import importlib.resources
 import json
@@ -60,7 +68,7 @@ from xml.etree import ElementTree
 
 import fhirpathpy
 from fhirpathpy.engine.nodes import FP_Type, ResourceNode
-from fhirpathpy.models import models as _FHIRPATH_MODELS
+from fhirpathpy.models import models as fhirpath_models
 from google.fhir.r4 import json_format
 from google.protobuf import message as _pb_message
 
@@ -85,10 +93,10 @@ _SYSTEM_TYPE_PREFIX: Final = "http://hl7.org/fhirpath/System."
 #: comparing the functions used with fhirpathpy's function table.
 _SKIPPED_INVARIANTS: Final[Mapping[str, str]] = {
     # Narrative.div: `htmlChecks()` is a FHIR-specific FHIRPath function (XHTML
-    # subset, no scripts, non-empty) that fhirpathpy does not implement.
-    # A small Python stand-in checks the clear-cut parts: see _xhtml_problems.
-    "txt-1": "htmlChecks() is not implemented by fhirpathpy (approximated by _xhtml_problems)",
-    "txt-2": "htmlChecks() is not implemented by fhirpathpy (approximated by _xhtml_problems)",
+    # subset, non-empty) that fhirpathpy does not implement.  Not lost: the
+    # package also gives their XPath form, which _xhtml_problems follows.
+    "txt-1": "htmlChecks() is not in fhirpathpy; checked from the XPath form instead",
+    "txt-2": "htmlChecks() is not in fhirpathpy; checked from the XPath form instead",
     # CareTeam.participant: needs `resolve()` to follow a Reference to another
     # resource; a single resource cannot be resolved offline.
     "ctm-1": "resolve() needs the referenced resource, not available here",
@@ -117,14 +125,15 @@ _REWRITTEN_INVARIANTS: Final[Mapping[str, tuple[str, str, str]]] = {
 #: new unexpandable one is reported as a problem instead of being skipped.
 _UNEXPANDABLE_VALUE_SETS: Final[Mapping[str, str]] = {
     # Money.currency: ISO 4217 is not shipped in the core package.
-    "http://hl7.org/fhir/ValueSet/currencies": "code system urn:iso:std:iso:4217 not in the package",
+    "http://hl7.org/fhir/ValueSet/currencies": "urn:iso:std:iso:4217 is not in the package",
     # Attachment/Binary.contentType etc.: BCP 13 mime types are an external grammar.
-    "http://hl7.org/fhir/ValueSet/mimetypes": "code system urn:ietf:bcp:13 (mime types) is external",
+    "http://hl7.org/fhir/ValueSet/mimetypes": "urn:ietf:bcp:13 (mime types) is external",
     # *.unitOfMeasure in evidence-synthesis resources: UCUM is a grammar, not a list.
-    "http://hl7.org/fhir/ValueSet/ucum-units": "UCUM (http://unitsofmeasure.org) is a grammar, not in the package",
+    "http://hl7.org/fhir/ValueSet/ucum-units": "UCUM is a grammar, not in the package",
     # MolecularSequence.structureVariant.variantType: a LOINC answer list, not shipped.
     "http://loinc.org/vs/LL379-9": "LOINC answer list not in the package",
 }
+
 
 #: ``hasValue()`` is used by ele-1 (on every element), per-1, age-1, cnt-3 and
 #: bdl-10, but fhirpathpy 2.2 lacks it.  It is a FHIR-defined FHIRPath function
@@ -179,7 +188,7 @@ def _package_files() -> Mapping[str, bytes]:
     return files
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _package_json(filename: str) -> JsonObject | None:
     raw = _package_files().get(filename)
     return None if raw is None else json.loads(raw)
@@ -258,7 +267,7 @@ def _error_constraints(element: Mapping[str, Any]) -> tuple[_Constraint, ...]:
     return tuple(constraints)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _type_model(type_name: str) -> _TypeModel | None:
     """Parse ``StructureDefinition-<type>.json`` of the core package (cached)."""
     sd = _package_json(f"StructureDefinition-{type_name}.json")
@@ -312,7 +321,7 @@ def _type_model(type_name: str) -> _TypeModel | None:
 # ---------------------------------------------------------------------------
 
 
-class _Unexpandable(Exception):
+class _UnexpandableError(Exception):
     """The value set needs more than the package's concept lists."""
 
 
@@ -325,10 +334,12 @@ def _all_concepts(system: str, concepts: list[JsonObject]) -> Iterator[tuple[str
 
 def _expand_part(part: Mapping[str, Any], seen: frozenset[str]) -> frozenset[tuple[str, str]]:
     if "filter" in part:
-        raise _Unexpandable(f"filter on {part.get('system')}")
+        raise _UnexpandableError(f"filter on {part.get('system')}")
     # Within one include, the system's codes and any imported value sets are
     # intersected (FHIR R4 ValueSet.compose.include semantics).
-    sets: list[frozenset[tuple[str, str]]] = [_expand(url, seen) for url in part.get("valueSet", [])]
+    sets: list[frozenset[tuple[str, str]]] = [
+        _expand(url, seen) for url in part.get("valueSet", [])
+    ]
     system = part.get("system")
     if system:
         if "concept" in part:
@@ -336,26 +347,28 @@ def _expand_part(part: Mapping[str, Any], seen: frozenset[str]) -> frozenset[tup
         else:
             code_system = _by_canonical("CodeSystem", system)
             if code_system is None:
-                raise _Unexpandable(f"code system {system} not in the package")
+                raise _UnexpandableError(f"code system {system} not in the package")
             if code_system.get("content") != "complete":
-                raise _Unexpandable(f"code system {system} content is {code_system.get('content')}")
+                raise _UnexpandableError(
+                    f"code system {system} content is {code_system.get('content')}"
+                )
             sets.append(frozenset(_all_concepts(system, code_system.get("concept", []))))
     if not sets:
         return frozenset()
     return frozenset.intersection(*sets)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _expand(url: str, seen: frozenset[str] = frozenset()) -> frozenset[tuple[str, str]]:
     """(system, code) pairs of a ValueSet, from compose.include minus compose.exclude."""
     if url in seen:
-        raise _Unexpandable(f"value set {url} imports itself")
+        raise _UnexpandableError(f"value set {url} imports itself")
     value_set = _by_canonical("ValueSet", url)
     if value_set is None:
-        raise _Unexpandable(f"value set {url} not in the package")
+        raise _UnexpandableError(f"value set {url} not in the package")
     compose = value_set.get("compose")
     if not compose:
-        raise _Unexpandable(f"value set {url} has no compose")
+        raise _UnexpandableError(f"value set {url} has no compose")
     inner = seen | {url}
     included = frozenset().union(*(_expand_part(p, inner) for p in compose.get("include", [])))
     excluded = frozenset().union(*(_expand_part(p, inner) for p in compose.get("exclude", [])))
@@ -367,7 +380,7 @@ def _expand(url: str, seen: frozenset[str] = frozenset()) -> frozenset[tuple[str
 # ---------------------------------------------------------------------------
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _proto_class(resource_type: str) -> type[_pb_message.Message] | None:
     """The generated proto class for a resource type, e.g. Procedure -> procedure_pb2.Procedure."""
     if not re.fullmatch(r"[A-Z][A-Za-z]+", resource_type):
@@ -385,29 +398,42 @@ def _proto_class(resource_type: str) -> type[_pb_message.Message] | None:
 
 
 def _google_problems(resource: JsonObject, where: str) -> list[str]:
-    """Parse+validate one resource with google-fhir-r4; nested Bundle entries separately."""
+    """Parse+validate one resource with google-fhir-r4; nested resources separately.
+
+    google-fhir stops at the first error, and it does not validate contained
+    resources at all (they are packed into protobuf ``Any``, which its
+    validator skips).  So Bundle entry resources and contained resources are
+    taken out and parsed on their own: one verdict per resource, none lost.
+    """
     resource_type = str(resource.get("resourceType"))
     problems: list[str] = []
-    own = resource
+    own = dict(resource)
+    contained = resource.get("contained")
+    if isinstance(contained, list):
+        for index, inner in enumerate(contained):
+            if isinstance(inner, dict):
+                problems += _google_problems(inner, f"{where}{resource_type}.contained[{index}]: ")
+        own.pop("contained")
     entries = resource.get("entry") if resource_type == "Bundle" else None
     if isinstance(entries, list):
-        # google-fhir stops at the first error; parse each entry resource on
-        # its own so one bad entry does not hide the others.
-        own = dict(resource)
         own["entry"] = []
         for index, entry in enumerate(entries):
             if isinstance(entry, dict) and isinstance(entry.get("resource"), dict):
-                problems += _google_problems(entry["resource"], f"{where}Bundle.entry[{index}].resource: ")
+                problems += _google_problems(
+                    entry["resource"], f"{where}Bundle.entry[{index}].resource: "
+                )
                 entry = {k: v for k, v in entry.items() if k != "resource"}
             own["entry"].append(entry)
         if not own["entry"]:
             del own["entry"]
     cls = _proto_class(resource_type)
     if cls is None:
-        return [f"{where}{resource_type}: google-fhir-r4 has no R4 resource class for this resourceType"]
+        return [
+            f"{where}{resource_type}: google-fhir-r4 has no R4 resource class for this resourceType"
+        ]
     try:
         json_format.json_fhir_string_to_proto(json.dumps(own), cls, validate=True)
-    except Exception as exc:  # noqa: BLE001 - it raises ValueError, InvalidFhirError, KeyError...
+    except Exception as exc:  # it raises InvalidFhirError, ValueError, AttributeError...
         text = str(exc).replace("google.fhir.r4.core.", "")
         problems.insert(0, f"{where}{resource_type}: google-fhir-r4 structural check: {text}")
     return problems
@@ -418,9 +444,20 @@ def _google_problems(resource: JsonObject, where: str) -> list[str]:
 # ---------------------------------------------------------------------------
 
 
-@functools.lru_cache(maxsize=None)
+def _node(data: Any, path: str, primitive_part: Any = None) -> ResourceNode:
+    """A fhirpathpy node carrying its type/definition path, e.g. ("Observation.component").
+
+    With the path, fhirpathpy's R4 model resolves choice elements (``value`` ->
+    ``valueQuantity``) and element types inside the node, as it would when
+    navigating down from the resource root.
+    """
+    node: ResourceNode = ResourceNode.create_node(data, path, _data=primitive_part)  # type: ignore[no-untyped-call]
+    return node
+
+
+@functools.cache
 def _compiled(expression: str) -> FhirPathFn:
-    return fhirpathpy.compile(expression, _FHIRPATH_MODELS["r4"], dict(_FHIRPATH_OPTIONS))
+    return fhirpathpy.compile(expression, fhirpath_models["r4"], dict(_FHIRPATH_OPTIONS))
 
 
 _JSON_NUMBER_TYPES: Final = frozenset({"decimal", "integer", "unsignedInt", "positiveInt"})
@@ -451,7 +488,9 @@ class _Walker:
 
     def resource(self, data: Any, where: str, root: JsonObject | None) -> None:
         if not isinstance(data, dict):
-            self.problems.append(f"{where}resource: expected a JSON object, got {type(data).__name__}")
+            self.problems.append(
+                f"{where}resource: expected a JSON object, got {type(data).__name__}"
+            )
             return
         resource_type = data.get("resourceType")
         model = _type_model(resource_type) if isinstance(resource_type, str) else None
@@ -459,7 +498,15 @@ class _Walker:
             self.problems.append(f"{where}resource: unknown resourceType {resource_type!r}")
             return
         context = _Context(where=where, resource=data, root=root if root is not None else data)
-        self._object(data, model, model.root.path, model.root.path, resource_type, model.root.constraints, context)
+        self._object(
+            data,
+            model,
+            model.root.path,
+            model.root.path,
+            resource_type,
+            model.root.constraints,
+            context,
+        )
 
     # -- objects -----------------------------------------------------------
 
@@ -473,7 +520,7 @@ class _Walker:
         constraints: tuple[_Constraint, ...],
         context: _Context,
     ) -> None:
-        self._invariants(ResourceNode.create_node(data, fhirpath_path), constraints, ipath, context)
+        self._invariants(_node(data, fhirpath_path), constraints, ipath, context)
         props = model.children.get(def_path, {})
         is_resource_root = "." not in def_path and def_path == data.get("resourceType")
         choices_used: dict[str, list[str]] = {}
@@ -486,12 +533,16 @@ class _Walker:
             name = key[1:] if primitive_part else key
             child = props.get(name)
             if child is None:
-                self.problems.append(f"{context.where}{ipath}.{key}: unknown element (not in {def_path})")
+                self.problems.append(
+                    f"{context.where}{ipath}.{key}: unknown element (not in {def_path})"
+                )
                 continue
             element, code = child
             if primitive_part:
                 if not _is_primitive(code):
-                    self.problems.append(f"{context.where}{ipath}.{key}: '_' form used on non-primitive {code}")
+                    self.problems.append(
+                        f"{context.where}{ipath}.{key}: '_' form used on non-primitive {code}"
+                    )
                 elif name not in data:
                     # Only id/extension, no value: walk it here; with a value it
                     # is walked together with the value below.
@@ -503,7 +554,9 @@ class _Walker:
         for path, keys in choices_used.items():
             if len(keys) > 1:
                 # google-fhir-r4 0.11 silently keeps the last one of these.
-                self.problems.append(f"{context.where}{ipath}: more than one value for {path}: {', '.join(keys)}")
+                self.problems.append(
+                    f"{context.where}{ipath}: more than one value for {path}: {', '.join(keys)}"
+                )
 
     def _property(
         self,
@@ -523,14 +576,24 @@ class _Walker:
                 self.problems.append(f"{context.where}{path}: must be a JSON array (max > 1)")
                 return
             if not present:
-                self.problems.append(f"{context.where}{path}: empty array (omit the property instead)")
+                self.problems.append(
+                    f"{context.where}{path}: empty array (omit the property instead)"
+                )
+                return
+            if value is not None and not isinstance(value, list):
+                self.problems.append(f"{context.where}{path}: must be a JSON array (max > 1)")
+                return
+            if primitive_part is not None and not isinstance(primitive_part, list):
+                self.problems.append(f"{context.where}{path}: '_{name}' must be a JSON array")
                 return
             values = value if isinstance(value, list) else [None] * len(present)
             parts = primitive_part if isinstance(primitive_part, list) else [None] * len(values)
             if len(parts) != len(values):
-                self.problems.append(f"{context.where}{path}: value and '_{name}' arrays differ in length")
+                self.problems.append(
+                    f"{context.where}{path}: value and '_{name}' arrays differ in length"
+                )
                 return
-            for index, (item, part) in enumerate(zip(values, parts)):
+            for index, (item, part) in enumerate(zip(values, parts, strict=True)):
                 self._item(element, code, item, part, model, f"{path}[{index}]", context)
         else:
             if isinstance(present, list):
@@ -560,21 +623,25 @@ class _Walker:
                 if not isinstance(primitive_part, dict) or element_model is None:
                     self.problems.append(f"{where}{ipath}: '_' part must be a JSON object")
                 else:
-                    self._object(primitive_part, element_model, "Element", "Element", ipath, (), context)
+                    self._object(
+                        primitive_part, element_model, "Element", "Element", ipath, (), context
+                    )
             if code == "xhtml" and isinstance(value, str):
                 self.problems += [f"{where}{ipath}: {text}" for text in _xhtml_problems(value)]
             # Mirror how fhirpathpy itself builds a primitive node: with no value,
             # the '_' object (id/extension) *is* the node's data.
             if value is None:
-                node = ResourceNode.create_node(primitive_part, code)
+                node = _node(primitive_part, code)
             else:
-                node = ResourceNode.create_node(value, code, _data=primitive_part)
+                node = _node(value, code, primitive_part)
             self._invariants(node, element.constraints, ipath, context)
             if value is not None:
                 self._binding(element, code, value, ipath, where)
             return
         if not isinstance(value, dict):
-            self.problems.append(f"{where}{ipath}: expected a JSON object for {code}, got {type(value).__name__}")
+            self.problems.append(
+                f"{where}{ipath}: expected a JSON object for {code}, got {type(value).__name__}"
+            )
             return
         if code == "Resource":
             # Bundle.entry.resource, DomainResource.contained, Parameters...resource:
@@ -587,7 +654,9 @@ class _Walker:
             target = element.content_reference
             self._object(value, model, target, target, ipath, element.constraints, context)
         elif code in ("BackboneElement", "Element") and element.path in model.children:
-            self._object(value, model, element.path, element.path, ipath, element.constraints, context)
+            self._object(
+                value, model, element.path, element.path, ipath, element.constraints, context
+            )
         else:
             datatype = _type_model(code)
             if datatype is None:
@@ -613,34 +682,47 @@ class _Walker:
         else:
             ok = isinstance(value, str)
         if not ok:
-            self.problems.append(f"{where}{ipath}: {value!r} is not a valid JSON value for FHIR {code}")
+            self.problems.append(
+                f"{where}{ipath}: {value!r} is not a valid JSON value for FHIR {code}"
+            )
             return
         if isinstance(value, str):
             if value == "":
-                self.problems.append(f"{where}{ipath}: empty string (FHIR JSON: omit the element instead)")
+                self.problems.append(
+                    f"{where}{ipath}: empty string (FHIR JSON: omit the element instead)"
+                )
                 return
             primitive = _type_model(code)
             regex = primitive.value_regex if primitive else None
             if regex is not None and not regex.fullmatch(value):
-                self.problems.append(f"{where}{ipath}: {value!r} does not match the {code} format {regex.pattern}")
+                self.problems.append(
+                    f"{where}{ipath}: {value!r} does not match the {code} format {regex.pattern}"
+                )
 
-    def _invariants(self, node: ResourceNode, constraints: tuple[_Constraint, ...], ipath: str, context: _Context) -> None:
+    def _invariants(
+        self,
+        node: ResourceNode,
+        constraints: tuple[_Constraint, ...],
+        ipath: str,
+        context: _Context,
+    ) -> None:
         variables = {"resource": context.resource, "rootResource": context.root}
         for constraint in constraints:
             if constraint.key in _SKIPPED_INVARIANTS:
                 continue
             try:
                 result = _compiled(constraint.expression)(node, variables)
-            except Exception as exc:  # noqa: BLE001 - any failure must surface, not pass
+            except Exception as exc:  # any failure must surface as a problem, not pass
                 self.problems.append(
-                    f"{context.where}{ipath}: invariant {constraint.key} could not be evaluated by fhirpathpy "
-                    f"({type(exc).__name__}: {exc}); expression: {constraint.expression}"
+                    f"{context.where}{ipath}: invariant {constraint.key} could not be evaluated"
+                    f" by fhirpathpy ({type(exc).__name__}: {exc});"
+                    f" expression: {constraint.expression}"
                 )
                 continue
             if result == [False]:
                 self.problems.append(
-                    f"{context.where}{ipath}: invariant {constraint.key} failed: {constraint.expression}"
-                    f" ({constraint.human})"
+                    f"{context.where}{ipath}: invariant {constraint.key} failed:"
+                    f" {constraint.expression} ({constraint.human})"
                 )
 
     def _binding(self, element: _Element, code: str, value: Any, ipath: str, where: str) -> None:
@@ -651,8 +733,10 @@ class _Walker:
             return
         try:
             members = _expand(url)
-        except _Unexpandable as exc:
-            self.problems.append(f"{where}{ipath}: required value set {url} cannot be expanded here ({exc})")
+        except _UnexpandableError as exc:
+            self.problems.append(
+                f"{where}{ipath}: required value set {url} cannot be expanded here ({exc})"
+            )
             return
         if code == "code":
             if value not in {c for _, c in members}:
@@ -660,51 +744,97 @@ class _Walker:
         elif code == "Coding":
             pair = (value.get("system"), value.get("code"))
             if pair not in members:
-                self.problems.append(f"{where}{ipath}: {pair[0]}#{pair[1]} not in required value set {url}")
+                self.problems.append(
+                    f"{where}{ipath}: {pair[0]}#{pair[1]} not in required value set {url}"
+                )
         else:
             codings = [c for c in value.get("coding", []) if isinstance(c, dict)]
             if not any((c.get("system"), c.get("code")) in members for c in codings):
-                found = ", ".join(f"{c.get('system')}#{c.get('code')}" for c in codings) or "no coding"
-                self.problems.append(f"{where}{ipath}: no coding from required value set {url} ({found})")
+                found = (
+                    ", ".join(f"{c.get('system')}#{c.get('code')}" for c in codings) or "no coding"
+                )
+                self.problems.append(
+                    f"{where}{ipath}: no coding from required value set {url} ({found})"
+                )
 
 
 _XHTML_NS: Final = "{http://www.w3.org/1999/xhtml}"
-#: From FHIR R4 narrative.html: the narrative XHTML SHALL NOT contain a head or
-#: body, scripts, forms, base/link references, frames, iframes or objects, nor
-#: event attributes (on*).  A deliberately small stand-in for txt-1.
-_XHTML_FORBIDDEN: Final = frozenset(
-    {"html", "head", "body", "script", "form", "input", "button", "select", "textarea", "base",
-     "link", "meta", "style", "frame", "frameset", "iframe", "object", "applet", "embed"}
-)
+_XML_NS: Final = "{http://www.w3.org/XML/1998/namespace}"
+
+
+@functools.cache
+def _txt1_whitelists() -> tuple[frozenset[str], frozenset[str]]:
+    """The element and attribute names txt-1 allows, read from the package.
+
+    The R4 StructureDefinition-Narrative still carries txt-1's XPath form:
+    ``not(descendant-or-self::*[not(local-name(.)=('a', 'abbr', ...))]) and
+    not(descendant-or-self::*/@*[not(name(.)=('abbr', 'accesskey', ...))])``.
+    """
+    sd = _package_json("StructureDefinition-Narrative.json") or {}
+    xpath = next(
+        str(c["xpath"])
+        for e in sd["snapshot"]["element"]
+        if e["path"] == "Narrative.div"
+        for c in e.get("constraint", [])
+        if c["key"] == "txt-1"
+    )
+    lists = re.findall(r"=\(([^)]*)\)", xpath)
+    if len(lists) != 2:
+        raise RuntimeError(f"unexpected txt-1 XPath in the core package: {xpath}")
+    elements, attributes = (frozenset(re.findall(r"'([^']+)'", names)) for names in lists)
+    return elements, attributes
 
 
 def _xhtml_problems(div: str) -> list[str]:
-    """Approximate txt-1/txt-2 (htmlChecks(), which fhirpathpy lacks) in Python.
+    """txt-1/txt-2 in Python, since fhirpathpy lacks their ``htmlChecks()``.
 
-    Narrative.div must be one well-formed XHTML ``<div>`` in the XHTML
-    namespace (FHIR R4 narrative.html / the xhtml type), txt-2 wants some
-    non-whitespace content, txt-1 allows only basic formatting elements.  Only
-    the clear-cut parts are checked; this errs on the side of accepting.
+    Follows the XPath forms of txt-1 (element and attribute whitelists, see
+    _txt1_whitelists) and txt-2 (``descendant::text()[normalize-space(.)!='']
+    or descendant::h:img[@src]``) shipped in the package, plus the xhtml type's
+    rule that the value is one XHTML ``<div>`` (FHIR R4 narrative.html).
     """
-    label = "invariant txt-1/txt-2 (htmlChecks, approximated in Python)"
+    label = "invariant txt-1/txt-2 (from their XPath form)"
+    # HTML named entities (&nbsp; ...) are not XML; accept them as the
+    # characters they stand for rather than calling the XHTML malformed.
+    text = re.sub(
+        r"&([A-Za-z][A-Za-z0-9]*);",
+        lambda m: (
+            f"&#{html.entities.name2codepoint[m[1]]};"
+            if m[1] in html.entities.name2codepoint and m[1] not in _XML_ENTITIES
+            else m[0]
+        ),
+        div,
+    )
     try:
-        root = ElementTree.fromstring(div)
+        root = ElementTree.fromstring(text)
     except ElementTree.ParseError as exc:
-        return [f"{label}: not well-formed XML ({exc})"]
+        return [f"{label}: not well-formed XHTML ({exc})"]
     if root.tag != _XHTML_NS + "div":
-        return [f"{label}: root element must be <div xmlns=\"http://www.w3.org/1999/xhtml\">, got {root.tag}"]
+        return [
+            f'{label}: must be one <div xmlns="http://www.w3.org/1999/xhtml">, got <{root.tag}>'
+        ]
+    allowed_elements, allowed_attributes = _txt1_whitelists()
     problems: list[str] = []
     for node in root.iter():
-        local = node.tag.removeprefix(_XHTML_NS) if isinstance(node.tag, str) else str(node.tag)
-        if not isinstance(node.tag, str) or not node.tag.startswith(_XHTML_NS):
-            problems.append(f"{label}: element {node.tag} is not in the XHTML namespace")
-        elif local in _XHTML_FORBIDDEN:
-            problems.append(f"{label}: <{local}> is not allowed in a narrative")
-        problems += [f"{label}: event attribute {a} on <{local}>" for a in node.attrib if a.lower().startswith("on")]
-    has_image = any(node.tag == _XHTML_NS + "img" for node in root.iter())
+        tag = str(node.tag)
+        local = tag.rsplit("}", 1)[-1]
+        if not tag.startswith(_XHTML_NS):
+            problems.append(f"{label}: element {tag} is not in the XHTML namespace")
+        elif local not in allowed_elements:
+            problems.append(f"{label}: txt-1 element <{local}> is not allowed in a narrative")
+        for attribute in node.attrib:
+            # xml:lang is XHTML's twin of lang (XHTML 1.0 C.7 says use both);
+            # XPath name() would call it "xml:lang", which the list lacks.
+            name = "lang" if attribute == _XML_NS + "lang" else attribute
+            if name not in allowed_attributes:
+                problems.append(f"{label}: txt-1 attribute {name} on <{local}> is not allowed")
+    has_image = any(node.tag == _XHTML_NS + "img" and "src" in node.attrib for node in root.iter())
     if not "".join(root.itertext()).strip() and not has_image:
         problems.append(f"{label}: txt-2 the narrative has no non-whitespace content")
     return problems
+
+
+_XML_ENTITIES: Final = frozenset({"lt", "gt", "amp", "quot", "apos"})
 
 
 @dataclass(frozen=True)

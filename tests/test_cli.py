@@ -19,8 +19,12 @@ NOW = "2026-12-01T12:00:00+00:00"
 def capnote(*args: str, env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
         [sys.executable, "-c", "from service.cli import main; main()", *args],
-        capture_output=True, text=True, cwd=ROOT, timeout=120,
-        env={**os.environ, **(env or {})}, check=False,
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+        timeout=120,
+        env={**os.environ, **(env or {})},
+        check=False,
     )
 
 

@@ -55,8 +55,15 @@ def test_energy_bands(policy: Policy, total: float, band: int) -> None:
 @pytest.mark.parametrize(
     ("rise", "grade"),
     # Chawla et al., ESCRS 2014: mild < 5, moderate 5-9, severe >= 10 mmHg.
-    [(-2.0, "none"), (0.0, "none"), (4.9, "mild"), (5.0, "moderate"), (9.9, "moderate"),
-     (10.0, "severe"), (31.0, "severe")],
+    [
+        (-2.0, "none"),
+        (0.0, "none"),
+        (4.9, "mild"),
+        (5.0, "moderate"),
+        (9.9, "moderate"),
+        (10.0, "severe"),
+        (31.0, "severe"),
+    ],
 )
 def test_spike_grades(policy: Policy, rise: float, grade: str) -> None:
     assert spike_grade(rise, policy.thresholds) == grade
@@ -124,7 +131,9 @@ def test_first_session_has_no_gap() -> None:
         ({"uveitis": True}, "uveitis"),
     ],
 )
-def test_risk_factors_raise_the_level(policy: Policy, factors: dict[str, object], reason: str) -> None:
+def test_risk_factors_raise_the_level(
+    policy: Policy, factors: dict[str, object], reason: str
+) -> None:
     before = IopReading(value_mmhg=16, method="applanation")
     course = iop_course(before, [], T0, policy.thresholds)
     band = energy_band(20, policy.thresholds.total_energy_bands_mj)

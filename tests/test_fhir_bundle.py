@@ -76,7 +76,9 @@ def test_eye_codes(assessor: Assessor, eye: str, structure: str, iop_loinc: str,
     [proc] = resources(bundle, "Procedure")
     assert codes_of(proc["bodySite"][0], SNOMED) == [structure]
     assert codes_of(proc["reasonCode"][0], "http://hl7.org/fhir/sid/icd-10-cm") == [icd]
-    iops = [o for o in resources(bundle, "Observation") if codes_of(o["code"], LOINC) == [iop_loinc]]
+    iops = [
+        o for o in resources(bundle, "Observation") if codes_of(o["code"], LOINC) == [iop_loinc]
+    ]
     assert len(iops) == 2  # before and after
     assert all(codes_of(o["bodySite"], SNOMED) == [structure] for o in iops)
 
@@ -121,7 +123,8 @@ def test_entries_are_conditional_creates_with_unique_urns(assessor: Assessor) ->
         assert {"system": system, "value": value} in entry["resource"]["identifier"]
     # every urn:uuid reference points at an entry of this Bundle
     refs = {n["reference"] for n in walk(bundle) if isinstance(n.get("reference"), str)}
-    assert refs and refs <= set(urls)
+    assert refs
+    assert refs <= set(urls)
 
 
 def test_same_note_gives_same_bundle_and_another_note_another(assessor: Assessor) -> None:
@@ -131,7 +134,8 @@ def test_same_note_gives_same_bundle_and_another_note_another(assessor: Assessor
     other = routine()
     other["note_id"]["value"] = "LN-2026-9999"
     third = assessed(assessor, other).bundle
-    assert first is not None and third is not None
+    assert first is not None
+    assert third is not None
     assert not {e["fullUrl"] for e in first["entry"]} & {e["fullUrl"] for e in third["entry"]}
 
 
@@ -149,7 +153,9 @@ def test_due_items_carry_their_window(assessor: Assessor) -> None:
     bundle = assessed(assessor, routine()).bundle
     assert bundle is not None
     review = next(
-        s for s in resources(bundle, "ServiceRequest") if s["code"]["coding"][0]["code"] == "capsulotomy-review"
+        s
+        for s in resources(bundle, "ServiceRequest")
+        if s["code"]["coding"][0]["code"] == "capsulotomy-review"
     )
     timing = review["occurrenceTiming"]
     # UK bank holidays 2026: 25 Dec target moved to Tue 29 Dec (see tests/test_schedule.py)
@@ -157,7 +163,9 @@ def test_due_items_carry_their_window(assessor: Assessor) -> None:
     assert timing["repeat"]["boundsPeriod"] == {"start": "2026-12-18", "end": "2027-01-08"}
     assert "Christmas Day" in review["note"][0]["text"]
     recheck = next(
-        s for s in resources(bundle, "ServiceRequest") if s["code"]["coding"][0]["code"] == "iop-recheck"
+        s
+        for s in resources(bundle, "ServiceRequest")
+        if s["code"]["coding"][0]["code"] == "iop-recheck"
     )
     assert recheck["status"] == "completed"  # the note's 60-minute reading lies in the window
 
@@ -169,10 +177,20 @@ def test_derived_observations_link_their_inputs(assessor: Assessor) -> None:
     observations = resources(bundle, "Observation")
     derived = [o for o in observations if "derivedFrom" in o]
     names = {o["code"]["coding"][0]["code"] for o in derived}
-    assert {"total-energy", "total-pulses", "focal-fluence-idealised", "opening-area", "iop-change"} <= names
+    assert {
+        "total-energy",
+        "total-pulses",
+        "focal-fluence-idealised",
+        "opening-area",
+        "iop-change",
+    } <= names
     for o in derived:
-        assert all(by_url[r["reference"]]["resourceType"] == "Observation" for r in o["derivedFrom"])
-    fluence = next(o for o in derived if o["code"]["coding"][0]["code"] == "focal-fluence-idealised")
+        assert all(
+            by_url[r["reference"]]["resourceType"] == "Observation" for r in o["derivedFrom"]
+        )
+    fluence = next(
+        o for o in derived if o["code"]["coding"][0]["code"] == "focal-fluence-idealised"
+    )
     assert "Idealised" in fluence["note"][0]["text"]
 
 
@@ -181,9 +199,17 @@ def test_prophylaxis_and_take_home_drops(assessor: Assessor) -> None:
     assert bundle is not None
     given = resources(bundle, "MedicationAdministration")
     assert [g["effectiveDateTime"] for g in given] == [
-        "2026-11-27T10:05:00+00:00", "2026-11-27T10:15:00+00:00"  # before and after
+        "2026-11-27T10:05:00+00:00",
+        "2026-11-27T10:15:00+00:00",  # before and after
     ]
     [home] = resources(bundle, "MedicationRequest")
     repeat = home["dosageInstruction"][0]["timing"]["repeat"]
     assert (repeat["frequency"], repeat["period"], repeat["periodUnit"]) == (4, 1, "d")
     assert repeat["boundsDuration"]["value"] == 7
+
+
+@pytest.mark.parametrize("path", VALID, ids=lambda p: p.name)
+def test_committed_example_bundles_are_current(assessor: Assessor, path: Path) -> None:
+    # examples/bundles/ shows what each demo note produces; regenerate with capnote emit.
+    committed = (path.parents[1] / "bundles" / f"{path.stem}.bundle.json").read_text()
+    assert json.loads(committed) == assessed(assessor, path).bundle

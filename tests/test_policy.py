@@ -31,7 +31,8 @@ def test_every_default_names_its_source() -> None:
     assert len(tables) > 30
     for section in ("limits", "thresholds", "schedule"):
         for key, value in data[section].items():
-            assert isinstance(value, dict) and value.get("source"), f"{section}.{key} has no source"
+            assert isinstance(value, dict), f"{section}.{key} is not a sourced table"
+            assert value.get("source"), f"{section}.{key} has no source"
     assert all(t["source"].strip() for _, t in tables)
 
 
@@ -67,7 +68,9 @@ def test_site_file_overrides_a_value_and_takes_the_source(tmp_path: Path) -> Non
         ("[calendar\n", "not valid TOML"),
     ],
 )
-def test_bad_site_file_is_a_policy_error_naming_the_problem(tmp_path: Path, text: str, words: str) -> None:
+def test_bad_site_file_is_a_policy_error_naming_the_problem(
+    tmp_path: Path, text: str, words: str
+) -> None:
     site = tmp_path / "site.toml"
     site.write_text(text)
     with pytest.raises(PolicyError, match=words):
@@ -84,8 +87,11 @@ def test_settings_override_the_calendar() -> None:
 
 @pytest.mark.parametrize(
     ("update", "words"),
-    [({"timezone": "Mars/Olympus"}, "IANA"), ({"holiday_country": "XX"}, "holidays package"),
-     ({"holiday_subdivision": "NOPE"}, "holidays package")],
+    [
+        ({"timezone": "Mars/Olympus"}, "IANA"),
+        ({"holiday_country": "XX"}, "holidays package"),
+        ({"holiday_subdivision": "NOPE"}, "holidays package"),
+    ],
 )
 def test_unknown_calendar_is_a_policy_error(update: dict[str, str], words: str) -> None:
     cal = load_policy().calendar.model_copy(update=update)

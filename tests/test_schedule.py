@@ -7,8 +7,6 @@ from datetime import UTC, date, datetime, time, timedelta
 from typing import Any
 from zoneinfo import ZoneInfo
 
-import pytest
-
 from schemas.note import Note
 from service.clinic_calendar import PolicyCalendar
 from service.derive import derive
@@ -53,7 +51,10 @@ def test_review_on_christmas_moves_past_boxing_day_substitute(policy: Policy) ->
     assert review.moved_from.date() == date(2026, 12, 25)
     assert review.target.date() == date(2026, 12, 29)
     assert [c.day for c in review.passed_over] == [
-        date(2026, 12, 25), date(2026, 12, 26), date(2026, 12, 27), date(2026, 12, 28)
+        date(2026, 12, 25),
+        date(2026, 12, 26),
+        date(2026, 12, 27),
+        date(2026, 12, 28),
     ]
     assert review.passed_over[0].reason == "Christmas Day"
     assert "Boxing Day" in review.passed_over[3].reason
@@ -102,9 +103,7 @@ def test_recheck_after_closing_with_no_open_time_in_window_is_flagged(policy: Po
 def test_next_day_check_for_advanced_glaucoma_moves_off_sunday(policy: Policy) -> None:
     # Nesher & Kolker 1990: next-day check in advanced glaucoma. Sat 28 Nov 10:15 + 24 h is a
     # Sunday; Mon 08:30 is 46 h 15 min after, inside the 48 h window.
-    note = note_ending(
-        "2026-11-28T10:15:00+00:00", before__risk_factors={"glaucoma": "advanced"}
-    )
+    note = note_ending("2026-11-28T10:15:00+00:00", before__risk_factors={"glaucoma": "advanced"})
     next_day = items(note, policy)["next-day-iop"]
     assert next_day.target == datetime(2026, 11, 30, 8, 30, tzinfo=LONDON)
     assert next_day.passed_over[0].day == date(2026, 11, 29)
@@ -116,7 +115,9 @@ def test_no_next_day_check_for_a_routine_note(policy: Policy) -> None:
 
 
 def test_raised_risk_brings_the_review_forward(policy: Policy) -> None:
-    note = note_ending("2026-11-23T10:15:00+00:00", before__risk_factors={"lattice_degeneration": True})
+    note = note_ending(
+        "2026-11-23T10:15:00+00:00", before__risk_factors={"lattice_degeneration": True}
+    )
     review = items(note, policy)["review"]
     assert review.target.date() == date(2026, 11, 30)  # Mon 23 Nov + 7 days
     assert review.reasons == ("raised risk: lattice degeneration",)
@@ -146,8 +147,14 @@ def test_whole_window_closed_is_flagged(policy: Policy) -> None:
     # The routine window 14 Dec - 4 Jan has Sundays; close those too by hours: only a
     # calendar with no open day in the window flags it.
     assert review.flag is None
-    shut = PolicyCalendar(LONDON, ["sun"], time(9), time(10), None,
-                          [date(2026, 12, d) for d in range(1, 32)] + [date(2027, 1, d) for d in range(1, 10)])
+    shut = PolicyCalendar(
+        LONDON,
+        ["sun"],
+        time(9),
+        time(10),
+        None,
+        [date(2026, 12, d) for d in range(1, 32)] + [date(2027, 1, d) for d in range(1, 10)],
+    )
     flagged = items(note_ending("2026-11-23T10:15:00+00:00"), policy, shut)["review"]
     assert flagged.flag is not None
     assert flagged.moved_from is None

@@ -31,10 +31,18 @@ def base(note_no: str, mrn: str, eye: str, day: str) -> dict[str, Any]:
         "consent": {"given": True, "recorded_at": f"{day}T09:50:00+00:00"},
         "eye": eye,
         "before": {
-            "iop": {"value_mmhg": 15, "method": "applanation", "measured_at": f"{day}T09:40:00+00:00"},
+            "iop": {
+                "value_mmhg": 15,
+                "method": "applanation",
+                "measured_at": f"{day}T09:40:00+00:00",
+            },
             "visual_acuity": {"notation": "snellen-metric", "value": "6/18"},
             "pupil_dilated": True,
-            "iol": {"optic_diameter_mm": 6.0, "optic_material": "hydrophobic-acrylic", "position": "bag"},
+            "iol": {
+                "optic_diameter_mm": 6.0,
+                "optic_material": "hydrophobic-acrylic",
+                "position": "bag",
+            },
             "cataract_surgery_date": "2025-03-12",
             "risk_factors": {},
         },
@@ -58,7 +66,12 @@ def base(note_no: str, mrn: str, eye: str, day: str) -> dict[str, Any]:
         "plan": {
             "prophylaxis": [{"agent": "apraclonidine", "strength_percent": 1.0, "timing": "both"}],
             "take_home": [
-                {"agent": "prednisolone acetate", "strength_percent": 1.0, "times_per_day": 4, "days": 7}
+                {
+                    "agent": "prednisolone acetate",
+                    "strength_percent": 1.0,
+                    "times_per_day": 4,
+                    "days": 7,
+                }
             ],
             "rd_warning_given": True,
             "further_session_planned": False,
@@ -74,11 +87,15 @@ def valid_notes() -> dict[str, dict[str, Any]]:
 
     left = base("LN-2026-0418", "HX100871", "left", "2026-11-27")
     left["before"]["risk_factors"] = {
-        "high_myopia": True, "axial_length_mm": 26.4, "lattice_degeneration": True,
+        "high_myopia": True,
+        "axial_length_mm": 26.4,
+        "lattice_degeneration": True,
     }
     left["before"]["visual_acuity"] = {"notation": "snellen-imperial", "value": "20/60"}
     left["laser"]["series"] = [
-        {"energy_mj": 1.2, "pulses": 10}, {"energy_mj": 1.8, "pulses": 14}, {"energy_mj": 2.2, "pulses": 6},
+        {"energy_mj": 1.2, "pulses": 10},
+        {"energy_mj": 1.8, "pulses": 14},
+        {"energy_mj": 2.2, "pulses": 6},
     ]
     left["laser"]["reported_total_energy_mj"] = 50.0
     left["laser"]["pattern"] = "circular"
@@ -101,7 +118,10 @@ def valid_notes() -> dict[str, dict[str, Any]]:
     glaucoma = base("LN-2026-0425", "HX100990", "left", "2026-11-26")
     glaucoma["before"]["iop"]["value_mmhg"] = 19
     glaucoma["before"]["risk_factors"] = {"glaucoma": "advanced"}
-    glaucoma["laser"]["series"] = [{"energy_mj": 2.4, "pulses": 20}, {"energy_mj": 3.5, "pulses": 6}]
+    glaucoma["laser"]["series"] = [
+        {"energy_mj": 2.4, "pulses": 20},
+        {"energy_mj": 3.5, "pulses": 6},
+    ]
     glaucoma["laser"]["reported_total_energy_mj"] = None
     glaucoma["laser"]["contact_lens"] = {"used": False}
     glaucoma["plan"]["prophylaxis"] = []
@@ -135,23 +155,44 @@ def invalid_notes() -> dict[str, Any]:
         out[name] = note
 
     variant("eye-both", lambda n: n.update(eye="both"))
-    variant("energy-zero-pulses-negative", lambda n: n["laser"].update(
-        series=[{"energy_mj": 0, "pulses": 12}, {"energy_mj": 1.5, "pulses": -3}],
-        reported_total_energy_mj=None))
-    variant("energy-beyond-device", lambda n: n["laser"].update(
-        series=[{"energy_mj": 25, "pulses": 5}], reported_total_energy_mj=None))
+    variant(
+        "energy-zero-pulses-negative",
+        lambda n: n["laser"].update(
+            series=[{"energy_mj": 0, "pulses": 12}, {"energy_mj": 1.5, "pulses": -3}],
+            reported_total_energy_mj=None,
+        ),
+    )
+    variant(
+        "energy-beyond-device",
+        lambda n: n["laser"].update(
+            series=[{"energy_mj": 25, "pulses": 5}], reported_total_energy_mj=None
+        ),
+    )
     variant("energy-not-a-number", lambda n: n["laser"]["series"][0].update(energy_mj="1.6 mJ"))
     variant("iop-out-of-range", lambda n: n["before"]["iop"].update(value_mmhg=95))
     variant("date-does-not-exist", lambda n: n["before"].update(cataract_surgery_date="2025-02-30"))
-    variant("procedure-in-future", lambda n: n.update(
-        started_at="2031-05-04T10:05:00+00:00", ended_at="2031-05-04T10:15:00+00:00"))
-    variant("iop-reading-before-procedure", lambda n: n["result"]["iop_after"][0].update(
-        measured_at="2026-11-27T09:00:00+00:00"))
-    variant("cataract-after-procedure", lambda n: n["before"].update(cataract_surgery_date="2026-12-20"))
+    variant(
+        "procedure-in-future",
+        lambda n: n.update(
+            started_at="2031-05-04T10:05:00+00:00", ended_at="2031-05-04T10:15:00+00:00"
+        ),
+    )
+    variant(
+        "iop-reading-before-procedure",
+        lambda n: n["result"]["iop_after"][0].update(measured_at="2026-11-27T09:00:00+00:00"),
+    )
+    variant(
+        "cataract-after-procedure", lambda n: n["before"].update(cataract_surgery_date="2026-12-20")
+    )
     variant("reported-total-disagrees", lambda n: n["laser"].update(reported_total_energy_mj=60))
-    variant("opening-impossible", lambda n: n["result"].update(
-        opening={"horizontal_mm": 14.0, "centred": True}))
-    variant("missing-required", lambda n: (n.pop("eye"), n["before"].pop("iop"), n["plan"].pop("rd_warning_given")))
+    variant(
+        "opening-impossible",
+        lambda n: n["result"].update(opening={"horizontal_mm": 14.0, "centred": True}),
+    )
+    variant(
+        "missing-required",
+        lambda n: (n.pop("eye"), n["before"].pop("iop"), n["plan"].pop("rd_warning_given")),
+    )
     variant("no-utc-offset", lambda n: n.update(started_at="2026-11-27T10:05:00"))
     variant("unknown-field", lambda n: n["laser"].update(power_watts=3))
     return out

@@ -139,6 +139,7 @@ def binding_problems(resource: dict[str, Any]) -> list[tuple[str, str, str]]:
         if owner not in (kind, "*"):
             continue
         for where, value in _values(resource, path.split(".")):
-            if value not in allowed:
+            # A non-string (an object, a number) is never a code: report it, don't hash it.
+            if not isinstance(value, str) or value not in allowed:
                 problems.append((f"{kind}{where}", str(value), value_set))
     return problems
