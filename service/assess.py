@@ -45,12 +45,29 @@ class Assessor:
         self.calendar = calendar or PolicyCalendar.from_policy(policy.calendar)
 
     def assess(
-        self, payload: bytes | str, now: datetime, prior: Sequence[PriorSession] = ()
+        self,
+        payload: bytes | str,
+        now: datetime,
+        prior: Sequence[PriorSession] = (),
+        version: int = 1,
+        voided: bool = False,
     ) -> Assessment:
         """Check a raw note and, when it is clean of errors, derive, schedule and emit."""
         note, findings = check_payload(payload, Context(self.policy, now))
         if note is None or has_errors(findings):
             return Assessment(note, findings)
+        return self.complete(note, findings, prior, version, voided)
+
+    def complete(
+        self,
+        note: Note,
+        findings: list[Finding],
+        prior: Sequence[PriorSession] = (),
+        version: int = 1,
+        voided: bool = False,
+    ) -> Assessment:
+        """Derive, schedule and emit for a note that passed its checks."""
         derived = derive(note, self.policy, prior)
         due = schedule(note, derived, self.policy, self.calendar)
-        return Assessment(note, findings, derived, tuple(due), bundle(note, derived, due))
+        emitted = bundle(note, derived, due, version, voided)
+        return Assessment(note, findings, derived, tuple(due), emitted)

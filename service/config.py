@@ -22,6 +22,10 @@ class Settings(BaseSettings):
     holiday_country: str | None = None
     holiday_subdivision: str | None = None
     database_url: str = "sqlite:///capnote.sqlite3"
+    max_body_bytes: int = 1_048_576
+    cors_origins: list[str] = []
+    # `capnote serve` migrates once before starting workers and turns this off for them.
+    migrate_on_start: bool = True
 
 
 def effective_policy(settings: Settings) -> Policy:

@@ -4,6 +4,10 @@
     ├── InputError           (422, invalid)     a payload capnote cannot accept; has findings
     ├── NotFoundError        (404, not-found)   no such record
     ├── ConflictError        (409, conflict)    same identifier, different content
+    ├── PreconditionError    (412, conflict)    If-Match names a version that is not the latest
+    ├── AuthenticationError  (401, login)       no token, or one capnote does not know
+    ├── ForbiddenError       (403, forbidden)   the token's role may not do this
+    ├── PayloadError         (413/415, ...)     a body too large or of the wrong media type
     ├── PolicyError          (500, invalid)     the site policy file is unusable
     ├── EmissionError        (500, exception)   emitted FHIR broke a required binding (a bug)
     └── UnavailableError     (503, transient)   a dependency (database, receiver) is down
@@ -60,6 +64,42 @@ class ConflictError(CapnoteError):
     code = "conflict"
     http_status = 409
     issue_type = "conflict"
+
+
+class PreconditionError(CapnoteError):
+    """If-Match names a version that is no longer the latest."""
+
+    code = "version-conflict"
+    http_status = 412
+    issue_type = "conflict"
+
+
+class AuthenticationError(CapnoteError):
+    """No bearer token, or one that is unknown or revoked."""
+
+    code = "unauthenticated"
+    http_status = 401
+    issue_type = "login"
+
+
+class ForbiddenError(CapnoteError):
+    """The token's role does not allow this."""
+
+    code = "forbidden"
+    http_status = 403
+    issue_type = "forbidden"
+
+
+class PayloadError(CapnoteError):
+    """A body capnote will not read: too large (413) or not JSON (415)."""
+
+    code = "payload-refused"
+    issue_type = "too-costly"
+
+    def __init__(self, message: str, http_status: int, issue_type: str) -> None:
+        super().__init__(message)
+        self.http_status = http_status  # type: ignore[misc]
+        self.issue_type = issue_type  # type: ignore[misc]
 
 
 class PolicyError(CapnoteError):

@@ -21,9 +21,11 @@ from service.fhir.requests import administrations, medication_request, service_r
 from service.schedule import DueItem
 
 
-def entries(note: Note, derived: Derived, due: list[DueItem]) -> list[Entry]:
-    """Every resource for the note, the Procedure first."""
-    ctx = Context(note)
+def entries(
+    note: Note, derived: Derived, due: list[DueItem], version: int = 1, voided: bool = False
+) -> list[Entry]:
+    """Every resource for the note version, the Procedure first."""
+    ctx = Context(note, version, voided)
     proc = procedure(ctx, derived, due)
     out = [proc, *observations(ctx, proc, derived)]
     out += [service_request(ctx, proc, item) for item in due]
@@ -33,9 +35,22 @@ def entries(note: Note, derived: Derived, due: list[DueItem]) -> list[Entry]:
     return out
 
 
-def bundle(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, Any]:
+def _request(entry: Entry, version: int) -> dict[str, str]:
+    """Version 1 creates if absent; later versions update what the receiver holds, found by
+    the same identifier search (conditional update), so every resend stays harmless."""
+    kind = entry.resource["resourceType"]
+    if version == 1:
+        return {"method": "POST", "url": kind, "ifNoneExist": entry.if_none_exist}
+    return {"method": "PUT", "url": f"{kind}?{entry.if_none_exist}"}
+
+
+def bundle(
+    note: Note, derived: Derived, due: list[DueItem], version: int = 1, voided: bool = False
+) -> dict[str, Any]:
     """The transaction Bundle; raises EmissionError rather than emit a bad code."""
-    items = entries(note, derived, due)
+    # No id or meta here: a receiver assigns its own, and a conditional update must not
+    # carry an id that may differ from the matched resource's. The read API adds both.
+    items = entries(note, derived, due, version, voided)
     result: dict[str, Any] = {
         "resourceType": "Bundle",
         "identifier": {"system": RESOURCE_KEY, "value": stable_uuid(note, "bundle")},
@@ -44,11 +59,7 @@ def bundle(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, Any]:
             {
                 "fullUrl": e.full_url,
                 "resource": e.resource,
-                "request": {
-                    "method": "POST",
-                    "url": e.resource["resourceType"],
-                    "ifNoneExist": e.if_none_exist,
-                },
+                "request": _request(e, version),
             }
             for e in items
         ],

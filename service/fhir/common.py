@@ -73,10 +73,14 @@ def keyed(note: Note, role: str, resource: dict[str, Any]) -> Entry:
 
 
 class Context:
-    """References every resource of one note shares: patient, encounter, clinician."""
+    """What every resource of one note version shares: references, version and state."""
 
-    def __init__(self, note: Note) -> None:
+    def __init__(self, note: Note, version: int = 1, voided: bool = False) -> None:
         self.note = note
+        self.version = version
+        self.voided = voided
+        # A later version of a signed note amends what the receiver already holds.
+        self.amended = version > 1 and note.status == "final"
         self.subject: dict[str, Any] = {"identifier": fhir_identifier(note.patient)}
         self.encounter: dict[str, Any] | None = (
             {"identifier": fhir_identifier(note.encounter)} if note.encounter else None
@@ -86,6 +90,16 @@ class Context:
             "display": note.performer.name,
         }
         self.draft = note.status == "draft"
+
+    def status(self, current: str, *, draft: str | None = None, amended: str | None = None) -> str:
+        """A resource's status for this version: void wins, then draft, then amended."""
+        if self.voided:
+            return "entered-in-error"
+        if self.draft and draft is not None:
+            return draft
+        if self.amended and amended is not None:
+            return amended
+        return current
 
     def with_encounter(self, resource: dict[str, Any], field: str = "encounter") -> None:
         """Add the encounter reference where the note has one."""

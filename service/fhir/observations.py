@@ -28,7 +28,7 @@ class ObservationMaker:
     def __init__(self, ctx: Context, procedure: Entry) -> None:
         self.ctx = ctx
         self.procedure = procedure
-        self.status = "preliminary" if ctx.draft else "final"
+        self.status = ctx.status("final", draft="preliminary", amended="amended")
 
     def make(
         self,

@@ -67,7 +67,7 @@ def procedure(ctx: Context, derived: Derived, due: list[DueItem]) -> Entry:
         "identifier": [fhir_identifier(note.note_id)],
         # The procedure happened whatever the note's state; a draft note marks its
         # Observations preliminary instead.
-        "status": "completed",
+        "status": ctx.status("completed"),
         "code": concept(
             coding(SNOMED, codes.DISCISSION_SECONDARY_MEMBRANE),
             own("yag-posterior-capsulotomy"),

@@ -40,7 +40,8 @@ def _due_note(item: DueItem) -> str:
 
 def service_request(ctx: Context, procedure: Entry, item: DueItem) -> Entry:
     """One due item as a ServiceRequest with its window (Timing.repeat.boundsPeriod)."""
-    status = "draft" if ctx.draft else "completed" if item.done_by_reading is not None else "active"
+    done = item.done_by_reading is not None
+    status = ctx.status("completed" if done else "active", draft="draft")
     resource: dict[str, Any] = {
         "resourceType": "ServiceRequest",
         "status": status,
@@ -84,7 +85,7 @@ def administrations(ctx: Context, procedure: Entry, drop: ClinicDrop, index: int
     for label, moment in moments[drop.timing]:
         resource: dict[str, Any] = {
             "resourceType": "MedicationAdministration",
-            "status": "completed",
+            "status": ctx.status("completed"),
             "partOf": [procedure.reference],
             "medicationCodeableConcept": _drug(drop.agent, drop.strength_percent),
             "subject": ctx.subject,
@@ -106,7 +107,7 @@ def medication_request(ctx: Context, procedure: Entry, drop: HomeDrop, index: in
     note = ctx.note
     resource: dict[str, Any] = {
         "resourceType": "MedicationRequest",
-        "status": "draft" if ctx.draft else "active",
+        "status": ctx.status("active", draft="draft"),
         "intent": "order",
         "medicationCodeableConcept": _drug(drop.agent, drop.strength_percent),
         "subject": ctx.subject,

@@ -1,0 +1,1 @@
+"""Thin HTTP routers over service functions."""

@@ -1,0 +1,51 @@
+"""Bearer tokens and roles: one dependency per permission, checked before any work."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from enum import StrEnum
+
+from fastapi import Request
+from sqlmodel import Session
+
+from service.errors import AuthenticationError, ForbiddenError
+from service.notes import Principal
+from service.store import repository as repo
+
+
+class Role(StrEnum):
+    """Who may do what."""
+
+    SUBMITTER = "submitter"  # the EHR integration: create, amend, void, read
+    CLINICIAN = "clinician"  # the form: create, amend, void, check, read
+    ANALYST = "analyst"  # check and validate, read
+    AUDITOR = "auditor"  # read, audit trail
+
+
+WRITE = (Role.SUBMITTER, Role.CLINICIAN)
+CHECK = (Role.SUBMITTER, Role.CLINICIAN, Role.ANALYST)
+READ = (Role.SUBMITTER, Role.CLINICIAN, Role.ANALYST, Role.AUDITOR)
+AUDIT = (Role.AUDITOR,)
+
+
+def allow(*roles: Role) -> Callable[[Request], Principal]:
+    """A dependency that answers 401 without a live token and 403 for another role."""
+    allowed = {r.value for r in roles}
+
+    # A plain function: FastAPI runs it in its thread pool, so the token lookup never blocks
+    # the event loop.
+    def principal(request: Request) -> Principal:
+        header = request.headers.get("authorization", "")
+        scheme, _, token = header.partition(" ")
+        if scheme.lower() != "bearer" or not token.strip():
+            raise AuthenticationError("a bearer token is required")
+        with Session(request.app.state.engine) as session:
+            row = repo.find_token(session, token.strip())
+        if row is None:
+            raise AuthenticationError("the token is unknown or revoked")
+        if row.role not in allowed:
+            raise ForbiddenError(f"the role {row.role} may not do this")
+        client = request.client.host if request.client else None
+        return Principal(label=row.label, role=row.role, remote=client)
+
+    return principal

@@ -1,0 +1,104 @@
+"""The one place where every error becomes an HTTP answer with an OperationOutcome."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Mapping
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import Response
+from starlette.exceptions import HTTPException
+
+from service.api.media import FHIR_JSON, fhir_response
+from service.errors import CapnoteError, PreconditionError, UnavailableError
+from service.fhir.outcome import error_outcome, incident_outcome
+from service.fhir.outcome import issue as finding_issue
+from service.findings import Finding, Severity
+from service.rules.contract import json_path
+
+log = logging.getLogger("capnote.api")
+_HTTP_ISSUE = {
+    404: "not-found",
+    405: "not-supported",
+    406: "not-supported",
+    401: "login",
+    403: "forbidden",
+    413: "too-costly",
+    415: "not-supported",
+}
+
+
+def outcome_response(
+    status: int, body: Mapping[str, object], headers: dict[str, str] | None = None
+) -> Response:
+    """An OperationOutcome answer."""
+    return fhir_response(body, status, headers)
+
+
+async def _capnote_error(_request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, CapnoteError)
+    headers: dict[str, str] = {}
+    if isinstance(exc, UnavailableError):
+        headers["Retry-After"] = "5"
+    if exc.http_status == 401:
+        headers["WWW-Authenticate"] = 'Bearer realm="capnote"'
+    if isinstance(exc, PreconditionError):
+        headers["Cache-Control"] = "no-store"
+    return outcome_response(exc.http_status, error_outcome(exc), headers)
+
+
+async def _validation_error(_request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, RequestValidationError)
+    issues = []
+    for e in exc.errors():
+        loc = [p for p in e.get("loc", ()) if p not in ("body", "query", "path", "header")]
+        where = json_path(loc)
+        issues.append(
+            finding_issue(
+                Finding(
+                    Severity.ERROR,
+                    "request-invalid",
+                    where,
+                    f"{where or 'request'}: {e.get('msg')}",
+                    "the request's parameters",
+                    issue_type="invalid",
+                )
+            )
+        )
+    return outcome_response(422, {"resourceType": "OperationOutcome", "issue": issues})
+
+
+async def _http_error(_request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, HTTPException)
+    body = {
+        "resourceType": "OperationOutcome",
+        "issue": [
+            {
+                "severity": "error",
+                "code": _HTTP_ISSUE.get(exc.status_code, "processing"),
+                "diagnostics": str(exc.detail),
+            }
+        ],
+    }
+    return outcome_response(exc.status_code, body, dict(exc.headers or {}))
+
+
+async def _unexpected(request: Request, exc: Exception) -> Response:
+    incident, body = incident_outcome()
+    # Route and exception type only: a payload or its values never reach the log.
+    log.error(
+        "incident %s: %s on %s %s", incident, type(exc).__name__, request.method, request.url.path
+    )
+    return outcome_response(500, body)
+
+
+def install(app: FastAPI) -> None:
+    """Register every handler."""
+    app.add_exception_handler(CapnoteError, _capnote_error)
+    app.add_exception_handler(RequestValidationError, _validation_error)
+    app.add_exception_handler(HTTPException, _http_error)
+    app.add_exception_handler(Exception, _unexpected)
+
+
+__all__ = ["FHIR_JSON", "install", "outcome_response"]

@@ -1,0 +1,270 @@
+"""The FHIR R4 read API and $validate, under /fhir, as application/fhir+json."""
+
+from __future__ import annotations
+
+import re
+from datetime import UTC, date, datetime, time, timedelta
+from typing import Annotated, Any
+
+import orjson
+from fastapi import APIRouter, Depends, Query, Request
+from fastapi.responses import Response
+from sqlmodel import Session
+
+from service.api.auth import CHECK, READ, allow
+from service.api.capability import capability_statement
+from service.api.docs import responses
+from service.api.media import fhir_response, json_body
+from service.errors import InputError, NotFoundError
+from service.fhir.outcome import outcome
+from service.fhir.validate import validate_resource
+from service.findings import Finding, Severity
+from service.notes import Principal
+from service.store import repository as repo
+from service.store.tables import FhirResource
+
+router = APIRouter(prefix="/fhir", tags=["fhir"])
+READABLE = (
+    "Procedure",
+    "Observation",
+    "ServiceRequest",
+    "MedicationRequest",
+    "MedicationAdministration",
+)
+_DATE = re.compile(r"^(eq|ne|gt|lt|ge|le)?(\d{4}-\d{2}-\d{2}(T[0-9:.]+(Z|[+-]\d{2}:\d{2}))?)$")
+Reader = Annotated[Principal, Depends(allow(*READ))]
+
+
+def _problem(location: str, message: str, value: str | None = None) -> InputError:
+    return InputError(
+        message,
+        [
+            Finding(
+                Severity.ERROR,
+                "search-invalid",
+                location,
+                message,
+                "FHIR R4 search parameters",
+                value=value,
+                issue_type="invalid",
+            )
+        ],
+    )
+
+
+def _kind(kind: str) -> str:
+    if kind not in READABLE:
+        raise NotFoundError(f"capnote serves no {kind} resources")
+    return kind
+
+
+def _body(row: FhirResource) -> Any:
+    return orjson.loads(row.body)
+
+
+@router.get("/metadata", responses=responses(200))
+def metadata(request: Request) -> Response:
+    """The CapabilityStatement: what this server really supports (no token needed)."""
+    return fhir_response(capability_statement(str(request.base_url).rstrip("/") + "/fhir"))
+
+
+def _date_range(
+    values: list[str], name: str
+) -> tuple[datetime | None, datetime | None, bool, bool]:
+    """FHIR date prefixes to (after, before, include_after, include_before)."""
+    after: datetime | None = None
+    before: datetime | None = None
+    inc_after = inc_before = True
+    for raw in values:
+        match = _DATE.match(raw)
+        if match is None:
+            raise _problem(name, f"{name} must be [prefix]YYYY-MM-DD or a date-time", raw[:40])
+        prefix, text = match[1] or "eq", match[2]
+        try:
+            if "T" in text:
+                start = datetime.fromisoformat(text.replace("Z", "+00:00"))
+                end = start
+            else:
+                day = date.fromisoformat(text)
+                start = datetime.combine(day, time(), UTC)
+                end = start + timedelta(days=1) - timedelta(microseconds=1)
+        except ValueError as exc:
+            raise _problem(name, f"{name} is not a date that exists", raw[:40]) from exc
+        if prefix in ("eq", "ge", "gt"):
+            after, inc_after = (end, False) if prefix == "gt" else (start, True)
+        if prefix in ("eq", "le", "lt"):
+            before, inc_before = (start, False) if prefix == "lt" else (end, True)
+        if prefix == "ne":
+            raise _problem(name, "the ne prefix is not supported", raw[:40])
+    return after, before, inc_after, inc_before
+
+
+def _patient(value: str | None) -> tuple[str, str] | None:
+    if value is None:
+        return None
+    system, sep, ident = value.partition("|")
+    if not sep or not system or not ident:
+        raise _problem("patient:identifier", "patient:identifier must be system|value")
+    return system, ident
+
+
+def _searchset(
+    request: Request, kind: str, total: int, rows: list[FhirResource], page: int, count: int
+) -> Response:
+    base = str(request.base_url).rstrip("/") + "/fhir"
+    self_link = str(request.url)
+    links = [{"relation": "self", "url": self_link}]
+    if page * count < total:
+        query = dict(request.query_params) | {"_page": str(page + 1), "_count": str(count)}
+        links.append({"relation": "next", "url": str(request.url.replace_query_params(**query))})
+    bundle = {
+        "resourceType": "Bundle",
+        "type": "searchset",
+        "total": total,
+        "link": links,
+        "entry": [
+            {
+                "fullUrl": f"{base}/{kind}/{r.resource_id}",
+                "resource": _body(r),
+                "search": {"mode": "match"},
+            }
+            for r in rows
+        ],
+    }
+    return fhir_response(bundle)
+
+
+@router.get("/Procedure", responses=responses(200, 422))
+def search_procedures(
+    request: Request,
+    _who: Reader,
+    patient_identifier: Annotated[str | None, Query(alias="patient:identifier")] = None,
+    date_: Annotated[list[str] | None, Query(alias="date")] = None,
+    page: Annotated[int, Query(alias="_page", ge=1, le=100_000)] = 1,
+    count: Annotated[int, Query(alias="_count", ge=1, le=200)] = 50,
+) -> Response:
+    """Procedures by patient identifier and performed date (prefixes ge, le, gt, lt, eq)."""
+    after, before, inc_a, inc_b = _date_range(date_ or [], "date")
+    with Session(request.app.state.engine) as session:
+        total, rows = repo.fhir_search(
+            session,
+            "Procedure",
+            patient=_patient(patient_identifier),
+            after=after,
+            before=before,
+            include_after=inc_a,
+            include_before=inc_b,
+            offset=(page - 1) * count,
+            limit=count,
+        )
+    return _searchset(request, "Procedure", total, list(rows), page, count)
+
+
+@router.get("/ServiceRequest", responses=responses(200, 422))
+def search_service_requests(
+    request: Request,
+    _who: Reader,
+    status: Annotated[str | None, Query(pattern="^[a-z-]+$")] = None,
+    occurrence: Annotated[list[str] | None, Query()] = None,
+    patient_identifier: Annotated[str | None, Query(alias="patient:identifier")] = None,
+    page: Annotated[int, Query(alias="_page", ge=1, le=100_000)] = 1,
+    count: Annotated[int, Query(alias="_count", ge=1, le=200)] = 50,
+) -> Response:
+    """Follow-up requests by status, target date and patient: what is due."""
+    after, before, inc_a, inc_b = _date_range(occurrence or [], "occurrence")
+    with Session(request.app.state.engine) as session:
+        total, rows = repo.fhir_search(
+            session,
+            "ServiceRequest",
+            patient=_patient(patient_identifier),
+            status=status,
+            after=after,
+            before=before,
+            include_after=inc_a,
+            include_before=inc_b,
+            offset=(page - 1) * count,
+            limit=count,
+        )
+    return _searchset(request, "ServiceRequest", total, list(rows), page, count)
+
+
+@router.get("/{kind}/{resource_id}", responses=responses(200, 404))
+def read_resource(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
+    """The current version of a resource."""
+    with Session(request.app.state.engine) as session:
+        row = repo.fhir_latest(session, _kind(kind), resource_id)
+    if row is None:
+        raise NotFoundError(f"no {kind} with this id")
+    return fhir_response(_body(row), headers={"ETag": f'W/"{row.version}"'})
+
+
+@router.get("/{kind}/{resource_id}/_history", responses=responses(200, 404))
+def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
+    """Every version of a resource, newest first."""
+    with Session(request.app.state.engine) as session:
+        rows = repo.fhir_history(session, _kind(kind), resource_id)
+    if not rows:
+        raise NotFoundError(f"no {kind} with this id")
+    base = str(request.base_url).rstrip("/") + "/fhir"
+    method = {1: "POST"}
+    bundle = {
+        "resourceType": "Bundle",
+        "type": "history",
+        "total": len(rows),
+        "entry": [
+            {
+                "fullUrl": f"{base}/{kind}/{resource_id}",
+                "resource": _body(r),
+                "request": {
+                    "method": method.get(r.version, "PUT"),
+                    "url": kind if r.version == 1 else f"{kind}/{resource_id}",
+                },
+                "response": {
+                    "status": "201 Created" if r.version == 1 else "200 OK",
+                    "etag": f'W/"{r.version}"',
+                },
+            }
+            for r in rows
+        ],
+    }
+    return fhir_response(bundle)
+
+
+@router.get("/{kind}/{resource_id}/_history/{version}", responses=responses(200, 404))
+def version_read(
+    request: Request, kind: str, resource_id: str, version: int, _who: Reader
+) -> Response:
+    """One version of a resource (vread)."""
+    with Session(request.app.state.engine) as session:
+        rows = repo.fhir_history(session, _kind(kind), resource_id)
+    for row in rows:
+        if row.version == version:
+            return fhir_response(_body(row), headers={"ETag": f'W/"{row.version}"'})
+    raise NotFoundError(f"no version {version} of this {kind}")
+
+
+@router.post("/{kind}/$validate", responses=responses(200, 422))
+async def validate(
+    request: Request, kind: str, _who: Annotated[Principal, Depends(allow(*CHECK))]
+) -> Response:
+    """Validate one R4 JSON resource (or a Bundle): an OperationOutcome with FHIRPath
+    expressions for every issue. The answer is 200 whether or not the resource is valid."""
+    raw = await json_body(request)
+    try:
+        data = orjson.loads(raw)
+    except orjson.JSONDecodeError as exc:
+        raise _problem("", "the body is not valid JSON") from exc
+    findings = validate_resource(data)
+    if isinstance(data, dict) and data.get("resourceType") not in (kind, None):
+        findings.insert(
+            0,
+            Finding(
+                Severity.ERROR,
+                "fhir-type-mismatch",
+                "resourceType",
+                f"resourceType {data.get('resourceType')!r} does not match the URL's {kind}",
+                "POST [base]/[type]/$validate takes a resource of that type",
+                issue_type="invalid",
+            ),
+        )
+    return fhir_response(outcome(findings))

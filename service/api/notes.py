@@ -1,0 +1,152 @@
+"""Note routes: parse, call service.notes, map, return."""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Header, Query, Request
+from fastapi.responses import Response
+from starlette.concurrency import run_in_threadpool
+
+from service.api.auth import CHECK, READ, WRITE, allow
+from service.api.docs import AMEND_BODY, NOTE_BODY, VOID_BODY, responses
+from service.api.media import json_body, json_response
+from service.errors import InputError
+from service.findings import Finding, Severity
+from service.notes import NoteService, Principal, StoredNote
+
+router = APIRouter(prefix="/notes", tags=["notes"])
+
+
+def _service(request: Request) -> NoteService:
+    service: NoteService = request.app.state.notes
+    return service
+
+
+def _etag(stored: StoredNote) -> dict[str, str]:
+    return {"ETag": f'W/"{stored.version}"', "Location": f"/notes/{stored.key}"}
+
+
+def _if_match(value: str | None) -> int | None:
+    """The version in If-Match (W/"3", "3" or 3); None when absent."""
+    if value is None:
+        return None
+    text = value.strip().removeprefix("W/").strip('"')
+    if not text.isdigit():
+        raise InputError(
+            "If-Match is not a version",
+            [
+                Finding(
+                    Severity.ERROR,
+                    "if-match-invalid",
+                    "If-Match",
+                    "If-Match must name a version",
+                    'If-Match: W/"<version>"',
+                    value=value[:40],
+                    issue_type="value",
+                )
+            ],
+        )
+    return int(text)
+
+
+@router.post("", status_code=201, openapi_extra=NOTE_BODY, responses=responses(200, 201, 409, 422))
+async def submit_note(
+    request: Request, who: Annotated[Principal, Depends(allow(*WRITE))]
+) -> Response:
+    """Check, derive, schedule, store and emit one note (resending the same note is safe)."""
+    body = await json_body(request)
+    created, stored = await run_in_threadpool(_service(request).submit, body, who)
+    return json_response(stored.view(), 201 if created else 200, _etag(stored))
+
+
+@router.post("/check", openapi_extra=NOTE_BODY, responses=responses(200))
+async def check_note(
+    request: Request, _who: Annotated[Principal, Depends(allow(*CHECK))]
+) -> Response:
+    """Everything POST /notes would produce (findings, derived values, due items, Bundle),
+    stored nowhere; a note with errors still answers 200, with accepted false."""
+    body = await json_body(request)
+    return json_response(await run_in_threadpool(_service(request).check, body))
+
+
+@router.get("", responses=responses(200, 422))
+def list_notes(
+    request: Request,
+    _who: Annotated[Principal, Depends(allow(*READ))],
+    patient: Annotated[str, Query(description="system|value", pattern=r"^[^|]+\|[^|]+$")],
+    eye: Annotated[str | None, Query(pattern="^(right|left)$")] = None,
+    from_: Annotated[datetime | None, Query(alias="from")] = None,
+    to: datetime | None = None,
+    page: Annotated[int, Query(ge=1, le=100_000)] = 1,
+    count: Annotated[int, Query(ge=1, le=200)] = 50,
+) -> Response:
+    """The latest version of each note of a patient, in session order, paged."""
+    system, value = patient.split("|", 1)
+    total, rows = _service(request).search(
+        (system, value), eye, from_, to, (page - 1) * count, count
+    )
+    body: dict[str, Any] = {
+        "total": total,
+        "page": page,
+        "count": count,
+        "notes": [r.view() for r in rows],
+    }
+    return json_response(body)
+
+
+@router.get("/{note_id}", responses=responses(200, 404))
+def read_note(
+    request: Request, note_id: str, _who: Annotated[Principal, Depends(allow(*READ))]
+) -> Response:
+    """The latest version of a note."""
+    stored = _service(request).get(note_id)
+    return json_response(stored.view(), headers=_etag(stored))
+
+
+@router.get("/{note_id}/versions", responses=responses(200, 404))
+def list_versions(
+    request: Request, note_id: str, _who: Annotated[Principal, Depends(allow(*READ))]
+) -> Response:
+    """Every version of a note, oldest first."""
+    return json_response({"id": note_id, "versions": _service(request).versions(note_id)})
+
+
+@router.get("/{note_id}/versions/{version}", responses=responses(200, 404))
+def read_version(
+    request: Request, note_id: str, version: int, _who: Annotated[Principal, Depends(allow(*READ))]
+) -> Response:
+    """One version of a note."""
+    stored = _service(request).get(note_id, version)
+    return json_response(stored.view(), headers=_etag(stored))
+
+
+@router.put("/{note_id}", openapi_extra=AMEND_BODY, responses=responses(200, 404, 409, 412, 422))
+async def amend_note(
+    request: Request,
+    note_id: str,
+    who: Annotated[Principal, Depends(allow(*WRITE))],
+    if_match: Annotated[str | None, Header()] = None,
+) -> Response:
+    """Store an amended version: {"reason": ..., "note": {...}}; a final note needs a reason."""
+    body = await json_body(request)
+    stored = await run_in_threadpool(
+        _service(request).amend, note_id, body, who, _if_match(if_match)
+    )
+    return json_response(stored.view(), headers=_etag(stored))
+
+
+@router.post("/{note_id}/void", openapi_extra=VOID_BODY, responses=responses(200, 404, 412, 422))
+async def void_note(
+    request: Request,
+    note_id: str,
+    who: Annotated[Principal, Depends(allow(*WRITE))],
+    if_match: Annotated[str | None, Header()] = None,
+) -> Response:
+    """Mark a note entered-in-error, with a reason; its resources are emitted so."""
+    body = await json_body(request)
+    stored = await run_in_threadpool(
+        _service(request).void, note_id, body, who, _if_match(if_match)
+    )
+    return json_response(stored.view(), headers=_etag(stored))

@@ -1,0 +1,77 @@
+"""create_app(settings): the only place that wires capnote together."""
+
+from __future__ import annotations
+
+from collections.abc import Awaitable, Callable
+from datetime import UTC, datetime
+
+from fastapi import FastAPI, Request
+from fastapi.middleware.cors import CORSMiddleware
+from fastapi.responses import Response
+
+from service import __version__
+from service.api import audit, docs, errors, fhir, health, notes
+from service.api.limits import BodyLimit
+from service.assess import Assessor
+from service.config import Settings, effective_policy
+from service.notes import Clock, NoteService
+from service.store.database import make_engine, upgrade
+
+DESCRIPTION = (
+    "Structured, checked records of Nd:YAG laser posterior capsulotomy sessions, emitted as "
+    "FHIR R4. Thresholds are literature defaults, overridable per site; local protocol and "
+    "the treating clinician decide. capnote is not a certified medical device."
+)
+_HEADERS = {
+    "X-Content-Type-Options": "nosniff",
+    "Content-Security-Policy": "default-src 'self'; frame-ancestors 'none'",
+    "Referrer-Policy": "no-referrer",
+    "Cache-Control": "no-store",
+}
+
+
+def utc_now() -> datetime:
+    """The real clock."""
+    return datetime.now(UTC)
+
+
+def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> FastAPI:
+    """The whole service for these settings."""
+    settings = settings or Settings()
+    policy = effective_policy(settings)
+    engine = make_engine(settings.database_url)
+    if settings.migrate_on_start:
+        upgrade(engine)
+    app = FastAPI(title="capnote", version=__version__, description=DESCRIPTION)
+    app.state.engine = engine
+    app.state.notes = NoteService(engine, Assessor(policy), clock)
+    app.state.settings = settings
+    errors.install(app)
+    docs.install(app)
+    for router in (health.router, notes.router, fhir.router, audit.router):
+        app.include_router(router)
+
+    @app.middleware("http")
+    async def security_headers(
+        request: Request, call_next: Callable[[Request], Awaitable[Response]]
+    ) -> Response:
+        response = await call_next(request)
+        for name, value in _HEADERS.items():
+            response.headers.setdefault(name, value)
+        return response
+
+    if settings.cors_origins:
+        app.add_middleware(
+            CORSMiddleware,
+            allow_origins=settings.cors_origins,
+            allow_methods=["GET", "POST", "PUT"],
+            allow_headers=["Authorization", "Content-Type", "If-Match"],
+            expose_headers=["ETag", "Location"],
+        )
+    app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    return app
+
+
+def app_from_environment() -> FastAPI:
+    """The factory uvicorn workers call (`capnote serve`): settings from the environment."""
+    return create_app(Settings())

@@ -1,0 +1,1 @@
+"""Storage: tables, migrations and repository functions (SQLite or PostgreSQL)."""

@@ -1,0 +1,95 @@
+"""The stored tables. Rows are only ever added: a new note version is a new row, a voided
+note is a new version with status "void", a revoked token keeps its row.
+
+Times are aware and stored in UTC (SQLModel's UTCDateTime; SQLite keeps no offset, so UTC is
+what makes comparisons agree on both engines).
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+
+from sqlalchemy import Column, Index, Text, UniqueConstraint
+from sqlmodel import Field, SQLModel
+
+
+class NoteVersion(SQLModel, table=True):
+    """One version of one note, with what capnote made of it."""
+
+    __tablename__ = "note_version"
+    __table_args__ = (
+        # The constraint that makes concurrent submissions of one note produce one record.
+        UniqueConstraint("note_key", "version", name="uq_note_version"),
+        Index("ix_note_version_patient_eye", "patient_system", "patient_value", "eye"),
+    )
+
+    id: int | None = Field(default=None, primary_key=True)
+    note_key: str = Field(max_length=36, index=True)
+    version: int
+    sender_system: str = Field(max_length=255)
+    sender_value: str = Field(max_length=64)
+    patient_system: str = Field(max_length=255)
+    patient_value: str = Field(max_length=64)
+    eye: str = Field(max_length=5)
+    started_at: datetime
+    status: str = Field(max_length=8)
+    total_energy_mj: float | None = None
+    content_hash: str = Field(max_length=64)
+    note_json: str = Field(sa_column=Column(Text, nullable=False))
+    result_json: str = Field(sa_column=Column(Text, nullable=False))
+    bundle_json: str = Field(sa_column=Column(Text, nullable=False))
+    reason: str | None = Field(default=None, max_length=500)
+    recorded_at: datetime
+    recorded_by: str = Field(max_length=100)
+
+
+class FhirResource(SQLModel, table=True):
+    """One FHIR resource of one note version, as the read API serves it."""
+
+    __tablename__ = "fhir_resource"
+    __table_args__ = (
+        UniqueConstraint("resource_type", "resource_id", "version", name="uq_fhir_resource"),
+        Index("ix_fhir_resource_patient", "resource_type", "patient_system", "patient_value"),
+        Index("ix_fhir_resource_status_date", "resource_type", "status", "date"),
+    )
+
+    id: int | None = Field(default=None, primary_key=True)
+    resource_type: str = Field(max_length=40)
+    resource_id: str = Field(max_length=36)
+    version: int
+    latest: bool = Field(default=True)
+    note_key: str = Field(max_length=36, index=True)
+    patient_system: str = Field(max_length=255)
+    patient_value: str = Field(max_length=64)
+    status: str = Field(max_length=20)
+    date: datetime | None = None
+    body: str = Field(sa_column=Column(Text, nullable=False))
+
+
+class ApiToken(SQLModel, table=True):
+    """A bearer token: only its SHA-256 hash is kept."""
+
+    __tablename__ = "api_token"
+
+    id: int | None = Field(default=None, primary_key=True)
+    token_hash: str = Field(max_length=64, unique=True)
+    role: str = Field(max_length=20)
+    label: str = Field(max_length=100)
+    created_at: datetime
+    revoked_at: datetime | None = None
+
+
+class AuditEntry(SQLModel, table=True):
+    """Who did what to which note, when and from where. Identifiers only, no clinical text."""
+
+    __tablename__ = "audit_entry"
+
+    id: int | None = Field(default=None, primary_key=True)
+    at: datetime = Field(index=True)
+    actor: str = Field(max_length=100)
+    role: str = Field(max_length=20)
+    action: str = Field(max_length=40)
+    note_key: str | None = Field(default=None, max_length=36, index=True)
+    version: int | None = None
+    remote: str | None = Field(default=None, max_length=64)
+    outcome: str = Field(max_length=20)
