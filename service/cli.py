@@ -7,6 +7,7 @@ error; 3 an unexpected failure (a generic message with an incident id, never a t
 from __future__ import annotations
 
 import logging
+import os
 import sys
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -15,7 +16,10 @@ from typing import Annotated
 
 import orjson
 import typer
+import uvicorn
 from rich.progress import Progress
+from sqlalchemy import Engine
+from sqlmodel import Session
 
 from schemas.export import write_schemas
 from service.assess import Assessor
@@ -25,10 +29,14 @@ from service.errors import CapnoteError
 from service.fhir.outcome import incident_outcome, outcome
 from service.fhir.validate import validate_resource
 from service.findings import Finding, Severity, has_errors
+from service.notes import Principal
 from service.report import CAUTION, derived_lines, due_line, finding_line, summary
 from service.schedule import DueItem
+from service.store import repository
+from service.store.database import make_engine, upgrade
 
 log = logging.getLogger("capnote.cli")
+DEMO_NOTES = Path(__file__).resolve().parents[1] / "examples" / "notes"
 app = typer.Typer(
     add_completion=False,
     no_args_is_help=True,
@@ -184,6 +192,104 @@ def schema(
     """Write the note contract's JSON Schema and the project CodeSystem."""
     for path in write_schemas(out):
         typer.echo(f"wrote {path}")
+
+
+token_app = typer.Typer(help="Bearer tokens: new, list, revoke.", no_args_is_help=True)
+db_app = typer.Typer(help="The database: upgrade to the newest schema.", no_args_is_help=True)
+app.add_typer(token_app, name="token")
+app.add_typer(db_app, name="db")
+ROLES = ("submitter", "clinician", "analyst", "auditor")
+
+
+def _engine() -> Engine:
+    return make_engine(Settings().database_url)
+
+
+@db_app.command("upgrade")
+def db_upgrade() -> None:
+    """Apply every migration the database lacks (the service also does this on start)."""
+    upgrade(_engine())
+    typer.echo("database is at the newest schema")
+
+
+@token_app.command("new")
+def token_new(
+    role: Annotated[str, typer.Option(help="submitter, clinician, analyst or auditor.")],
+    label: Annotated[str, typer.Option(help="Who or what holds it, e.g. 'EHR interface'.")],
+) -> None:
+    """Create a token and print it once; only its hash is kept."""
+    if role not in ROLES:
+        raise typer.BadParameter(f"use one of {', '.join(ROLES)}", param_hint="--role")
+    engine = _engine()
+    upgrade(engine)
+    with Session(engine) as session:
+        token, row = repository.new_token(session, role, label, datetime.now(UTC))
+        session.commit()
+        typer.echo(f"token {row.id} ({role}, {label}); shown once, keep it safe:")
+    typer.echo(token)
+
+
+@token_app.command("list")
+def token_list() -> None:
+    """Every token: id, role, label, created, revoked (never the token itself)."""
+    engine = _engine()
+    upgrade(engine)
+    with Session(engine) as session:
+        for row in repository.list_tokens(session):
+            state = f"revoked {row.revoked_at:%Y-%m-%d}" if row.revoked_at else "live"
+            typer.echo(f"{row.id}\t{row.role}\t{row.label}\t{row.created_at:%Y-%m-%d}\t{state}")
+
+
+@token_app.command("revoke")
+def token_revoke(token_id: Annotated[int, typer.Argument(help="The id from token list.")]) -> None:
+    """Revoke a token: it answers 401 from now on."""
+    engine = _engine()
+    with Session(engine) as session:
+        if not repository.revoke_token(session, token_id, datetime.now(UTC)):
+            typer.echo(f"no live token {token_id}", err=True)
+            raise typer.Exit(1)
+        session.commit()
+    typer.echo(f"token {token_id} revoked")
+
+
+@app.command()
+def serve(
+    host: Annotated[str, typer.Option(help="Address to listen on.")] = "127.0.0.1",
+    port: Annotated[int, typer.Option(help="Port to listen on.")] = 8000,
+    workers: Annotated[int, typer.Option(min=1, max=64, help="Worker processes.")] = 1,
+    demo: Annotated[bool, typer.Option(help="Load the demo notes and print a demo token.")] = False,
+) -> None:
+    """Run the REST service (SQLite file capnote.sqlite3 here unless CAPNOTE_DATABASE_URL)."""
+    settings = Settings()
+    engine = make_engine(settings.database_url)
+    upgrade(engine)  # once, here, so that workers never race to migrate
+    if demo:
+        _load_demo(settings, engine)
+    os.environ["CAPNOTE_MIGRATE_ON_START"] = "false"
+    typer.echo(f"capnote serving on http://{host}:{port} (API docs at /docs)")
+    uvicorn.run(
+        "service.app:app_from_environment",
+        factory=True,
+        host=host,
+        port=port,
+        workers=workers,
+        log_level="info",
+        access_log=False,
+    )
+
+
+def _load_demo(settings: Settings, engine: Engine) -> None:
+    """Store the example notes and print a clinician token to try the API with."""
+    from service.app import create_app
+
+    notes = create_app(settings.model_copy(update={"migrate_on_start": False})).state.notes
+    who = Principal(label="demo loader", role="submitter")
+    for path in sorted(DEMO_NOTES.glob("*.json")):
+        notes.submit(path.read_bytes(), who)
+    with Session(engine) as session:
+        token, _row = repository.new_token(session, "clinician", "demo", datetime.now(UTC))
+        session.commit()
+    typer.echo(f"demo notes loaded; demo clinician token: {token}")
 
 
 def main() -> None:

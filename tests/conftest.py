@@ -38,3 +38,57 @@ def load(path: Path) -> dict[str, Any]:
 def routine() -> dict[str, Any]:
     """A fresh copy of the routine right-eye demo note, to change in a test."""
     return load(EXAMPLES / "notes" / "right-routine.json")
+
+
+# --- the service on both engines -------------------------------------------------------------
+
+from collections.abc import Iterator  # noqa: E402
+from itertools import count  # noqa: E402
+
+from fastapi.testclient import TestClient  # noqa: E402
+from sqlmodel import Session  # noqa: E402
+
+from service.app import create_app  # noqa: E402
+from service.config import Settings  # noqa: E402
+from service.store import repository  # noqa: E402
+from tests.pg_cluster import PgCluster  # noqa: E402
+from tests.pg_fixtures import postgres_cluster  # noqa: E402, F401
+
+_databases = count()
+
+
+@pytest.fixture(params=["sqlite", "postgres"])
+def database_url(request: pytest.FixtureRequest, tmp_path: Path) -> str:
+    """An empty database of each engine: a real SQLite file and a real PostgreSQL server."""
+    if request.param == "sqlite":
+        return f"sqlite:///{tmp_path / 'capnote.sqlite3'}"
+    cluster: PgCluster = request.getfixturevalue("postgres_cluster")
+    return cluster.fresh_database(f"capnote_{next(_databases)}")
+
+
+class Api:
+    """A test client with a token per role."""
+
+    def __init__(self, client: TestClient, tokens: dict[str, str]) -> None:
+        self.client = client
+        self.tokens = tokens
+
+    def headers(self, role: str | None, **extra: str) -> dict[str, str]:
+        base = {"content-type": "application/json", **extra}
+        if role is not None:
+            base["authorization"] = f"Bearer {self.tokens[role]}"
+        return base
+
+
+@pytest.fixture
+def api(database_url: str) -> Iterator[Api]:
+    """The whole app on an empty database, with the clock at NOW."""
+    app = create_app(Settings(database_url=database_url), clock=lambda: NOW)
+    tokens = {}
+    with Session(app.state.engine) as session:
+        for role in ("submitter", "clinician", "analyst", "auditor"):
+            tokens[role], _ = repository.new_token(session, role, f"test {role}", NOW)
+        session.commit()
+    with TestClient(app) as client:
+        yield Api(client, tokens)
+    app.state.engine.dispose()

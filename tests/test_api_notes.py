@@ -1,0 +1,266 @@
+"""The note routes on SQLite and PostgreSQL, through the in-process client."""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+import pytest
+
+from tests.conftest import EXAMPLES, INVALID, VALID, Api, routine
+from tests.fhir_r4_check import r4_problems
+
+ROUTINE = (EXAMPLES / "notes" / "right-routine.json").read_text()
+
+
+def post(api: Api, body: str | dict[str, Any], role: str = "submitter") -> Any:
+    content = body if isinstance(body, str) else json.dumps(body)
+    return api.client.post("/notes", content=content, headers=api.headers(role))
+
+
+def test_submit_answers_201_with_everything(api: Api) -> None:
+    r = post(api, ROUTINE)
+    assert r.status_code == 201
+    body = r.json()
+    assert body["version"] == 1
+    assert body["accepted"] is True
+    assert body["derived"]["total_energy_mj"] == pytest.approx(28.8)
+    assert body["due"][-1]["target"].startswith("2026-12-29")  # moved past Christmas
+    assert body["outcome"]["resourceType"] == "OperationOutcome"
+    assert r4_problems(body["bundle"]) == []  # google-fhir-r4 + core invariants
+    assert r.headers["etag"] == 'W/"1"'
+    assert r.headers["location"] == f"/notes/{body['id']}"
+
+
+def test_resend_is_200_and_creates_nothing(api: Api) -> None:
+    first = post(api, ROUTINE)
+    again = post(api, ROUTINE)
+    assert (first.status_code, again.status_code) == (201, 200)
+    assert again.json()["id"] == first.json()["id"]
+    versions = api.client.get(
+        f"/notes/{first.json()['id']}/versions", headers=api.headers("auditor")
+    )
+    assert len(versions.json()["versions"]) == 1
+
+
+def test_same_identifier_other_content_is_409_pointing_to_amend(api: Api) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    changed = routine()
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    r = post(api, changed)
+    assert r.status_code == 409
+    assert f"PUT /notes/{key}" in r.json()["issue"][0]["diagnostics"]
+
+
+@pytest.mark.parametrize("path", INVALID, ids=lambda p: p.name)
+def test_invalid_notes_answer_422_naming_every_problem(api: Api, path: Any) -> None:
+    expected = json.loads((EXAMPLES / "expected" / "invalid.json").read_text())[path.name]
+    r = post(api, path.read_text())
+    assert r.status_code == 422
+    assert r.headers["content-type"].startswith("application/fhir+json")
+    issues = r.json()["issue"]
+    got = {
+        (i["severity"], i["details"]["coding"][0]["code"], (i.get("expression") or [""])[0])
+        for i in issues
+        if i["severity"] == "error"
+    }
+    assert got == {tuple(e) for e in expected}
+
+
+def test_warnings_do_not_block(api: Api) -> None:
+    r = post(api, (EXAMPLES / "notes" / "left-glaucoma-no-prophylaxis.json").read_text())
+    assert r.status_code == 201
+    assert {f["severity"] for f in r.json()["findings"]} == {"warning"}
+
+
+def test_check_stores_nothing(api: Api) -> None:
+    r = api.client.post("/notes/check", content=ROUTINE, headers=api.headers("analyst"))
+    assert r.status_code == 200
+    assert r.json()["bundle"]["type"] == "transaction"
+    assert (
+        api.client.get(f"/notes/{r.json()['id']}", headers=api.headers("analyst")).status_code
+        == 404
+    )
+    bad = api.client.post("/notes/check", content="{}", headers=api.headers("analyst"))
+    assert bad.status_code == 200
+    assert bad.json()["accepted"] is False
+
+
+def test_amend_versions_and_if_match(api: Api) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    changed = routine()
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    url = f"/notes/{key}"
+    no_reason = api.client.put(
+        url, content=json.dumps({"note": changed}), headers=api.headers("clinician")
+    )
+    assert no_reason.status_code == 422  # a final note is amended only with a reason
+    assert no_reason.json()["issue"][0]["expression"] == ["reason"]
+    body = json.dumps({"reason": "opening re-measured", "note": changed})
+    ok = api.client.put(
+        url, content=body, headers=api.headers("clinician", **{"if-match": 'W/"1"'})
+    )
+    assert ok.status_code == 200
+    assert ok.json()["version"] == 2
+    stale = api.client.put(
+        url,
+        content=json.dumps({"reason": "x", "note": routine()}),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
+    )
+    assert stale.status_code == 412
+    history = api.client.get(f"{url}/versions", headers=api.headers("auditor")).json()["versions"]
+    assert [(v["version"], v["reason"]) for v in history] == [(1, None), (2, "opening re-measured")]
+    first = api.client.get(f"{url}/versions/1", headers=api.headers("auditor")).json()
+    assert first["note"]["result"]["opening"]["horizontal_mm"] == 4.5  # nothing overwritten
+    latest = api.client.get(url, headers=api.headers("auditor"))
+    assert latest.headers["etag"] == 'W/"2"'
+    observations = [
+        e["resource"]
+        for e in latest.json()["bundle"]["entry"]
+        if e["resource"]["resourceType"] == "Observation"
+    ]
+    assert {o["status"] for o in observations} == {"amended"}
+    assert all(e["request"]["method"] == "PUT" for e in latest.json()["bundle"]["entry"])
+    assert r4_problems(latest.json()["bundle"]) == []
+
+
+def test_void_marks_everything_entered_in_error(api: Api) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    url = f"/notes/{key}/void"
+    assert api.client.post(url, content="{}", headers=api.headers("submitter")).status_code == 422
+    r = api.client.post(
+        url, content=json.dumps({"reason": "wrong patient"}), headers=api.headers("submitter")
+    )
+    assert r.status_code == 200
+    assert r.json()["status"] == "void"
+    statuses = {e["resource"]["status"] for e in r.json()["bundle"]["entry"]}
+    assert statuses == {"entered-in-error"}
+    assert r4_problems(r.json()["bundle"]) == []
+    amend = api.client.put(
+        f"/notes/{key}",
+        content=json.dumps({"reason": "x", "note": routine()}),
+        headers=api.headers("submitter"),
+    )
+    assert amend.status_code == 409
+
+
+def test_cumulative_energy_over_sessions_on_one_eye(api: Api) -> None:
+    first = routine()
+    second = routine()
+    second["note_id"]["value"] = "LN-2026-0999"
+    for key in ("started_at", "ended_at"):
+        second[key] = second[key].replace("2026-11-27", "2026-11-30")
+    second["result"]["iop_after"][0]["measured_at"] = "2026-11-30T11:15:00+00:00"
+    second["before"]["iop"]["measured_at"] = "2026-11-30T09:40:00+00:00"
+    second["consent"]["recorded_at"] = "2026-11-30T09:50:00+00:00"
+    other_eye = json.loads(json.dumps(second))
+    other_eye["note_id"]["value"] = "LN-2026-1000"
+    other_eye["eye"] = "left"
+    assert post(api, first).status_code == 201
+    assert post(api, other_eye).status_code == 201
+    r = post(api, second)
+    assert r.status_code == 201
+    cumulative = r.json()["derived"]["cumulative"]
+    assert cumulative == {
+        "session_number": 2,
+        "cumulative_energy_mj": 57.6,
+        "days_since_last_session": 3,
+    }
+
+
+def test_list_notes_by_patient_and_eye(api: Api) -> None:
+    for path in VALID:
+        assert post(api, path.read_text()).status_code == 201
+    patient = routine()["patient"]
+    r = api.client.get(
+        "/notes",
+        params={"patient": f"{patient['system']}|{patient['value']}"},
+        headers=api.headers("analyst"),
+    )
+    assert r.status_code == 200
+    assert r.json()["total"] == 1
+    none = api.client.get(
+        "/notes",
+        params={"patient": f"{patient['system']}|{patient['value']}", "eye": "left"},
+        headers=api.headers("analyst"),
+    )
+    assert none.json()["total"] == 0
+    bad = api.client.get("/notes", params={"patient": "no-bar"}, headers=api.headers("analyst"))
+    assert bad.status_code == 422
+    assert bad.json()["resourceType"] == "OperationOutcome"
+
+
+@pytest.mark.parametrize(
+    ("method", "url", "role", "status"),
+    [
+        ("post", "/notes", None, 401),
+        ("post", "/notes", "analyst", 403),
+        ("post", "/notes", "auditor", 403),
+        ("post", "/notes/check", "auditor", 403),
+        ("get", "/audit", "submitter", 403),
+        ("get", "/audit", "auditor", 200),
+        ("get", "/notes/unknown", "auditor", 404),
+        ("get", "/fhir/metadata", None, 200),
+        ("get", "/healthz", None, 200),
+        ("get", "/readyz", None, 200),
+    ],
+)
+def test_roles(api: Api, method: str, url: str, role: str | None, status: int) -> None:
+    r = getattr(api.client, method)(
+        url, headers=api.headers(role), **({"content": ROUTINE} if method == "post" else {})
+    )
+    assert r.status_code == status
+    if status >= 400:
+        assert r.json()["resourceType"] == "OperationOutcome"
+
+
+def test_wrong_and_revoked_tokens_are_401(api: Api) -> None:
+    r = api.client.get("/notes/x", headers={"authorization": "Bearer cap_not-a-token"})
+    assert r.status_code == 401
+    assert r.headers["www-authenticate"].startswith("Bearer")
+
+
+@pytest.mark.parametrize(
+    ("headers", "body", "status"),
+    [
+        ({"content-type": "text/plain"}, ROUTINE, 415),
+        ({}, "{not json", 422),
+        ({}, "[]", 422),
+        ({}, "x" * 2_000_000, 413),
+    ],
+)
+def test_bad_bodies_get_4xx_outcomes(
+    api: Api, headers: dict[str, str], body: str, status: int
+) -> None:
+    r = api.client.post("/notes", content=body, headers={**api.headers("submitter"), **headers})
+    assert r.status_code == status
+    assert r.json()["resourceType"] == "OperationOutcome"
+
+
+def test_audit_trail_records_writes(api: Api) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    api.client.post(
+        f"/notes/{key}/void",
+        content=json.dumps({"reason": "duplicate"}),
+        headers=api.headers("clinician"),
+    )
+    entries = api.client.get("/audit", params={"note": key}, headers=api.headers("auditor")).json()[
+        "entries"
+    ]
+    assert [(e["action"], e["role"], e["version"]) for e in entries] == [
+        ("void", "clinician", 2),
+        ("create", "submitter", 1),
+    ]
+    text = json.dumps(entries)
+    assert routine()["patient"]["value"] not in text  # identifiers only, no patient data
+
+
+def test_openapi_documents_bodies_and_errors(api: Api) -> None:
+    spec = api.client.get("/openapi.json").json()
+    post_notes = spec["paths"]["/notes"]["post"]
+    assert post_notes["requestBody"]["content"]["application/json"]["schema"] == {
+        "$ref": "#/components/schemas/Note"
+    }
+    assert "right-routine" in post_notes["requestBody"]["content"]["application/json"]["examples"]
+    assert {"201", "200", "409", "422", "401", "403"} <= set(post_notes["responses"])
+    assert "Note" in spec["components"]["schemas"]
