@@ -3,14 +3,23 @@
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 from datetime import UTC, datetime
+from itertools import count
 from pathlib import Path
 from typing import Any
 
 import pytest
+from fastapi.testclient import TestClient
+from sqlmodel import Session
 
+from service.app import create_app
 from service.assess import Assessor
+from service.config import Settings
 from service.policy import Policy, load_policy
+from service.store import repository
+from tests.pg_cluster import PgCluster
+from tests.pg_fixtures import postgres_cluster  # noqa: F401
 
 ROOT = Path(__file__).resolve().parents[1]
 EXAMPLES = ROOT / "examples"
@@ -41,18 +50,6 @@ def routine() -> dict[str, Any]:
 
 
 # --- the service on both engines -------------------------------------------------------------
-
-from collections.abc import Iterator  # noqa: E402
-from itertools import count  # noqa: E402
-
-from fastapi.testclient import TestClient  # noqa: E402
-from sqlmodel import Session  # noqa: E402
-
-from service.app import create_app  # noqa: E402
-from service.config import Settings  # noqa: E402
-from service.store import repository  # noqa: E402
-from tests.pg_cluster import PgCluster  # noqa: E402
-from tests.pg_fixtures import postgres_cluster  # noqa: E402, F401
 
 _databases = count()
 
