@@ -101,7 +101,8 @@ def test_what_is_due(api: Api) -> None:
     load_demo(api)
     due = fhir(api, "/fhir/ServiceRequest", status="active", occurrence="le2026-12-10").json()
     targets = sorted(e["resource"]["occurrenceTiming"]["event"][0][:10] for e in due["entry"])
-    assert targets and all(t <= "2026-12-10" for t in targets)
+    assert targets
+    assert all(t <= "2026-12-10" for t in targets)
     assert all(e["resource"]["status"] == "active" for e in due["entry"])
     later = fhir(api, "/fhir/ServiceRequest", status="active", occurrence="gt2026-12-10").json()
     assert "2026-12-29" in [e["resource"]["occurrenceTiming"]["event"][0] for e in later["entry"]]
