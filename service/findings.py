@@ -58,7 +58,10 @@ def show_value(location: str, value: object) -> str | None:
         return None
     if location.split(".", 1)[0].split("[", 1)[0] in _IDENTIFYING_PREFIXES:
         return WITHHELD
-    text = value if isinstance(value, str) else repr(value)
+    if isinstance(value, float):
+        text = f"{value:g}"
+    else:
+        text = value if isinstance(value, str) else repr(value)
     # Long inputs are cut so a hostile payload cannot flood a report or a log line.
     return text if len(text) <= 80 else text[:77] + "..."
 
