@@ -13,12 +13,25 @@ from typing import Annotated, Literal
 
 from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StringConstraints
 
-Text = Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=200)]
+# Control characters (NUL above all) are refused everywhere: databases cannot store some,
+# and none belongs in a clinical note.
+Text = Annotated[
+    str,
+    StringConstraints(
+        strip_whitespace=True, min_length=1, max_length=200, pattern=r"^[^\x00-\x1f\x7f]+$"
+    ),
+]
 Uri = Annotated[
-    str, StringConstraints(strip_whitespace=True, min_length=3, max_length=255, pattern=r"^\S+$")
+    str,
+    StringConstraints(
+        strip_whitespace=True, min_length=3, max_length=255, pattern=r"^[^\s\x00-\x1f\x7f]+$"
+    ),
 ]
 IdValue = Annotated[
-    str, StringConstraints(strip_whitespace=True, min_length=1, max_length=64, pattern=r"^\S+$")
+    str,
+    StringConstraints(
+        strip_whitespace=True, min_length=1, max_length=64, pattern=r"^[^\s\x00-\x1f\x7f]+$"
+    ),
 ]
 
 Eye = Literal["right", "left"]
@@ -79,7 +92,12 @@ class VisualAcuity(Contract):
     """Visual acuity as entered; logMAR is derived, never asked for twice."""
 
     notation: AcuityNotation
-    value: Annotated[str, StringConstraints(strip_whitespace=True, min_length=1, max_length=16)]
+    value: Annotated[
+        str,
+        StringConstraints(
+            strip_whitespace=True, min_length=1, max_length=16, pattern=r"^[^\x00-\x1f\x7f]+$"
+        ),
+    ]
     correction: AcuityCorrection = "best-corrected"
 
 

@@ -8,6 +8,7 @@ note make one row and the loser reads the winner's.
 from __future__ import annotations
 
 import hashlib
+import uuid
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import datetime
@@ -72,6 +73,18 @@ class StoredNote:
 def note_key(note: Note) -> str:
     """capnote's id for a note: stable for the sender's identifier, free of patient data."""
     return stable_uuid(note, "procedure")
+
+
+def known_key(key: str) -> str:
+    """The key if it has the shape of a note id; anything else cannot name a note."""
+    try:
+        return str(uuid.UUID(key)) if len(key) == 36 else _no_such_note()
+    except ValueError:
+        return _no_such_note()
+
+
+def _no_such_note() -> str:
+    raise NotFoundError("no record with this id")
 
 
 def content_hash(note: Note) -> str:
@@ -324,7 +337,7 @@ class NoteService:
                 raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
     def _latest(self, session: Session, key: str, if_match: int | None) -> NoteVersion:
-        latest = repo.latest_version(session, key)
+        latest = repo.latest_version(session, known_key(key))
         if latest is None:
             raise NotFoundError("no note with this id")
         if if_match is not None and if_match != latest.version:
@@ -349,6 +362,7 @@ class NoteService:
 
     def versions(self, key: str) -> list[dict[str, Any]]:
         """Every version's summary, oldest first."""
+        key = known_key(key)
         with Session(self.engine) as session:
             rows = repo.all_versions(session, key)
             if not rows:

@@ -8,6 +8,7 @@ from collections.abc import Mapping
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
+from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from starlette.exceptions import HTTPException
 
 from service.api.media import FHIR_JSON, fhir_response
@@ -93,8 +94,40 @@ async def _unexpected(request: Request, exc: Exception) -> Response:
     return outcome_response(500, body)
 
 
+async def _database_error(request: Request, exc: Exception) -> Response:
+    """A database that is down, restarting or locked: 503 with Retry-After, never 500."""
+    log.warning(
+        "database unavailable (%s) on %s %s", type(exc).__name__, request.method, request.url.path
+    )
+    return await _capnote_error(
+        request,
+        UnavailableError("the database is not reachable right now; retry after a few seconds"),
+    )
+
+
+async def _data_error(request: Request, exc: Exception) -> Response:
+    """A parameter the database cannot hold (a NUL byte, say): the caller's error, 422."""
+    log.info(
+        "refused parameter (%s) on %s %s", type(exc).__name__, request.method, request.url.path
+    )
+    body = {
+        "resourceType": "OperationOutcome",
+        "issue": [
+            {
+                "severity": "error",
+                "code": "invalid",
+                "diagnostics": "a parameter holds characters that cannot be stored or searched",
+            }
+        ],
+    }
+    return outcome_response(422, body)
+
+
 def install(app: FastAPI) -> None:
     """Register every handler."""
+    app.add_exception_handler(DataError, _data_error)
+    app.add_exception_handler(OperationalError, _database_error)
+    app.add_exception_handler(InterfaceError, _database_error)
     app.add_exception_handler(CapnoteError, _capnote_error)
     app.add_exception_handler(RequestValidationError, _validation_error)
     app.add_exception_handler(HTTPException, _http_error)

@@ -19,7 +19,7 @@ from service.errors import InputError, NotFoundError
 from service.fhir.outcome import outcome
 from service.fhir.validate import validate_resource
 from service.findings import Finding, Severity
-from service.notes import Principal
+from service.notes import Principal, known_key
 from service.store import repository as repo
 from service.store.tables import FhirResource
 
@@ -54,8 +54,13 @@ def _problem(location: str, message: str, value: str | None = None) -> InputErro
 
 def _kind(kind: str) -> str:
     if kind not in READABLE:
-        raise NotFoundError(f"capnote serves no {kind} resources")
+        raise NotFoundError("capnote serves no resources of this type")
     return kind
+
+
+def _id(resource_id: str) -> str:
+    """Resource ids are UUIDs here; anything else names nothing (and never reaches SQL)."""
+    return known_key(resource_id)
 
 
 def _body(row: FhirResource) -> Any:
@@ -192,7 +197,7 @@ def search_service_requests(
 def read_resource(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
     """The current version of a resource."""
     with Session(request.app.state.engine) as session:
-        row = repo.fhir_latest(session, _kind(kind), resource_id)
+        row = repo.fhir_latest(session, _kind(kind), _id(resource_id))
     if row is None:
         raise NotFoundError(f"no {kind} with this id")
     return fhir_response(_body(row), headers={"ETag": f'W/"{row.version}"'})
@@ -202,7 +207,7 @@ def read_resource(request: Request, kind: str, resource_id: str, _who: Reader) -
 def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
     """Every version of a resource, newest first."""
     with Session(request.app.state.engine) as session:
-        rows = repo.fhir_history(session, _kind(kind), resource_id)
+        rows = repo.fhir_history(session, _kind(kind), _id(resource_id))
     if not rows:
         raise NotFoundError(f"no {kind} with this id")
     base = str(request.base_url).rstrip("/") + "/fhir"
@@ -236,7 +241,7 @@ def version_read(
 ) -> Response:
     """One version of a resource (vread)."""
     with Session(request.app.state.engine) as session:
-        rows = repo.fhir_history(session, _kind(kind), resource_id)
+        rows = repo.fhir_history(session, _kind(kind), _id(resource_id))
     for row in rows:
         if row.version == version:
             return fhir_response(_body(row), headers={"ETag": f'W/"{row.version}"'})

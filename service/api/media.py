@@ -9,6 +9,7 @@ from fastapi import Request
 from fastapi.responses import Response
 
 from service.errors import PayloadError
+from service.jsonsafety import check_json
 
 FHIR_JSON = "application/fhir+json"
 JSON = "application/json"
@@ -32,4 +33,6 @@ async def json_body(request: Request) -> bytes:
         raise PayloadError(
             f"the body must be {JSON} or {FHIR_JSON}, not {kind or 'missing'}", 415, "not-supported"
         )
-    return await request.body()
+    raw = await request.body()
+    check_json(raw)
+    return raw

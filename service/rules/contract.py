@@ -84,7 +84,7 @@ def _allowed(error: ErrorDetails) -> str | None:
         low, high = ctx.get("min_length"), ctx.get("max_length")
         return f"length {low if low is not None else 0} to {high if high is not None else 'any'}"
     if "pattern" in ctx:
-        return "text without spaces"
+        return "printable text (identifiers and URIs without spaces)"
     return _ALLOWED.get(kind)
 
 
@@ -99,7 +99,11 @@ def finding_from_error(error: ErrorDetails) -> Finding:
     elif kind in ("too_short", "too_long", "string_too_short", "string_too_long"):
         code, issue_type, rule = "wrong-length", "value", "the length must be within the contract"
     elif kind == "string_pattern_mismatch":
-        code, issue_type, rule = "wrong-format", "value", "identifiers and URIs have no spaces"
+        code, issue_type, rule = (
+            "wrong-format",
+            "value",
+            "no control characters; identifiers and URIs have no spaces",
+        )
     else:
         code, issue_type, rule = "invalid-value", "invalid", error["msg"]
     where = location or "the payload"

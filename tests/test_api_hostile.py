@@ -1,0 +1,236 @@
+"""Hostile and odd requests: each gets a quick 4xx OperationOutcome and the service keeps
+serving. Every route in the OpenAPI document is walked with each kind of credential."""
+
+from __future__ import annotations
+
+import json
+import logging
+from typing import Any
+
+import pytest
+from fastapi.testclient import TestClient
+from sqlmodel import Session
+
+from service.store import repository
+from tests.conftest import EXAMPLES, NOW, VALID, Api, routine
+
+ROUTINE = (EXAMPLES / "notes" / "right-routine.json").read_text()
+
+# Who may call what (from the role table in issue 3); every other role gets 403.
+WRITE = {"submitter", "clinician"}
+CHECK = {"submitter", "clinician", "analyst"}
+READ = {"submitter", "clinician", "analyst", "auditor"}
+OPEN: set[str] = set()  # no token needed
+ALLOWED: dict[tuple[str, str], set[str] | None] = {
+    ("get", "/healthz"): None,
+    ("get", "/readyz"): None,
+    ("get", "/fhir/metadata"): None,
+    ("post", "/notes"): WRITE,
+    ("post", "/notes/check"): CHECK,
+    ("get", "/notes"): READ,
+    ("get", "/notes/{note_id}"): READ,
+    ("get", "/notes/{note_id}/versions"): READ,
+    ("get", "/notes/{note_id}/versions/{version}"): READ,
+    ("put", "/notes/{note_id}"): WRITE,
+    ("post", "/notes/{note_id}/void"): WRITE,
+    ("get", "/fhir/Procedure"): READ,
+    ("get", "/fhir/ServiceRequest"): READ,
+    ("get", "/fhir/{kind}/{resource_id}"): READ,
+    ("get", "/fhir/{kind}/{resource_id}/_history"): READ,
+    ("get", "/fhir/{kind}/{resource_id}/_history/{version}"): READ,
+    ("post", "/fhir/{kind}/$validate"): CHECK,
+    ("get", "/audit"): {"auditor"},
+}
+FILL = {
+    "{note_id}": "00000000-0000-0000-0000-000000000000",
+    "{version}": "1",
+    "{kind}": "Procedure",
+    "{resource_id}": "x",
+}
+
+
+def routes(api: Api) -> list[tuple[str, str]]:
+    spec = api.client.get("/openapi.json").json()
+    return [(m, p) for p, ops in spec["paths"].items() for m in ops]
+
+
+def test_every_documented_route_is_in_the_role_table(api: Api) -> None:
+    documented = set(routes(api))
+    assert documented == set(ALLOWED), documented ^ set(ALLOWED)
+
+
+def call(api: Api, method: str, path: str, token: str | None) -> Any:
+    url = path
+    for key, value in FILL.items():
+        url = url.replace(key, value)
+    headers = {"content-type": "application/json"}
+    if token is not None:
+        headers["authorization"] = f"Bearer {token}"
+    body = {"post": ROUTINE, "put": json.dumps({"reason": "r", "note": routine()})}.get(method)
+    params = {"patient": "urn:x|1"} if path == "/notes" and method == "get" else None
+    return api.client.request(method.upper(), url, content=body, headers=headers, params=params)
+
+
+def test_only_the_allowed_roles_get_through(api: Api) -> None:
+    with Session(api.client.app.state.engine) as session:  # type: ignore[attr-defined]
+        revoked, row = repository.new_token(session, "submitter", "old", NOW)
+        session.commit()
+        assert row.id is not None
+        repository.revoke_token(session, row.id, NOW)
+        session.commit()
+    for (method, path), allowed in ALLOWED.items():
+        if allowed is None:
+            assert call(api, method, path, None).status_code < 400, (method, path)
+            continue
+        for token in (None, "cap_wrong", revoked):
+            r = call(api, method, path, token)
+            assert r.status_code == 401, (method, path, token)
+            assert r.json()["resourceType"] == "OperationOutcome"
+        for role, secret in api.tokens.items():
+            r = call(api, method, path, secret)
+            if role in allowed:
+                assert r.status_code not in (401, 403), (method, path, role, r.text)
+            else:
+                assert r.status_code == 403, (method, path, role)
+            assert r.status_code < 500, (method, path, role, r.text)
+
+
+HOSTILE: list[tuple[str, bytes | str, dict[str, str], set[int]]] = [
+    ("deep nesting", b"[" * 50_000 + b"]" * 50_000, {}, {422}),
+    ("huge number", ROUTINE.replace('"value_mmhg": 15', '"value_mmhg": 1' + "0" * 400), {}, {422}),
+    ("huge integer", ROUTINE.replace('"pulses": 18', '"pulses": ' + "9" * 5000), {}, {422}),
+    ("very long string", ROUTINE.replace("Dr Ilona Marsh", "x" * 100_000), {}, {422}),
+    ("NaN", ROUTINE.replace('"value_mmhg": 15', '"value_mmhg": NaN'), {}, {422}),
+    ("Infinity", ROUTINE.replace('"value_mmhg": 15', '"value_mmhg": Infinity'), {}, {422}),
+    ("invalid UTF-8", ROUTINE.encode().replace(b"Ilona", b"Il\xff\xfena"), {}, {422}),
+    (
+        "duplicate keys",
+        ROUTINE.replace('"eye": "right",', '"eye": "right", "eye": "left",'),
+        {},
+        {422},
+    ),
+    ("form encoded", "a=1", {"content-type": "application/x-www-form-urlencoded"}, {415}),
+    ("no content type", ROUTINE, {"content-type": ""}, {415}),
+    ("empty body", b"", {}, {422}),
+    ("over the size limit", b" " * 1_100_000, {}, {413}),
+    ("a lie about length", ROUTINE, {"content-length": "abc"}, {413, 400}),
+]
+
+
+@pytest.mark.parametrize(
+    ("case", "body", "headers", "statuses"), HOSTILE, ids=[h[0] for h in HOSTILE]
+)
+def test_hostile_bodies(
+    api: Api, case: str, body: bytes | str, headers: dict[str, str], statuses: set[int]
+) -> None:
+    r = api.client.post("/notes", content=body, headers={**api.headers("submitter"), **headers})
+    assert r.status_code in statuses, r.text[:300]
+    if r.status_code != 400:  # a malformed header may be refused by the server itself
+        assert r.json()["resourceType"] == "OperationOutcome"
+    assert api.client.get("/healthz").status_code == 200  # still serving
+
+
+@pytest.mark.parametrize(
+    "value",
+    [
+        "' OR 1=1 --",
+        "1; DROP TABLE note_version",
+        "..%2F..%2Fetc%2Fpasswd",
+        "%00",
+        "<script>",
+        "\U0001d54f" * 50,  # a non-BMP character, many bytes in UTF-8
+    ],
+)
+def test_metacharacters_in_paths_and_queries(api: Api, value: str) -> None:
+    h = api.headers("auditor")
+    for url in (
+        f"/notes/{value}",
+        f"/notes/{value}/versions",
+        f"/fhir/Procedure/{value}",
+        f"/fhir/{value}/x",
+    ):
+        assert api.client.get(url, headers=h).status_code in (404, 422), url
+    for params in ({"patient": f"{value}|{value}"}, {"patient": value}):
+        assert api.client.get("/notes", params=params, headers=h).status_code in (200, 422)
+    r = api.client.get(
+        "/fhir/Procedure", params={"patient:identifier": f"a|{value}", "date": value}, headers=h
+    )
+    assert r.status_code == 422
+    assert r.json()["resourceType"] == "OperationOutcome"
+    r = api.client.get("/audit", params={"note": value[:36]}, headers=h)
+    assert r.status_code == 200
+    assert r.json()["entries"] == []
+
+
+def test_no_patient_data_in_logs(api: Api, caplog: pytest.LogCaptureFixture) -> None:
+    caplog.set_level(logging.DEBUG)
+    identifiers = set()
+    for path in VALID:
+        note = json.loads(path.read_text())
+        identifiers.add(note["patient"]["value"])
+        if "encounter" in note:
+            identifiers.add(note["encounter"]["value"])
+        assert (
+            api.client.post(
+                "/notes", content=path.read_text(), headers=api.headers("submitter")
+            ).status_code
+            == 201
+        )
+    # and the failure paths
+    bad = routine()
+    bad["patient"]["value"] = 42
+    api.client.post("/notes", content=json.dumps(bad), headers=api.headers("submitter"))
+    api.client.post(
+        "/notes",
+        content="{broken " + routine()["patient"]["value"],
+        headers=api.headers("submitter"),
+    )
+    text = caplog.text
+    assert caplog.records  # the service did log something
+    for value in identifiers:
+        assert value not in text
+
+
+def test_unexpected_errors_answer_500_with_only_an_incident_id(
+    api: Api, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
+) -> None:
+    service = api.client.app.state.notes  # type: ignore[attr-defined]
+
+    def broken(*_args: object) -> None:
+        raise RuntimeError("HX100234 secret detail")
+
+    monkeypatch.setattr(service, "get", broken)
+    # As a real server would: the exception is answered, not raised into the test.
+    client = TestClient(api.client.app, raise_server_exceptions=False)
+    with caplog.at_level(logging.ERROR):
+        r = client.get("/notes/abc", headers=api.headers("auditor"))
+    assert r.status_code == 500
+    outcome = r.json()
+    assert outcome["resourceType"] == "OperationOutcome"
+    assert "incident" in outcome["issue"][0]["diagnostics"]
+    assert "secret" not in r.text
+    assert "HX100234" not in caplog.text
+
+
+def test_database_down_answers_503_with_retry_after(api: Api) -> None:
+    app = api.client.app  # type: ignore[attr-defined]
+    app.state.engine.dispose()
+    original = app.state.engine.url
+    from sqlalchemy import create_engine
+
+    dead = create_engine("postgresql+psycopg://nobody@127.0.0.1:1/none", pool_pre_ping=False)
+    app.state.engine = dead
+    app.state.notes.engine = dead
+    try:
+        for r in (
+            api.client.get("/readyz"),
+            api.client.post("/notes", content=ROUTINE, headers=api.headers("submitter")),
+        ):
+            assert r.status_code in (401, 503)  # the token lookup itself needs the database
+            assert r.json()["resourceType"] == "OperationOutcome"
+        ready = api.client.get("/readyz")
+        assert ready.status_code == 503
+        assert ready.headers["retry-after"]
+    finally:
+        dead.dispose()
+        del original
