@@ -350,6 +350,7 @@ class NoteService:
 
     def get(self, key: str, version: int | None = None) -> StoredNote:
         """The latest version, or the one asked for."""
+        key = known_key(key)
         with Session(self.engine) as session:
             row = (
                 repo.latest_version(session, key)
