@@ -256,12 +256,13 @@ class NoteService:
             raise self._conflict(key)
 
     def _same_content(self, session: Session, key: str, digest: str) -> StoredNote | None:
+        """For a resend: the record as it stands now when any stored version has this content;
+        None when the note is new; a conflict when it is stored with other content."""
         versions = repo.all_versions(session, key)
         if not versions:
             return None
-        for row in reversed(versions):
-            if row.content_hash == digest and row.status != "void":
-                return _stored(row)
+        if any(row.content_hash == digest for row in versions):
+            return _stored(versions[-1])
         raise self._conflict(key)
 
     @staticmethod

@@ -1,0 +1,159 @@
+"""The note lifecycle against a simple model of what must be stored (Hypothesis stateful):
+no version lost, none duplicated, history in order, the latest always the one returned."""
+
+from __future__ import annotations
+
+import json
+import tempfile
+from pathlib import Path
+from typing import Any
+
+from hypothesis import HealthCheck, settings
+from hypothesis import strategies as st
+from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, precondition, rule
+
+from service.assess import Assessor
+from service.errors import ConflictError, InputError, NotFoundError, PreconditionError
+from service.notes import NoteService, Principal
+from service.policy import load_policy
+from service.store.database import make_engine, upgrade
+from tests.conftest import NOW, routine
+
+WHO = Principal("stateful test", "submitter")
+NOTE_IDS = ["LN-S-1", "LN-S-2", "LN-S-3"]
+
+
+def note_body(note_id: str, opening_mm: float, status: str) -> dict[str, Any]:
+    data = routine()
+    data["note_id"]["value"] = note_id
+    data["result"]["opening"]["horizontal_mm"] = opening_mm
+    data["status"] = status
+    return data
+
+
+class Lifecycle(RuleBasedStateMachine):
+    """Each note in the model: the list of (opening, status) per stored version."""
+
+    @initialize()
+    def start(self) -> None:
+        self.folder = tempfile.TemporaryDirectory()
+        self.engine = make_engine(f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}")
+        upgrade(self.engine)
+        self.service = NoteService(self.engine, Assessor(load_policy()), lambda: NOW)
+        self.model: dict[str, list[tuple[float, str]]] = {}
+        self.keys: dict[str, str] = {}
+
+    def teardown(self) -> None:
+        self.engine.dispose()
+        self.folder.cleanup()
+
+    @rule(
+        note_id=st.sampled_from(NOTE_IDS),
+        opening=st.sampled_from([3.5, 4.0, 4.5]),
+        status=st.sampled_from(["draft", "final"]),
+    )
+    def create_or_resend(self, note_id: str, opening: float, status: str) -> None:
+        body = json.dumps(note_body(note_id, opening, status)).encode()
+        versions = self.model.get(note_id)
+        try:
+            created, stored = self.service.submit(body, WHO)
+        except ConflictError:
+            assert versions is not None
+            assert (opening, status) not in versions
+            return
+        if versions is None:
+            assert created
+            self.model[note_id] = [(opening, status)]
+            self.keys[note_id] = stored.key
+        else:
+            assert not created  # same content as a stored version: nothing new
+            assert (opening, status) in versions
+            assert stored.version == len(versions)  # and the record as it stands now
+
+    @precondition(lambda self: bool(self.model))
+    @rule(
+        data=st.data(),
+        opening=st.sampled_from([3.0, 5.0, 5.5]),
+        status=st.sampled_from(["draft", "final"]),
+        reason=st.sampled_from([None, "fix"]),
+        use_if_match=st.booleans(),
+        stale=st.booleans(),
+    )
+    def amend(
+        self,
+        data: st.DataObject,
+        opening: float,
+        status: str,
+        reason: str | None,
+        use_if_match: bool,
+        stale: bool,
+    ) -> None:
+        note_id = data.draw(st.sampled_from(sorted(self.model)))
+        versions = self.model[note_id]
+        latest = len(versions)
+        if_match = (latest - 1 if stale and latest > 1 else latest) if use_if_match else None
+        body = json.dumps({"reason": reason, "note": note_body(note_id, opening, status)}).encode()
+        try:
+            stored = self.service.amend(self.keys[note_id], body, WHO, if_match)
+        except PreconditionError:
+            assert if_match is not None
+            assert if_match != latest
+            return
+        except ConflictError:
+            assert versions[-1][1] == "void"
+            return
+        except InputError:
+            assert versions[-1][1] == "final"
+            assert reason is None
+            return
+        assert if_match in (None, latest)
+        if versions[-1] == (opening, status):
+            assert stored.version == latest  # unchanged content: no new version
+        else:
+            versions.append((opening, status))
+            assert stored.version == len(versions)
+
+    @precondition(lambda self: bool(self.model))
+    @rule(data=st.data())
+    def void(self, data: st.DataObject) -> None:
+        note_id = data.draw(st.sampled_from(sorted(self.model)))
+        versions = self.model[note_id]
+        stored = self.service.void(
+            self.keys[note_id], b'{"reason": "entered on the wrong patient"}', WHO, None
+        )
+        if versions[-1][1] != "void":
+            versions.append((versions[-1][0], "void"))
+        assert stored.version == len(versions)
+        assert stored.status == "void"
+
+    @rule()
+    def unknown_note(self) -> None:
+        try:
+            self.service.get("00000000-0000-0000-0000-000000000000")
+        except NotFoundError:
+            return
+        raise AssertionError("an unknown note was found")
+
+    @invariant()
+    def store_matches_model(self) -> None:
+        for note_id, versions in self.model.items():
+            key = self.keys[note_id]
+            history = self.service.versions(key)
+            assert [h["version"] for h in history] == list(range(1, len(versions) + 1))
+            assert [h["status"] for h in history] == [v[1] for v in versions]
+            latest = self.service.get(key)
+            assert latest.version == len(versions)
+            assert latest.note["result"]["opening"]["horizontal_mm"] == versions[-1][0]
+            for n, (opening, _status) in enumerate(versions, start=1):
+                assert (
+                    self.service.get(key, n).note["result"]["opening"]["horizontal_mm"] == opening
+                )
+
+
+Lifecycle.TestCase.settings = settings(
+    max_examples=25,
+    stateful_step_count=12,
+    deadline=None,
+    suppress_health_check=[HealthCheck.too_slow],
+)
+TestLifecycle = Lifecycle.TestCase
