@@ -39,6 +39,13 @@ AMEND_BODY: dict[str, Any] = {
         },
     }
 }
+CHECK_BODY: dict[str, Any] = {
+    "requestBody": {
+        "required": True,
+        "description": "A note, complete or not: every problem comes back as a finding",
+        "content": {"application/json": {"schema": {"type": "object"}}},
+    }
+}
 VOID_BODY: dict[str, Any] = {
     "requestBody": {
         "required": True,
@@ -70,12 +77,12 @@ _MEANING = {
 }
 
 
-def responses(*codes: int) -> dict[int | str, dict[str, Any]]:
-    """The documented answers of a route: its successes and every error it can give."""
+def responses(*codes: int, media: str = "application/json") -> dict[int | str, dict[str, Any]]:
+    """The documented answers of a route: its successes (in media) and every error it can give."""
     out: dict[int | str, dict[str, Any]] = {}
-    for code in sorted({*codes, 401, 403, 413, 415, 500, 503}):
+    for code in sorted({*codes, 401, 403, 413, 415, 422, 500, 503}):
         if code < 400:
-            out[code] = {"description": _MEANING[code]}
+            out[code] = {"description": _MEANING[code], "content": {media: {}}}
         else:
             out[code] = {
                 "description": _MEANING[code],

@@ -10,6 +10,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
 from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from starlette.exceptions import HTTPException
+from starlette.routing import Match
 
 from service.api.media import FHIR_JSON, fhir_response
 from service.errors import CapnoteError, PreconditionError, UnavailableError
@@ -70,7 +71,17 @@ async def _validation_error(_request: Request, exc: Exception) -> Response:
     return outcome_response(422, {"resourceType": "OperationOutcome", "issue": issues})
 
 
-async def _http_error(_request: Request, exc: Exception) -> Response:
+def _allowed_methods(request: Request) -> str:
+    """Every method some route offers at this path (Starlette names only the first route's)."""
+    methods: set[str] = set()
+    for route in request.app.routes:
+        match, _ = route.matches({**request.scope, "method": "GET"})
+        if match != Match.NONE:
+            methods |= set(getattr(route, "methods", None) or ())
+    return ", ".join(sorted(methods))
+
+
+async def _http_error(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, HTTPException)
     body = {
         "resourceType": "OperationOutcome",
@@ -82,7 +93,10 @@ async def _http_error(_request: Request, exc: Exception) -> Response:
             }
         ],
     }
-    return outcome_response(exc.status_code, body, dict(exc.headers or {}))
+    headers = dict(exc.headers or {})
+    if exc.status_code == 405:
+        headers["Allow"] = _allowed_methods(request)
+    return outcome_response(exc.status_code, body, headers)
 
 
 async def _unexpected(request: Request, exc: Exception) -> Response:

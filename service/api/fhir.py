@@ -14,7 +14,7 @@ from sqlmodel import Session
 from service.api.auth import CHECK, READ, allow
 from service.api.capability import capability_statement
 from service.api.docs import responses
-from service.api.media import fhir_response, json_body
+from service.api.media import FHIR_JSON, fhir_response, json_body
 from service.errors import InputError, NotFoundError
 from service.fhir.outcome import outcome
 from service.fhir.validate import validate_resource
@@ -67,7 +67,7 @@ def _body(row: FhirResource) -> Any:
     return orjson.loads(row.body)
 
 
-@router.get("/metadata", responses=responses(200))
+@router.get("/metadata", responses=responses(200, media=FHIR_JSON))
 def metadata(request: Request) -> Response:
     """The CapabilityStatement: what this server really supports (no token needed)."""
     return fhir_response(capability_statement(str(request.base_url).rstrip("/") + "/fhir"))
@@ -139,7 +139,7 @@ def _searchset(
     return fhir_response(bundle)
 
 
-@router.get("/Procedure", responses=responses(200, 422))
+@router.get("/Procedure", responses=responses(200, 422, media=FHIR_JSON))
 def search_procedures(
     request: Request,
     _who: Reader,
@@ -165,7 +165,7 @@ def search_procedures(
     return _searchset(request, "Procedure", total, list(rows), page, count)
 
 
-@router.get("/ServiceRequest", responses=responses(200, 422))
+@router.get("/ServiceRequest", responses=responses(200, 422, media=FHIR_JSON))
 def search_service_requests(
     request: Request,
     _who: Reader,
@@ -193,7 +193,7 @@ def search_service_requests(
     return _searchset(request, "ServiceRequest", total, list(rows), page, count)
 
 
-@router.get("/{kind}/{resource_id}", responses=responses(200, 404))
+@router.get("/{kind}/{resource_id}", responses=responses(200, 404, media=FHIR_JSON))
 def read_resource(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
     """The current version of a resource."""
     with Session(request.app.state.engine) as session:
@@ -203,7 +203,7 @@ def read_resource(request: Request, kind: str, resource_id: str, _who: Reader) -
     return fhir_response(_body(row), headers={"ETag": f'W/"{row.version}"'})
 
 
-@router.get("/{kind}/{resource_id}/_history", responses=responses(200, 404))
+@router.get("/{kind}/{resource_id}/_history", responses=responses(200, 404, media=FHIR_JSON))
 def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
     """Every version of a resource, newest first."""
     with Session(request.app.state.engine) as session:
@@ -235,7 +235,9 @@ def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Resp
     return fhir_response(bundle)
 
 
-@router.get("/{kind}/{resource_id}/_history/{version}", responses=responses(200, 404))
+@router.get(
+    "/{kind}/{resource_id}/_history/{version}", responses=responses(200, 404, media=FHIR_JSON)
+)
 def version_read(
     request: Request, kind: str, resource_id: str, version: int, _who: Reader
 ) -> Response:
@@ -248,7 +250,7 @@ def version_read(
     raise NotFoundError(f"no version {version} of this {kind}")
 
 
-@router.post("/{kind}/$validate", responses=responses(200, 422))
+@router.post("/{kind}/$validate", responses=responses(200, 422, media=FHIR_JSON))
 async def validate(
     request: Request, kind: str, _who: Annotated[Principal, Depends(allow(*CHECK))]
 ) -> Response:

@@ -10,7 +10,7 @@ from fastapi.responses import Response
 from starlette.concurrency import run_in_threadpool
 
 from service.api.auth import CHECK, READ, WRITE, allow
-from service.api.docs import AMEND_BODY, NOTE_BODY, VOID_BODY, responses
+from service.api.docs import AMEND_BODY, CHECK_BODY, NOTE_BODY, VOID_BODY, responses
 from service.api.media import json_body, json_response
 from service.errors import InputError
 from service.findings import Finding, Severity
@@ -61,13 +61,28 @@ async def submit_note(
     return json_response(stored.view(), 201 if created else 200, _etag(stored))
 
 
-@router.post("/check", openapi_extra=NOTE_BODY, responses=responses(200))
+@router.post("/check", openapi_extra=CHECK_BODY, responses=responses(200))
 async def check_note(
     request: Request, _who: Annotated[Principal, Depends(allow(*CHECK))]
 ) -> Response:
     """Everything POST /notes would produce (findings, derived values, due items, Bundle),
     stored nowhere; a note with errors still answers 200, with accepted false."""
     body = await json_body(request)
+    if not body.lstrip().startswith(b"{"):
+        # Anything but a JSON object is no note at all: refused, not reported on.
+        raise InputError(
+            "the body must be a JSON object",
+            [
+                Finding(
+                    Severity.ERROR,
+                    "wrong-type",
+                    "",
+                    "the body must be a JSON object",
+                    "POST /notes/check takes a note (a JSON object)",
+                    issue_type="structure",
+                )
+            ],
+        )
     return json_response(await run_in_threadpool(_service(request).check, body))
 
 
