@@ -51,6 +51,9 @@ class Figures:
     half_written: int = 0
     wrong_content: int = 0
     retry_after_missing: int = 0
+    bad_inputs: int = 0
+    bad_input_5xx: int = 0
+    crashes: int = 0
     lock: threading.Lock = field(default_factory=threading.Lock)
 
 
@@ -187,12 +190,44 @@ def run(notes: int, concurrency: int) -> Figures:
         with ThreadPoolExecutor(max_workers=concurrency) as pool:
             list(pool.map(lambda i: send(i, servers, token, figures, deadline), range(notes)))
         injector.join(timeout=60)
+        bad_inputs(servers, token, figures, max(100, notes // 4))
         check_store(url, figures)
     finally:
         for s in servers:
             s.stop()
         cluster.stop()
     return figures
+
+
+def hostile(i: int) -> bytes:
+    """A bad input: random bytes, a truncated note, or a note with one field mangled."""
+    rng = random.Random(i)
+    base = note(100_000 + i)
+    kind = i % 4
+    if kind == 0:
+        return bytes(rng.getrandbits(8) for _ in range(rng.randint(0, 400)))
+    if kind == 1:
+        return base[: rng.randint(0, len(base))]
+    data = json.loads(base)
+    target = rng.choice(["laser", "before", "result", "plan", "eye", "started_at"])
+    data[target] = rng.choice([None, -1e308, "x" * 5000, [], {"a": [[[[1]]]]}, 10**40, True])
+    return json.dumps(data).encode()
+
+
+def bad_inputs(servers: list[Server], token: str, figures: Figures, count: int) -> None:
+    """Bad inputs at both servers: each must get a 4xx, and no server may die."""
+    headers = {"authorization": f"Bearer {token}", "content-type": "application/json"}
+    for i in range(count):
+        server = servers[i % len(servers)]
+        try:
+            r = httpx.post(f"{server.base}/notes", content=hostile(i), headers=headers, timeout=20)
+        except httpx.TransportError:
+            figures.bad_input_5xx += 1
+            continue
+        figures.bad_inputs += 1
+        if r.status_code >= 500:
+            figures.bad_input_5xx += 1
+    figures.crashes = sum(1 for s in servers if s.process is None or s.process.poll() is not None)
 
 
 def check_store(url: str, figures: Figures) -> None:
@@ -241,6 +276,9 @@ def table(f: Figures) -> str:
         ("503 without Retry-After", f.retry_after_missing),
         ("other 5xx answers", f.answers_5xx),
         ("dropped connections (retried)", f.transport_errors),
+        ("bad inputs tried", f.bad_inputs),
+        ("5xx to bad inputs", f.bad_input_5xx),
+        ("server crashes", f.crashes),
     ]
     width = max(len(r[0]) for r in rows)
     lines = [f"| {'figure'.ljust(width)} | value |", f"|{'-' * (width + 2)}|-------|"]
