@@ -34,6 +34,10 @@ IdValue = Annotated[
     ),
 ]
 
+# Whole numbers stay inside 32 bits: the site's limits judge the range, and no count in a
+# note comes near this, but an unbounded JSON integer would overflow arithmetic later on.
+Count = Annotated[int, Field(ge=-(2**31), le=2**31 - 1)]
+
 Eye = Literal["right", "left"]
 IopMethod = Literal["applanation", "rebound", "non-contact", "other"]
 # "qualitative" takes CF, HM, LP or NLP: recorded as entered, with no logMAR.
@@ -152,7 +156,7 @@ class Series(Contract):
     """One run of pulses at one energy setting."""
 
     energy_mj: float
-    pulses: int
+    pulses: Count
 
 
 class Focus(Contract):
@@ -228,8 +232,8 @@ class HomeDrop(Contract):
 
     agent: Text
     strength_percent: float | None = None
-    times_per_day: int
-    days: int
+    times_per_day: Count
+    days: Count
 
 
 class Plan(Contract):
@@ -237,8 +241,8 @@ class Plan(Contract):
 
     prophylaxis: Annotated[list[ClinicDrop], Field(max_length=10)] = []
     take_home: Annotated[list[HomeDrop], Field(max_length=10)] = []
-    iop_recheck_minutes: int | None = None
-    review_days: int | None = None
+    iop_recheck_minutes: Count | None = None
+    review_days: Count | None = None
     rd_warning_given: bool
     further_session_planned: bool = False
 

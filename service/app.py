@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
-from collections.abc import Awaitable, Callable
+import threading
+from collections.abc import AsyncIterator, Awaitable, Callable
+from contextlib import asynccontextmanager
 from datetime import UTC, datetime
 
 from fastapi import FastAPI, Request
@@ -10,10 +12,12 @@ from fastapi.middleware.cors import CORSMiddleware
 from fastapi.responses import Response
 
 from service import __version__
-from service.api import audit, docs, errors, fhir, health, notes
+from service.api import audit, docs, errors, fhir, health, notes, web
+from service.api.guard import Guard
 from service.api.limits import BodyLimit
 from service.assess import Assessor
 from service.config import Settings, effective_policy
+from service.delivery import DeliveryWorker
 from service.notes import Clock, NoteService
 from service.store.database import make_engine, upgrade
 
@@ -42,13 +46,40 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     engine = make_engine(settings.database_url)
     if settings.migrate_on_start:
         upgrade(engine)
-    app = FastAPI(title="capnote", version=__version__, description=DESCRIPTION)
+    receiver = settings.receiver()
+
+    @asynccontextmanager
+    async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
+        # Delivery runs beside the service when forwarding is on; claims in the database keep
+        # several processes from sending one entry twice.
+        stop = threading.Event()
+        worker = thread = None
+        if receiver is not None and settings.deliver_in_service:
+            worker = DeliveryWorker(engine, receiver, clock)
+            thread = threading.Thread(target=worker.run_forever, args=(stop,), daemon=True)
+            thread.start()
+        yield
+        stop.set()
+        if thread is not None and worker is not None:
+            thread.join(timeout=10)
+            worker.close()
+
+    # No /docs or /redoc: both pages load their scripts from a CDN, which the CSP (and many
+    # hospital networks) refuse; the OpenAPI document itself is at /openapi.json.
+    app = FastAPI(
+        title="capnote",
+        version=__version__,
+        description=DESCRIPTION,
+        lifespan=lifespan,
+        docs_url=None,
+        redoc_url=None,
+    )
     app.state.engine = engine
-    app.state.notes = NoteService(engine, Assessor(policy), clock)
+    app.state.notes = NoteService(engine, Assessor(policy), clock, forward=receiver is not None)
     app.state.settings = settings
     errors.install(app)
     docs.install(app)
-    for router in (health.router, notes.router, fhir.router, audit.router):
+    for router in (health.router, notes.router, fhir.router, audit.router, web.router):
         app.include_router(router)
 
     @app.middleware("http")
@@ -69,6 +100,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
             expose_headers=["ETag", "Location"],
         )
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(Guard)
     return app
 
 

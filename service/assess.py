@@ -15,6 +15,7 @@ from schemas.note import Note
 from service.clinic_calendar import ClinicCalendar, PolicyCalendar
 from service.derive import Derived, PriorSession, derive
 from service.fhir.bundle import bundle
+from service.fhir.common import Version
 from service.findings import Finding, has_errors
 from service.policy.model import Policy
 from service.rules import Context, check_payload
@@ -49,25 +50,22 @@ class Assessor:
         payload: bytes | str,
         now: datetime,
         prior: Sequence[PriorSession] = (),
-        version: int = 1,
-        voided: bool = False,
     ) -> Assessment:
         """Check a raw note and, when it is clean of errors, derive, schedule and emit."""
         note, findings = check_payload(payload, Context(self.policy, now))
         if note is None or has_errors(findings):
             return Assessment(note, findings)
-        return self.complete(note, findings, prior, version, voided)
+        return self.complete(note, findings, prior)
 
     def complete(
         self,
         note: Note,
         findings: list[Finding],
         prior: Sequence[PriorSession] = (),
-        version: int = 1,
-        voided: bool = False,
+        version: Version | None = None,
     ) -> Assessment:
         """Derive, schedule and emit for a note that passed its checks."""
         derived = derive(note, self.policy, prior)
         due = schedule(note, derived, self.policy, self.calendar)
-        emitted = bundle(note, derived, due, version, voided)
+        emitted = bundle(note, derived, due, version)
         return Assessment(note, findings, derived, tuple(due), emitted)

@@ -9,6 +9,7 @@ from pathlib import Path
 
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from service.delivery import Receiver
 from service.policy import Policy, load_policy
 
 
@@ -26,6 +27,28 @@ class Settings(BaseSettings):
     cors_origins: list[str] = []
     # `capnote serve` migrates once before starting workers and turns this off for them.
     migrate_on_start: bool = True
+    # Forwarding to the hospital's FHIR server (off while forward_url is unset).
+    forward_url: str | None = None
+    forward_token: str | None = None
+    forward_token_url: str | None = None
+    forward_client_id: str | None = None
+    forward_client_secret: str | None = None
+    forward_timeout_s: float = 30.0
+    # Run a delivery loop inside each service process; off when `capnote deliver` runs alone.
+    deliver_in_service: bool = True
+
+    def receiver(self) -> Receiver | None:
+        """The forwarding target, when one is configured."""
+        if not self.forward_url:
+            return None
+        return Receiver(
+            self.forward_url,
+            self.forward_token,
+            self.forward_token_url,
+            self.forward_client_id,
+            self.forward_client_secret,
+            self.forward_timeout_s,
+        )
 
 
 def effective_policy(settings: Settings) -> Policy:

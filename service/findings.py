@@ -58,6 +58,10 @@ def show_value(location: str, value: object) -> str | None:
         return None
     if location.split(".", 1)[0].split("[", 1)[0] in _IDENTIFYING_PREFIXES:
         return WITHHELD
+    if isinstance(value, dict | list):
+        # An object or list may hold anything, identifiers included: say what it is, not what
+        # is in it.
+        return "(a JSON object)" if isinstance(value, dict) else "(a JSON list)"
     if isinstance(value, float):
         text = f"{value:g}"
     else:

@@ -8,8 +8,10 @@ note make one row and the loser reads the winner's.
 from __future__ import annotations
 
 import hashlib
+import threading
 import uuid
 from collections.abc import Callable, Sequence
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
@@ -23,11 +25,12 @@ from schemas.note import Note
 from service.assess import Assessment, Assessor
 from service.derive import PriorSession
 from service.errors import ConflictError, InputError, NotFoundError, PreconditionError
-from service.fhir.common import stable_uuid
+from service.fhir.common import Version, stable_uuid
 from service.findings import Finding, Severity, has_errors
 from service.rules import Context, check_payload
+from service.store import outbox
 from service.store import repository as repo
-from service.store.tables import AuditEntry, NoteVersion
+from service.store.tables import NoteVersion
 from service.views import assessment_view
 
 Clock = Callable[[], datetime]
@@ -132,10 +135,22 @@ def _problem(code: str, location: str, message: str, rule: str) -> InputError:
 class NoteService:
     """The note lifecycle over one store."""
 
-    def __init__(self, engine: Engine, assessor: Assessor, clock: Clock) -> None:
+    def __init__(
+        self, engine: Engine, assessor: Assessor, clock: Clock, *, forward: bool = False
+    ) -> None:
         self.engine = engine
         self.assessor = assessor
         self.clock = clock
+        # With forwarding on, every stored version gets an outbox entry in its own transaction.
+        self.forward = forward
+        # SQLite has one writer at a time, and a writer that finds the database locked sleeps
+        # in steps of up to 100 ms (its busy handler) although the lock is held for about a
+        # millisecond: under concurrent submissions the threads of one process then spend
+        # their time asleep. They queue here instead and wake as soon as the writer commits;
+        # other processes still meet the busy handler. PostgreSQL locks rows, not the file.
+        self._write_turn: AbstractContextManager[object] = (
+            threading.Lock() if engine.dialect.name == "sqlite" else nullcontext()
+        )
 
     # -- checking --------------------------------------------------------------------------
 
@@ -168,48 +183,64 @@ class NoteService:
         session: Session,
         note: Note,
         findings: list[Finding],
-        version: int,
+        emitted: Version,
         status: str,
         reason: str | None,
         who: Principal,
         action: str,
+        digest: str | None = None,
     ) -> StoredNote:
         key = note_key(note)
         now = self.clock()
-        result = self.assessor.complete(
-            note, findings, self._priors(session, note, key), version, voided=status == "void"
-        )
+        version = emitted.number
+        result = self.assessor.complete(note, findings, self._priors(session, note, key), emitted)
         if result.bundle is None or result.derived is None:  # complete() always sets both
             raise RuntimeError("assessment of a checked note came back incomplete")
-        row = NoteVersion(
-            note_key=key,
+        note_json = note.model_dump_json(exclude_none=True)
+        result_json = orjson.dumps(assessment_view(result))
+        bundle_json = orjson.dumps(result.bundle)
+        recorded_at = repo.to_db(now)
+        # Column values and Core inserts, not ORM objects: building, flushing and refreshing
+        # a NoteVersion and its FhirResources was most of a submission's time. Everything
+        # above is done before the first write, so the write lock is held for the writes only.
+        values = {
+            "note_key": key,
+            "version": version,
+            "sender_system": note.note_id.system,
+            "sender_value": note.note_id.value,
+            "patient_system": note.patient.system,
+            "patient_value": note.patient.value,
+            "eye": note.eye,
+            "started_at": repo.to_db(note.started_at),
+            "status": status,
+            "total_energy_mj": result.derived.total_energy_mj,
+            "content_hash": digest or content_hash(note),
+            "note_json": note_json,
+            "result_json": result_json.decode(),
+            "bundle_json": bundle_json.decode(),
+            "reason": reason,
+            "recorded_at": recorded_at,
+            "recorded_by": who.label,
+        }
+        copies = _read_copies(result.bundle, version, now)
+        with self._write_turn:
+            repo.insert_version(session, values, copies, (note.patient.system, note.patient.value))
+            if self.forward:
+                outbox.enqueue(session, key, version, now)
+            self._audit(session, who, action, key, version, "ok")
+            session.commit()
+        # What a re-read of the row would give (the store keeps these texts verbatim).
+        return StoredNote(
+            key=key,
             version=version,
-            sender_system=note.note_id.system,
-            sender_value=note.note_id.value,
-            patient_system=note.patient.system,
-            patient_value=note.patient.value,
-            eye=note.eye,
-            started_at=repo.to_db(note.started_at),
             status=status,
-            total_energy_mj=result.derived.total_energy_mj,
-            content_hash=content_hash(note),
-            note_json=note.model_dump_json(exclude_none=True),
-            result_json=orjson.dumps(assessment_view(result)).decode(),
-            bundle_json=orjson.dumps(result.bundle).decode(),
-            reason=reason,
-            recorded_at=repo.to_db(now),
+            recorded_at=repo.from_db(recorded_at),
             recorded_by=who.label,
+            reason=reason,
+            note=orjson.loads(note_json),
+            result=orjson.loads(result_json),
+            bundle=orjson.loads(bundle_json),
         )
-        repo.add_version(
-            session,
-            row,
-            _read_copies(result.bundle, version, now),
-            (note.patient.system, note.patient.value),
-        )
-        self._audit(session, who, action, key, version, "ok")
-        session.commit()
-        session.refresh(row)
-        return _stored(row)
 
     def _audit(
         self,
@@ -220,18 +251,18 @@ class NoteService:
         version: int | None,
         outcome: str,
     ) -> None:
-        repo.audit(
+        repo.insert_audit(
             session,
-            AuditEntry(
-                at=repo.to_db(self.clock()),
-                actor=who.label,
-                role=who.role,
-                action=action,
-                note_key=key,
-                version=version,
-                remote=who.remote,
-                outcome=outcome,
-            ),
+            {
+                "at": repo.to_db(self.clock()),
+                "actor": who.label,
+                "role": who.role,
+                "action": action,
+                "note_key": key,
+                "version": version,
+                "remote": who.remote,
+                "outcome": outcome,
+            },
         )
 
     def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredNote]:
@@ -244,7 +275,7 @@ class NoteService:
                 return False, known
             try:
                 return True, self._write(
-                    session, note, findings, 1, note.status, None, who, "create"
+                    session, note, findings, Version(1), note.status, None, who, "create", digest
                 )
             except IntegrityError:
                 session.rollback()
@@ -258,11 +289,14 @@ class NoteService:
     def _same_content(self, session: Session, key: str, digest: str) -> StoredNote | None:
         """For a resend: the record as it stands now when any stored version has this content;
         None when the note is new; a conflict when it is stored with other content."""
-        versions = repo.all_versions(session, key)
-        if not versions:
+        # Digests first: a new note, the common case, then costs one narrow query.
+        digests = repo.content_hashes(session, key)
+        if not digests:
             return None
-        if any(row.content_hash == digest for row in versions):
-            return _stored(versions[-1])
+        if digest in digests:
+            latest = repo.latest_version(session, key)
+            if latest is not None:  # rows are never deleted: it is there
+                return _stored(latest)
         raise self._conflict(key)
 
     @staticmethod
@@ -273,19 +307,16 @@ class NoteService:
         )
 
     def amend(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
-        """Store a new version of a note; a signed note needs a reason."""
-        wrapper = _json_object(body)
-        note_part, reason = wrapper.get("note"), wrapper.get("reason")
+        """Store a new version of a note; a signed note needs a reason and stays signed."""
+        key = known_key(key)
+        wrapper = _json_object(body, allowed={"note", "reason"})
+        note_part, reason = wrapper.get("note"), _reason(wrapper.get("reason"), required=False)
         if not isinstance(note_part, dict):
             raise _problem(
                 "missing-field",
                 "note",
                 "the amended note is missing",
                 'PUT /notes/{id} takes {"reason": ..., "note": {...}}',
-            )
-        if reason is not None and (not isinstance(reason, str) or not reason.strip()):
-            raise _problem(
-                "wrong-type", "reason", "the reason must be text", "reason is a non-empty string"
             )
         note, findings = self._checked(orjson.dumps(note_part))
         if note_key(note) != key:
@@ -296,7 +327,10 @@ class NoteService:
                 "an amendment keeps the note identifier",
             )
         with Session(self.engine) as session:
-            latest = self._latest(session, key, if_match)
+            latest = self._latest(session, key)
+            if latest.content_hash == content_hash(note) and latest.status != "void":
+                return _stored(latest)  # a retry of an amendment that already landed
+            _check_match(latest, if_match)
             if latest.status == "void":
                 raise ConflictError("the note was voided; it cannot be amended")
             if latest.status == "final" and not reason:
@@ -306,45 +340,47 @@ class NoteService:
                     "amending a signed note needs a reason",
                     "a final note is amended only with a reason",
                 )
-            if latest.content_hash == content_hash(note):
-                return _stored(latest)
+            if latest.status == "final" and note.status == "draft":
+                raise _problem(
+                    "status-regression",
+                    "note.status",
+                    "a signed note cannot go back to draft",
+                    "once final, later versions are final",
+                )
+            emitted = Version(
+                latest.version + 1,
+                amends_final=latest.status == "final",
+                previous=orjson.loads(latest.bundle_json),
+            )
             try:
                 return self._write(
-                    session, note, findings, latest.version + 1, note.status, reason, who, "amend"
+                    session, note, findings, emitted, note.status, reason, who, "amend"
                 )
             except IntegrityError as exc:
                 raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
     def void(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
         """Mark a note entered-in-error: a new version whose resources say so."""
-        reason = _json_object(body).get("reason")
-        if not isinstance(reason, str) or not reason.strip():
-            raise _problem(
-                "missing-field",
-                "reason",
-                "voiding a note needs a reason",
-                'POST /notes/{id}/void takes {"reason": ...}',
-            )
+        key = known_key(key)
+        reason = _reason(_json_object(body, allowed={"reason"}).get("reason"), required=True)
         with Session(self.engine) as session:
-            latest = self._latest(session, key, if_match)
+            latest = self._latest(session, key)
             if latest.status == "void":
-                return _stored(latest)
+                return _stored(latest)  # voided already (a retry, or someone else did)
+            _check_match(latest, if_match)
             note = Note.model_validate_json(latest.note_json)
+            emitted = Version(
+                latest.version + 1, voided=True, amends_final=latest.status == "final"
+            )
             try:
-                return self._write(
-                    session, note, [], latest.version + 1, "void", reason, who, "void"
-                )
+                return self._write(session, note, [], emitted, "void", reason, who, "void")
             except IntegrityError as exc:
                 raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
-    def _latest(self, session: Session, key: str, if_match: int | None) -> NoteVersion:
-        latest = repo.latest_version(session, known_key(key))
+    def _latest(self, session: Session, key: str) -> NoteVersion:
+        latest = repo.latest_version(session, key)
         if latest is None:
             raise NotFoundError("no note with this id")
-        if if_match is not None and if_match != latest.version:
-            raise PreconditionError(
-                f"If-Match names version {if_match} but the latest is {latest.version}"
-            )
         return latest
 
     # -- reading ---------------------------------------------------------------------------
@@ -395,7 +431,36 @@ class NoteService:
             return total, [_stored(r) for r in rows]
 
 
-def _json_object(body: bytes) -> dict[str, Any]:
+def _check_match(latest: NoteVersion, if_match: int | None) -> None:
+    """412 when If-Match names a version other than the latest."""
+    if if_match is not None and if_match != latest.version:
+        raise PreconditionError(
+            f"If-Match names version {if_match} but the latest is {latest.version}"
+        )
+
+
+REASON_MAX = 500
+
+
+def _reason(value: object, *, required: bool) -> str | None:
+    """A reason: text of 1 to REASON_MAX characters (required for voids)."""
+    if value is None and not required:
+        return None
+    if not isinstance(value, str) or not value.strip():
+        raise _problem(
+            "missing-field", "reason", "a reason is needed, as text", "reason is a non-empty string"
+        )
+    if len(value) > REASON_MAX or any(ord(c) < 32 for c in value):
+        raise _problem(
+            "wrong-format",
+            "reason",
+            f"the reason must be printable text of at most {REASON_MAX} characters",
+            f"reason: 1 to {REASON_MAX} printable characters",
+        )
+    return value.strip()
+
+
+def _json_object(body: bytes, allowed: set[str] | None = None) -> dict[str, Any]:
     try:
         data = orjson.loads(body)
     except orjson.JSONDecodeError as exc:
@@ -405,5 +470,13 @@ def _json_object(body: bytes) -> dict[str, Any]:
     if not isinstance(data, dict):
         raise _problem(
             "wrong-type", "", "the body must be a JSON object", "the body must be a JSON object"
+        )
+    unknown = sorted(set(data) - allowed) if allowed is not None else []
+    if unknown:
+        raise _problem(
+            "unknown-field",
+            unknown[0][:40],
+            "only " + ", ".join(sorted(allowed or ())) + " may be given",
+            "the body's documented fields only",
         )
     return data

@@ -168,3 +168,14 @@ def test_validate_type_mismatch(api: Api) -> None:
 def test_unknown_resource_type_and_id(api: Api) -> None:
     assert fhir(api, "/fhir/Patient/123").status_code == 404
     assert fhir(api, "/fhir/Procedure/no-such-id").status_code == 404
+
+
+@pytest.mark.parametrize("kind", ["Foo", "Coding"])
+def test_validate_an_unknown_or_non_resource_type(api: Api, kind: str) -> None:
+    r = api.client.post(
+        f"/fhir/{kind}/$validate",
+        content=json.dumps({"resourceType": kind}),
+        headers=api.headers("analyst"),
+    )
+    assert r.status_code == 200
+    assert r.json()["issue"][0]["details"]["coding"][0]["code"] == "fhir-unknown-type"

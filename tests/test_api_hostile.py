@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import logging
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -30,6 +31,7 @@ ALLOWED: dict[tuple[str, str], set[str] | None] = {
     ("get", "/notes"): READ,
     ("get", "/notes/{note_id}"): READ,
     ("get", "/notes/{note_id}/versions"): READ,
+    ("get", "/notes/{note_id}/delivery"): READ,
     ("get", "/notes/{note_id}/versions/{version}"): READ,
     ("put", "/notes/{note_id}"): WRITE,
     ("post", "/notes/{note_id}/void"): WRITE,
@@ -215,7 +217,6 @@ def test_unexpected_errors_answer_500_with_only_an_incident_id(
 def test_database_down_answers_503_with_retry_after(api: Api) -> None:
     app = api.client.app  # type: ignore[attr-defined]
     app.state.engine.dispose()
-    original = app.state.engine.url
     from sqlalchemy import create_engine
 
     dead = create_engine("postgresql+psycopg://nobody@127.0.0.1:1/none", pool_pre_ping=False)
@@ -226,11 +227,62 @@ def test_database_down_answers_503_with_retry_after(api: Api) -> None:
             api.client.get("/readyz"),
             api.client.post("/notes", content=ROUTINE, headers=api.headers("submitter")),
         ):
-            assert r.status_code in (401, 503)  # the token lookup itself needs the database
+            assert r.status_code == 503  # the token lookup itself needs the database
             assert r.json()["resourceType"] == "OperationOutcome"
         ready = api.client.get("/readyz")
         assert ready.status_code == 503
         assert ready.headers["retry-after"]
     finally:
         dead.dispose()
-        del original
+
+
+def test_a_real_server_logs_no_traceback_for_an_unexpected_error(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch, caplog: pytest.LogCaptureFixture
+) -> None:
+    # Through uvicorn itself, as deployed: Starlette re-raises after answering, and uvicorn
+    # would log the traceback with the exception's message; the guard must stop that.
+    import socket
+    import threading
+    import time
+
+    import httpx
+    import uvicorn
+
+    from service.app import create_app
+    from service.config import Settings
+
+    app = create_app(
+        Settings(database_url=f"sqlite:///{tmp_path / 'g.sqlite3'}"), clock=lambda: NOW
+    )
+    with Session(app.state.engine) as session:
+        secret, _ = repository.new_token(session, "auditor", "guard", NOW)
+        session.commit()
+
+    def broken(*_args: object) -> None:
+        raise RuntimeError("HX100234 secret detail")
+
+    monkeypatch.setattr(app.state.notes, "get", broken)
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    server = uvicorn.Server(uvicorn.Config(app, host="127.0.0.1", port=port, log_level="info"))
+    thread = threading.Thread(target=server.run, daemon=True)
+    caplog.set_level(logging.INFO)
+    thread.start()
+    try:
+        while not server.started:
+            time.sleep(0.05)
+        r = httpx.get(
+            f"http://127.0.0.1:{port}/notes/00000000-0000-0000-0000-000000000000",
+            headers={"authorization": f"Bearer {secret}"},
+            timeout=10,
+        )
+    finally:
+        server.should_exit = True
+        thread.join(timeout=20)
+        app.state.engine.dispose()
+    assert r.status_code == 500
+    assert "incident" in r.json()["issue"][0]["diagnostics"]
+    assert "HX100234" not in caplog.text
+    assert "Traceback" not in caplog.text
+    assert "RuntimeError" in caplog.text  # the type and route are logged, nothing more

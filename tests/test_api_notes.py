@@ -7,7 +7,7 @@ from typing import Any
 
 import pytest
 
-from tests.conftest import EXAMPLES, INVALID, VALID, Api, routine
+from tests.conftest import EXAMPLES, INVALID, NOW, VALID, Api, routine
 from tests.fhir_r4_check import r4_problems
 
 ROUTINE = (EXAMPLES / "notes" / "right-routine.json").read_text()
@@ -264,3 +264,144 @@ def test_openapi_documents_bodies_and_errors(api: Api) -> None:
     assert "right-routine" in post_notes["requestBody"]["content"]["application/json"]["examples"]
     assert {"201", "200", "409", "422", "401", "403"} <= set(post_notes["responses"])
     assert "Note" in spec["components"]["schemas"]
+
+
+def amend(
+    api: Api,
+    key: str,
+    note: dict[str, Any],
+    reason: str | None = "fix",
+    if_match: str | None = None,
+    **extra: Any,
+) -> Any:
+    body: dict[str, Any] = {"note": note, **extra}
+    if reason is not None:
+        body["reason"] = reason
+    headers = api.headers("clinician", **({"if-match": if_match} if if_match else {}))
+    return api.client.put(f"/notes/{key}", content=json.dumps(body), headers=headers)
+
+
+def test_a_retried_amendment_answers_the_stored_version(api: Api) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    changed = routine()
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    first = amend(api, key, changed, if_match='W/"1"')
+    again = amend(api, key, changed, if_match='W/"1"')  # the client never saw the answer
+    assert (first.status_code, again.status_code) == (200, 200)
+    assert again.json()["version"] == 2
+
+
+def test_a_retried_void_answers_the_void(api: Api) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    url, body = f"/notes/{key}/void", json.dumps({"reason": "wrong eye"})
+    h = api.headers("clinician", **{"if-match": 'W/"1"'})
+    assert api.client.post(url, content=body, headers=h).status_code == 200
+    again = api.client.post(url, content=body, headers=h)
+    assert again.status_code == 200
+    assert again.json()["status"] == "void"
+
+
+def test_an_amendment_withdraws_what_it_drops(api: Api) -> None:
+    note = json.loads((EXAMPLES / "notes" / "left-glaucoma-no-prophylaxis.json").read_text())
+    key = post(api, note).json()["id"]
+    note["before"]["risk_factors"] = {}
+    note["plan"]["take_home"] = []
+    r = amend(api, key, note, reason="glaucoma was entered on the wrong patient")
+    assert r.status_code == 200
+    resources = {
+        e["resource"]["resourceType"] + ":" + e["resource"]["code"].get("text", "")
+        if "code" in e["resource"]
+        else e["resource"]["resourceType"]: e
+        for e in r.json()["bundle"]["entry"]
+    }
+    next_day = resources["ServiceRequest:Next-day IOP check"]
+    assert next_day["resource"]["status"] == "revoked"
+    assert next_day["request"]["method"] == "PUT"
+    dropped = [
+        e
+        for e in r.json()["bundle"]["entry"]
+        if e["resource"]["resourceType"] == "MedicationRequest"
+    ]
+    assert [e["resource"]["status"] for e in dropped] == ["cancelled"]
+    assert r4_problems(r.json()["bundle"]) == []
+
+
+def test_draft_then_final_is_final_not_amended(api: Api) -> None:
+    draft = routine()
+    draft["status"] = "draft"
+    key = post(api, draft).json()["id"]
+    signed = amend(api, key, routine(), reason=None)  # no reason needed to sign a draft
+    assert signed.status_code == 200
+    observations = [
+        e["resource"]
+        for e in signed.json()["bundle"]["entry"]
+        if e["resource"]["resourceType"] == "Observation"
+    ]
+    assert {o["status"] for o in observations} == {"final"}
+    back = routine()
+    back["status"] = "draft"
+    refused = amend(api, key, back, reason="undo")
+    assert refused.status_code == 422
+    assert refused.json()["issue"][0]["expression"] == ["note.status"]
+
+
+@pytest.mark.parametrize(
+    ("extra", "reason", "location"),
+    [({"colour": "red"}, "fix", "colour"), ({}, "x" * 501, "reason"), ({}, "two\nlines", "reason")],
+)
+def test_amend_body_is_checked_as_documented(
+    api: Api, extra: dict[str, Any], reason: str, location: str
+) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    changed = routine()
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    r = amend(api, key, changed, reason=reason, **extra)
+    assert r.status_code == 422
+    assert r.json()["issue"][0]["expression"] == [location]
+
+
+def test_a_note_moved_to_another_patient_leaves_the_first(api: Api) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    moved = routine()
+    moved["patient"]["value"] = "HX777777"
+    assert amend(api, key, moved, reason="wrong patient chosen").status_code == 200
+    system = moved["patient"]["system"]
+    h = api.headers("analyst")
+    old = api.client.get("/notes", params={"patient": f"{system}|HX100234"}, headers=h).json()
+    new = api.client.get("/notes", params={"patient": f"{system}|HX777777"}, headers=h).json()
+    assert (old["total"], new["total"]) == (0, 1)
+
+
+def test_upper_case_ids_name_the_same_note(api: Api) -> None:
+    key = post(api, ROUTINE).json()["id"]
+    assert (
+        api.client.get(f"/notes/{key.upper()}", headers=api.headers("analyst")).status_code == 200
+    )
+    changed = routine()
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    assert amend(api, key.upper(), changed).status_code == 200
+
+
+def test_naive_dates_in_a_listing_are_refused(api: Api) -> None:
+    r = api.client.get(
+        "/notes",
+        params={"patient": "a|b", "from": "2026-11-01T00:00:00"},
+        headers=api.headers("analyst"),
+    )
+    assert r.status_code == 422
+
+
+def test_a_revoked_token_is_401(api: Api) -> None:
+    from sqlmodel import Session
+
+    from service.store import repository
+
+    engine = api.client.app.state.engine  # type: ignore[attr-defined]
+    with Session(engine) as session:
+        token, row = repository.new_token(session, "submitter", "leaving", NOW)
+        session.commit()
+        assert row.id is not None
+        repository.revoke_token(session, row.id, NOW)
+        session.commit()
+    r = api.client.get("/notes/x", headers={"authorization": f"Bearer {token}"})
+    assert r.status_code == 401

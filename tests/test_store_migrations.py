@@ -23,11 +23,12 @@ def test_upgrade_from_empty_gives_the_models_tables(database_url: str) -> None:
             "fhir_resource",
             "api_token",
             "audit_entry",
+            "outbox_entry",
         }
         with engine.connect() as connection:
             assert (
                 connection.execute(text("select version_num from alembic_version")).scalar()
-                == "0001"
+                == "0002"
             )
             diff = compare_metadata(MigrationContext.configure(connection), SQLModel.metadata)
         assert diff == []

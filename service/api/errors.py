@@ -100,6 +100,7 @@ async def _http_error(request: Request, exc: Exception) -> Response:
 
 
 async def _unexpected(request: Request, exc: Exception) -> Response:
+    # Starlette re-raises after this answer; service.api.guard.Guard stops it there.
     incident, body = incident_outcome()
     # Route and exception type only: a payload or its values never reach the log.
     log.error(

@@ -7,7 +7,7 @@ from datetime import UTC, date, datetime, time, timedelta
 from typing import Annotated, Any
 
 import orjson
-from fastapi import APIRouter, Depends, Query, Request
+from fastapi import APIRouter, Depends, Path, Query, Request
 from fastapi.responses import Response
 from sqlmodel import Session
 
@@ -239,7 +239,11 @@ def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Resp
     "/{kind}/{resource_id}/_history/{version}", responses=responses(200, 404, media=FHIR_JSON)
 )
 def version_read(
-    request: Request, kind: str, resource_id: str, version: int, _who: Reader
+    request: Request,
+    kind: str,
+    resource_id: str,
+    version: Annotated[int, Path(ge=1, le=2**31 - 1)],
+    _who: Reader,
 ) -> Response:
     """One version of a resource (vread)."""
     with Session(request.app.state.engine) as session:

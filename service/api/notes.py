@@ -2,19 +2,23 @@
 
 from __future__ import annotations
 
-from datetime import datetime
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Depends, Header, Query, Request
+from fastapi import APIRouter, Depends, Header, Path, Query, Request
 from fastapi.responses import Response
+from pydantic import AwareDatetime
+from sqlmodel import Session
 from starlette.concurrency import run_in_threadpool
 
 from service.api.auth import CHECK, READ, WRITE, allow
 from service.api.docs import AMEND_BODY, CHECK_BODY, NOTE_BODY, VOID_BODY, responses
 from service.api.media import json_body, json_response
-from service.errors import InputError
+from service.delivery import outcome_text
+from service.errors import InputError, NotFoundError
 from service.findings import Finding, Severity
-from service.notes import NoteService, Principal, StoredNote
+from service.notes import NoteService, Principal, StoredNote, known_key
+from service.store import outbox
+from service.store import repository as repo
 
 router = APIRouter(prefix="/notes", tags=["notes"])
 
@@ -92,8 +96,8 @@ def list_notes(
     _who: Annotated[Principal, Depends(allow(*READ))],
     patient: Annotated[str, Query(description="system|value", pattern=r"^[^|]+\|[^|]+$")],
     eye: Annotated[str | None, Query(pattern="^(right|left)$")] = None,
-    from_: Annotated[datetime | None, Query(alias="from")] = None,
-    to: datetime | None = None,
+    from_: Annotated[AwareDatetime | None, Query(alias="from")] = None,
+    to: AwareDatetime | None = None,
     page: Annotated[int, Query(ge=1, le=100_000)] = 1,
     count: Annotated[int, Query(ge=1, le=200)] = 50,
 ) -> Response:
@@ -130,11 +134,43 @@ def list_versions(
 
 @router.get("/{note_id}/versions/{version}", responses=responses(200, 404))
 def read_version(
-    request: Request, note_id: str, version: int, _who: Annotated[Principal, Depends(allow(*READ))]
+    request: Request,
+    note_id: str,
+    version: Annotated[int, Path(ge=1, le=2**31 - 1)],
+    _who: Annotated[Principal, Depends(allow(*READ))],
 ) -> Response:
     """One version of a note."""
     stored = _service(request).get(note_id, version)
     return json_response(stored.view(), headers=_etag(stored))
+
+
+@router.get("/{note_id}/delivery", responses=responses(200, 404))
+def delivery_state(
+    request: Request, note_id: str, _who: Annotated[Principal, Depends(allow(*READ))]
+) -> Response:
+    """Where each version's Bundle stands on its way to the hospital's FHIR server."""
+    key = known_key(note_id)
+    with Session(request.app.state.engine) as session:
+        entries = outbox.for_note(session, key)
+        if not entries and repo.latest_version(session, key) is None:
+            raise NotFoundError("no note with this id")
+        body = [
+            {
+                "version": e.version,
+                "state": e.state,
+                "attempts": e.attempts,
+                "last_status": e.last_status,
+                "receiver_answer": outcome_text(e.last_error),
+                "next_attempt_at": repo.from_db(e.next_attempt_at).isoformat(),
+                "delivered_at": repo.from_db(e.delivered_at).isoformat()
+                if e.delivered_at
+                else None,
+            }
+            for e in entries
+        ]
+    return json_response(
+        {"id": key, "forwarding": request.app.state.notes.forward, "deliveries": body}
+    )
 
 
 @router.put("/{note_id}", openapi_extra=AMEND_BODY, responses=responses(200, 404, 409, 412, 422))

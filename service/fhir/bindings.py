@@ -131,14 +131,34 @@ def _values(node: Any, path: list[str]) -> Iterator[tuple[str, Any]]:
             yield step + rest, value
 
 
+# REQUIRED's rows that apply to each resource type, in REQUIRED's order, with their paths
+# split: every emitted resource is checked, and sorting through all rows and splitting the
+# same paths again each time cost more than the checks themselves.
+_RULES: dict[Any, tuple[tuple[list[str], frozenset[str], str], ...]] = {}
+
+
+def _rules(kind: Any) -> tuple[tuple[list[str], frozenset[str], str], ...]:
+    # A hostile payload's resourceType may be anything, even unhashable: cache names only.
+    rules = _RULES.get(kind) if isinstance(kind, str) else None
+    if rules is None:
+        rules = tuple(
+            (path.split("."), allowed, value_set)
+            for (owner, path), (allowed, value_set) in REQUIRED.items()
+            if owner in (kind, "*")
+        )
+        if isinstance(kind, str) and len(_RULES) < 256:  # analysts may send any type name
+            _RULES[kind] = rules
+    return rules
+
+
 def binding_problems(resource: dict[str, Any]) -> list[tuple[str, str, str]]:
     """(location, value, value set) for every code outside its required value set."""
     kind = resource.get("resourceType")
     problems: list[tuple[str, str, str]] = []
-    for (owner, path), (allowed, value_set) in REQUIRED.items():
-        if owner not in (kind, "*"):
+    for path, allowed, value_set in _rules(kind):
+        if path[0] not in resource:  # most rows name an element this resource lacks
             continue
-        for where, value in _values(resource, path.split(".")):
+        for where, value in _values(resource, path):
             # A non-string (an object, a number) is never a code: report it, don't hash it.
             if not isinstance(value, str) or value not in allowed:
                 problems.append((f"{kind}{where}", str(value), value_set))

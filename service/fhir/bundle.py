@@ -14,7 +14,7 @@ from service.derive import Derived
 from service.errors import EmissionError
 from service.fhir.bindings import binding_problems
 from service.fhir.codes import RESOURCE_KEY
-from service.fhir.common import Context, Entry, stable_uuid
+from service.fhir.common import Context, Entry, Version, identifier_query, stable_uuid
 from service.fhir.observations import observations
 from service.fhir.procedure import procedure
 from service.fhir.requests import administrations, medication_request, service_request
@@ -22,10 +22,10 @@ from service.schedule import DueItem
 
 
 def entries(
-    note: Note, derived: Derived, due: list[DueItem], version: int = 1, voided: bool = False
+    note: Note, derived: Derived, due: list[DueItem], version: Version | None = None
 ) -> list[Entry]:
     """Every resource for the note version, the Procedure first."""
-    ctx = Context(note, version, voided)
+    ctx = Context(note, version)
     proc = procedure(ctx, derived, due)
     out = [proc, *observations(ctx, proc, derived)]
     out += [service_request(ctx, proc, item) for item in due]
@@ -44,13 +44,40 @@ def _request(entry: Entry, version: int) -> dict[str, str]:
     return {"method": "PUT", "url": f"{kind}?{entry.if_none_exist}"}
 
 
+# What a resource that an amendment no longer has becomes at the receiver.
+_WITHDRAWN = {
+    "ServiceRequest": "revoked",
+    "MedicationRequest": "cancelled",
+    "Observation": "entered-in-error",
+    "MedicationAdministration": "entered-in-error",
+    "Procedure": "entered-in-error",
+}
+
+
+def withdrawn(previous: dict[str, Any], kept: set[str]) -> list[Entry]:
+    """The previous version's resources this version dropped, each with a status that says
+    so: an amendment that removes a next-day check must not leave it active elsewhere."""
+    out = []
+    for entry in previous.get("entry", []):
+        key = entry["fullUrl"].removeprefix("urn:uuid:")
+        if key in kept:
+            continue
+        resource = dict(entry["resource"])
+        resource["status"] = _WITHDRAWN[resource["resourceType"]]
+        out.append(Entry(key, resource, identifier_query(RESOURCE_KEY, key)))
+    return out
+
+
 def bundle(
-    note: Note, derived: Derived, due: list[DueItem], version: int = 1, voided: bool = False
+    note: Note, derived: Derived, due: list[DueItem], version: Version | None = None
 ) -> dict[str, Any]:
     """The transaction Bundle; raises EmissionError rather than emit a bad code."""
     # No id or meta here: a receiver assigns its own, and a conditional update must not
     # carry an id that may differ from the matched resource's. The read API adds both.
-    items = entries(note, derived, due, version, voided)
+    version = version or Version()
+    items = entries(note, derived, due, version)
+    if version.previous is not None:
+        items += withdrawn(version.previous, {e.key for e in items})
     result: dict[str, Any] = {
         "resourceType": "Bundle",
         "identifier": {"system": RESOURCE_KEY, "value": stable_uuid(note, "bundle")},
@@ -59,7 +86,7 @@ def bundle(
             {
                 "fullUrl": e.full_url,
                 "resource": e.resource,
-                "request": _request(e, version),
+                "request": _request(e, version.number),
             }
             for e in items
         ],

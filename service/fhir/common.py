@@ -6,10 +6,12 @@ are kept for validation at the edges and in tests).
 
 from __future__ import annotations
 
+import hashlib
 import uuid
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
+from urllib.parse import quote
 
 from schemas.note import Identifier, Note
 from service.fhir.codes import CANONICAL, RESOURCE_KEY
@@ -17,9 +19,21 @@ from service.fhir.codes import CANONICAL, RESOURCE_KEY
 _NAMESPACE = uuid.uuid5(uuid.NAMESPACE_URL, CANONICAL)
 
 
+_NAMESPACE_BYTES = _NAMESPACE.bytes
+
+
 def stable_uuid(note: Note, role: str) -> str:
-    """The same UUID for the same note and role, every time, on every machine."""
-    return str(uuid.uuid5(_NAMESPACE, f"{note.note_id.system}|{note.note_id.value}|{role}"))
+    """The same UUID for the same note and role, every time, on every machine.
+
+    uuid.uuid5 written out (RFC 4122 section 4.3: SHA-1 of namespace and name, version 5,
+    RFC variant), without its UUID object: a Bundle needs about twenty of these.
+    """
+    name = f"{note.note_id.system}|{note.note_id.value}|{role}".encode()
+    raw = bytearray(hashlib.sha1(_NAMESPACE_BYTES + name, usedforsecurity=False).digest()[:16])
+    raw[6] = (raw[6] & 0x0F) | 0x50
+    raw[8] = (raw[8] & 0x3F) | 0x80
+    h = raw.hex()
+    return f"{h[:8]}-{h[8:12]}-{h[12:16]}-{h[16:20]}-{h[20:]}"
 
 
 def search_escape(value: str) -> str:
@@ -30,8 +44,14 @@ def search_escape(value: str) -> str:
 
 
 def identifier_query(system: str, value: str) -> str:
-    """An ``identifier=system|value`` search, as ifNoneExist takes it."""
-    return f"identifier={search_escape(system)}|{search_escape(value)}"
+    """An ``identifier=system|value`` search, as ifNoneExist takes it.
+
+    Each part is FHIR-escaped, then percent-encoded: an identifier holding ``&``, ``#`` or
+    ``+`` must not add search parameters of its own to the receiver's duplicate check.
+    """
+    system_part = quote(search_escape(system), safe="")
+    value_part = quote(search_escape(value), safe="")
+    return f"identifier={system_part}|{value_part}"
 
 
 def fhir_identifier(identifier: Identifier) -> dict[str, Any]:
@@ -72,15 +92,27 @@ def keyed(note: Note, role: str, resource: dict[str, Any]) -> Entry:
     return Entry(key, ordered, identifier_query(RESOURCE_KEY, key))
 
 
+@dataclass(frozen=True, slots=True)
+class Version:
+    """Which version of a note is emitted, and what came before it."""
+
+    number: int = 1
+    voided: bool = False
+    # An earlier version was signed: this one amends what the receiver already holds.
+    amends_final: bool = False
+    # The Bundle of the version before, to withdraw what this one no longer has.
+    previous: dict[str, Any] | None = None
+
+
 class Context:
     """What every resource of one note version shares: references, version and state."""
 
-    def __init__(self, note: Note, version: int = 1, voided: bool = False) -> None:
+    def __init__(self, note: Note, version: Version | None = None) -> None:
+        version = version or Version()
         self.note = note
-        self.version = version
-        self.voided = voided
-        # A later version of a signed note amends what the receiver already holds.
-        self.amended = version > 1 and note.status == "final"
+        self.version = version.number
+        self.voided = version.voided
+        self.amended = version.amends_final and note.status == "final"
         self.subject: dict[str, Any] = {"identifier": fhir_identifier(note.patient)}
         self.encounter: dict[str, Any] | None = (
             {"identifier": fhir_identifier(note.encounter)} if note.encounter else None

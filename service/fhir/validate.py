@@ -12,6 +12,7 @@ from collections import Counter
 from typing import Any
 
 from fhir.resources.R4B import get_fhir_model_class
+from fhir.resources.R4B.resource import Resource
 from pydantic import ValidationError
 
 from service.fhir.bindings import binding_problems
@@ -40,7 +41,9 @@ def _error(code: str, location: str, message: str, rule: str, issue_type: str) -
 def _structure(kind: str, data: dict[str, Any]) -> list[Finding]:
     try:
         model = get_fhir_model_class(kind)
-    except KeyError:
+        if not issubclass(model, Resource):  # a data type such as Coding is no resource
+            raise KeyError(kind)
+    except (KeyError, ValueError):
         return [
             _error(
                 "fhir-unknown-type",

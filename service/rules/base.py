@@ -87,13 +87,18 @@ def outside_limit(location: str, value: float | None, limit: Range, what: str) -
     return error(
         "out-of-range",
         location,
-        f"{what} of {value:g} {spoken_unit(limit.unit)} is outside {limit.describe()}",
+        f"{what} of {_number(value)} {spoken_unit(limit.unit)} is outside {limit.describe()}",
         f"{what} must be {limit.describe()}",
         value=value,
         allowed=limit.describe(),
         source=limit.source,
         issue_type="value",
     )
+
+
+def _number(value: float) -> str:
+    """A number for a message; an int of any size prints whole (float() would overflow)."""
+    return str(value) if isinstance(value, int) else f"{value:g}"
 
 
 def above(value: float, threshold: Number) -> bool:

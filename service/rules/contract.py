@@ -83,6 +83,13 @@ def _allowed(error: ErrorDetails) -> str | None:
     if "min_length" in ctx or "max_length" in ctx:
         low, high = ctx.get("min_length"), ctx.get("max_length")
         return f"length {low if low is not None else 0} to {high if high is not None else 'any'}"
+    bounds = [
+        f"{op} {ctx[key]}"
+        for key, op in (("ge", ">="), ("gt", ">"), ("le", "<="), ("lt", "<"))
+        if key in ctx
+    ]
+    if bounds:
+        return " and ".join(bounds)
     if "pattern" in ctx:
         return "printable text (identifiers and URIs without spaces)"
     return _ALLOWED.get(kind)
@@ -108,7 +115,9 @@ def finding_from_error(error: ErrorDetails) -> Finding:
         code, issue_type, rule = "invalid-value", "invalid", error["msg"]
     where = location or "the payload"
     value = (
-        None if kind in ("missing", "json_invalid") else show_value(location, error.get("input"))
+        None
+        if kind in ("missing", "json_invalid", "extra_forbidden")
+        else show_value(location, error.get("input"))
     )
     return Finding(
         severity=Severity.ERROR,

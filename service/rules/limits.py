@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Iterable, Iterator
-from datetime import timedelta
+from datetime import UTC, date, datetime, timedelta
 
 from schemas.note import Note, TimedIopReading, VisualAcuity
 from service.acuity import AcuityError, to_logmar
@@ -134,8 +134,49 @@ def acuities(note: Note, ctx: Context) -> Iterator[Finding]:
     yield from _acuity("result.visual_acuity_after", note.result.visual_acuity_after, ctx)
 
 
+# Nd:YAG capsulotomy entered practice around 1980 (from memory); an earlier time is an entry
+# error, and times near year 1 would overflow time-zone arithmetic further on.
+EARLIEST = datetime(1980, 1, 1, tzinfo=UTC)
+EARLIEST_SURGERY = date(1940, 1, 1)  # before the first intraocular lenses (from memory)
+
+
+def too_early(note: Note) -> Iterator[Finding]:
+    """Every time and date no earlier than the procedure could have been."""
+    stamped = [
+        ("started_at", note.started_at),
+        ("ended_at", note.ended_at),
+        ("consent.recorded_at", note.consent.recorded_at),
+        ("before.iop.measured_at", note.before.iop.measured_at),
+    ]
+    stamped += [
+        (f"result.iop_after[{i}].measured_at", r.measured_at)
+        for i, r in enumerate(note.result.iop_after)
+    ]
+    for where, moment in stamped:
+        if moment is not None and moment < EARLIEST:
+            yield error(
+                "time-too-early",
+                where,
+                f"{where} lies before 1980",
+                "Nd:YAG capsulotomy records start in 1980 (from memory)",
+                value=moment.isoformat(),
+                allowed=">= 1980-01-01",
+            )
+    surgery = note.before.cataract_surgery_date
+    if surgery is not None and surgery < EARLIEST_SURGERY:
+        yield error(
+            "time-too-early",
+            "before.cataract_surgery_date",
+            "the cataract operation is dated before 1940",
+            "intraocular lenses date from 1949 (from memory)",
+            value=surgery.isoformat(),
+            allowed=">= 1940-01-01",
+        )
+
+
 def times(note: Note, ctx: Context) -> Iterator[Finding]:
-    """Times must be in order and not in the future."""
+    """Times must be in order, not too early and not in the future."""
+    yield from too_early(note)
     tolerance = timedelta(minutes=ctx.policy.limits.future_tolerance_minutes.value)
     latest_allowed = ctx.now + tolerance
     stamped = [("started_at", note.started_at), ("ended_at", note.ended_at)]

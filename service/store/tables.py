@@ -93,3 +93,29 @@ class AuditEntry(SQLModel, table=True):
     version: int | None = None
     remote: str | None = Field(default=None, max_length=64)
     outcome: str = Field(max_length=20)
+
+
+class OutboxEntry(SQLModel, table=True):
+    """A stored note version's Bundle waiting for (or done with) delivery to the receiver.
+
+    Written in the same transaction as the note version, so neither exists without the other.
+    """
+
+    __tablename__ = "outbox_entry"
+    __table_args__ = (
+        UniqueConstraint("note_key", "version", name="uq_outbox_note_version"),
+        Index("ix_outbox_due", "state", "next_attempt_at"),
+    )
+
+    id: int | None = Field(default=None, primary_key=True)
+    note_key: str = Field(max_length=36)
+    version: int
+    state: str = Field(max_length=10)  # pending | delivering | delivered | failed
+    attempts: int = 0
+    next_attempt_at: datetime
+    claimed_by: str | None = Field(default=None, max_length=64)
+    claimed_until: datetime | None = None
+    last_status: int | None = None
+    last_error: str | None = Field(default=None, sa_column=Column(Text, nullable=True))
+    created_at: datetime
+    delivered_at: datetime | None = None

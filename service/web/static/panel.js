@@ -1,0 +1,114 @@
+// The side panel: what capnote worked out from the note, and the follow-up it would book.
+
+import { formatDay, formatMoment, formatCalendarDay } from "./time.js";
+
+export function num(value, digits = 1) {
+  if (value === null || value === undefined || Number.isNaN(value)) return "–";
+  return new Intl.NumberFormat("en-GB", { maximumFractionDigits: digits }).format(value);
+}
+
+function signed(value, digits = 1) {
+  return `${value > 0 ? "+" : value < 0 ? "−" : "±"}${num(Math.abs(value), digits)}`;
+}
+
+function el(tag, className, ...children) {
+  const node = document.createElement(tag);
+  if (className) node.className = className;
+  for (const c of children) if (c !== null && c !== undefined) node.append(c);
+  return node;
+}
+
+function item(key, value, note, name) {
+  const div = el("div", null, el("dt", null, key), el("dd", null, value, note ? el("span", "sub", note) : null));
+  if (name) div.dataset.derived = name;
+  return div;
+}
+
+const GRADE_WORDS = { none: "none", mild: "mild", moderate: "moderate", severe: "severe" };
+
+/** Derived values as a list of [name, term, value, note] rows (also used by the print view). */
+export function derivedRows(d) {
+  if (!d) return [];
+  const rows = [];
+  rows.push(["total-energy", "Total energy", `${num(d.total_energy_mj, 2)} mJ in ${d.total_pulses} pulses`,
+    `mean ${num(d.mean_pulse_energy_mj, 2)} mJ, highest ${num(d.highest_pulse_energy_mj, 2)} mJ per pulse; band ${d.energy_band.label}`]);
+  const c = d.cumulative;
+  rows.push(["cumulative", "This eye so far", `${num(c.cumulative_energy_mj, 2)} mJ over ${c.session_number} ${c.session_number === 1 ? "session" : "sessions"}`,
+    c.days_since_last_session === null ? "no earlier session stored" : `${c.days_since_last_session} days since the last session`]);
+  const iop = d.iop;
+  const h = iop.highest;
+  rows.push(["spike", "IOP after the laser", h ? `highest change ${signed(h.change_mmhg)} mmHg` : "no reading after the laser yet",
+    h ? `spike grade: ${GRADE_WORDS[iop.spike_grade] || iop.spike_grade}${h.minutes_after !== null ? `, ${num(h.minutes_after, 0)} min after the laser` : ""}` : null]);
+  if (d.opening) {
+    rows.push(["opening", "Opening", `${num(d.opening.area_mm2, 1)} mm²`,
+      `widest ${num(d.opening.largest_mm, 2)} mm, ${num(d.opening.ratio_to_optic * 100, 0)} % of the optic diameter`]);
+  }
+  const a = d.acuity;
+  if (a.before_logmar !== null || a.after_logmar !== null) {
+    rows.push(["acuity", "Visual acuity (logMAR)", `${num(a.before_logmar, 2)} before, ${num(a.after_logmar, 2)} after`,
+      a.change_logmar === null ? null : `change ${signed(a.change_logmar, 2)} (negative is better)`]);
+  }
+  if (d.days_since_cataract_surgery !== null && d.days_since_cataract_surgery !== undefined) {
+    rows.push(["since-surgery", "Since cataract surgery", `${d.days_since_cataract_surgery} days`, null]);
+  }
+  const f = d.focal_spot;
+  rows.push(["fluence", "Focal spot (idealised)", `about ${new Intl.NumberFormat("en-GB", { maximumSignificantDigits: 3 }).format(f.peak_fluence_j_cm2)} J/cm² peak fluence`,
+    `idealised diffraction-limited estimate, not a measurement: spot ${num(f.airy_diameter_um, 1)} µm across at ${num(f.cone_angle_deg, 0)}° cone angle${f.cone_angle_assumed ? " (assumed)" : ""}`]);
+  rows.push(["risk", "Risk level", d.risk.level === "raised" ? "raised" : "routine",
+    d.risk.reasons.length ? d.risk.reasons.map((r) => r.text).join("; ") : "no raised-risk reason"]);
+  return rows;
+}
+
+export function showDerived(dl, derived) {
+  dl.replaceChildren();
+  const rows = derivedRows(derived);
+  if (!rows.length) {
+    dl.append(item("Nothing yet", "Values appear once the note has no errors."));
+    return;
+  }
+  for (const [name, term, value, note] of rows) {
+    const row = item(term, value, note, name);
+    if (name === "risk" && derived.risk.level === "raised") row.classList.add("raised");
+    if (name === "spike" && ["moderate", "severe"].includes(derived.iop.spike_grade)) row.classList.add("raised");
+    dl.append(row);
+  }
+}
+
+/** One due item in words: [title, when, extra lines]. */
+export function dueWords(d, zone) {
+  const fmt = d.all_day ? (iso) => formatDay(iso, zone) : (iso) => formatMoment(iso, zone);
+  const lines = [];
+  lines.push(`Window ${fmt(d.earliest)} to ${fmt(d.latest)}`);
+  if (d.moved_from) {
+    const passed = (d.passed_over || []).map((p) => `${formatCalendarDay(p.day)} (${p.reason})`);
+    lines.push(passed.length
+      ? `Moved from ${fmt(d.moved_from)}: the clinic is closed on ${passed.join(", ")}`
+      : `Moved earlier from ${fmt(d.moved_from)}: the clinic is closed then`);
+  }
+  if (d.flag) lines.push(`Book by hand: ${d.flag}`);
+  if (d.done_by_reading !== null && d.done_by_reading !== undefined) {
+    lines.push(`Already done: IOP reading ${d.done_by_reading + 1} after the laser covers it`);
+  }
+  if (d.reasons && d.reasons.length) lines.push(`Why: ${d.reasons.join("; ")}`);
+  return { title: d.title, when: fmt(d.target), lines, source: d.source };
+}
+
+export function showDue(list, due, zone) {
+  list.replaceChildren();
+  if (!due || !due.length) {
+    list.append(el("li", "muted", "Nothing to book until the note can be read."));
+    return;
+  }
+  for (const d of due) {
+    const w = dueWords(d, zone);
+    const li = el("li", `due${d.moved_from ? " moved" : ""}${d.flag ? " flagged" : ""}`);
+    li.dataset.kind = d.kind;
+    li.append(el("p", "due-title", el("strong", null, w.title)), el("p", "due-when", w.when));
+    for (const line of w.lines) {
+      const p = el("p", line.startsWith("Moved") ? "due-moved" : "due-line", line);
+      li.append(p);
+    }
+    if (w.source) li.append(el("p", "due-source", `Source: ${w.source}`));
+    list.append(li);
+  }
+}

@@ -1,0 +1,153 @@
+// The one-page printed summary: what was done, what capnote found and what to book, with the
+// caution. Built from the note in the form and the last answer of the server.
+
+import { fromInstant, formatCalendarDay, formatMoment } from "./time.js";
+import { derivedRows, dueWords, num } from "./panel.js";
+
+const WORDS = {
+  applanation: "applanation", rebound: "rebound", "non-contact": "non-contact", other: "other",
+  "posterior-offset": "posterior offset", "manual-behind-capsule": "focused by hand behind the capsule",
+  complete: "complete opening", partial: "partial opening", failed: "no opening made",
+  bag: "in the bag", sulcus: "in the sulcus", before: "before", after: "after", both: "before and after",
+  "iol-pit": "IOL pits or marks", "iris-bleeding": "iris bleeding", "iop-spike": "IOP spike",
+  "vitreous-in-anterior-chamber": "vitreous in the anterior chamber",
+};
+const RISKS = {
+  high_myopia: "high myopia", uveitis: "uveitis", diabetic_macular_oedema: "diabetic macular oedema",
+  retinal_detachment_this_eye: "RD before, this eye", retinal_detachment_fellow_eye: "RD, other eye",
+  lattice_degeneration: "lattice degeneration", vitreous_loss_at_cataract_surgery: "vitreous loss at cataract surgery",
+};
+
+function el(tag, className, ...children) {
+  const n = document.createElement(tag);
+  if (className) n.className = className;
+  for (const c of children) if (c !== null && c !== undefined) n.append(c);
+  return n;
+}
+
+function dl(pairs) {
+  const list = el("dl", "p-dl");
+  for (const [k, v, note] of pairs) {
+    if (v === null || v === undefined || v === "") continue;
+    list.append(el("div", null, el("dt", null, k),
+      el("dd", null, el("b", null, String(v)), note ? el("span", "p-note", ` ${note}`) : null)));
+  }
+  return list;
+}
+
+const NOTATIONS = { "snellen-metric": "Snellen, metres", "snellen-imperial": "Snellen, feet",
+  decimal: "decimal", logmar: "logMAR", qualitative: "qualitative" };
+
+function block(title, ...content) {
+  return el("section", "p-block", el("h2", null, title), ...content);
+}
+
+const w = (code) => (code === undefined || code === null ? null : WORDS[code] || code);
+const yes = (v) => (v === true ? "yes" : v === false ? "no" : null);
+
+export function renderPrint(section, { note, view, zone, stored, svg, caution }) {
+  const time = (iso) => (iso ? fromInstant(iso, zone)?.time : null);
+  const start = note.started_at ? fromInstant(note.started_at, zone) : null;
+  const b = note.before || {};
+  const l = note.laser || {};
+  const r = note.result || {};
+  const p = note.plan || {};
+  const d = view && view.derived;
+  const va = (x) => (x ? `${x.value || "?"} (${NOTATIONS[x.notation] || "notation?"}${x.correction && x.correction !== "best-corrected" ? `, ${x.correction}` : ""})` : null);
+
+  const head = el("header", "p-head",
+    el("h1", null, "Nd:YAG posterior capsulotomy: session summary"),
+    el("p", null, [
+      stored ? `${stored.status === "final" ? "Signed final" : stored.status === "void" ? "VOID (entered in error)" : "Draft"}, version ${stored.version}, record ${stored.id}` : "Not stored yet: this print is not a record",
+      `printed ${formatMoment(new Date().toISOString(), zone)}`,
+    ].join(" · ")));
+
+  const patient = block("Patient and eye", dl([
+    ["Patient ID", note.patient?.value], ["Visit", note.encounter?.value],
+    ["Eye", note.eye ? `${note.eye} eye` : null],
+    ["Session", start ? `${formatCalendarDay(start.day, true)}, ${start.time}${note.ended_at ? `–${time(note.ended_at)}` : ""}` : null],
+    ["Clinician", note.performer?.name], ["Place", note.location?.name],
+    ["Consent", yes(note.consent?.given)],
+  ]));
+
+  const risks = Object.entries(RISKS).filter(([k]) => b.risk_factors?.[k]).map(([, v]) => v);
+  if (b.risk_factors?.glaucoma && b.risk_factors.glaucoma !== "none") risks.unshift(`glaucoma (${b.risk_factors.glaucoma})`);
+  const before = block("Before the laser", dl([
+    ["IOP", b.iop?.value_mmhg !== undefined ? `${num(b.iop.value_mmhg)} mmHg (${w(b.iop.method) || "method?"})` : null],
+    ["Visual acuity", va(b.visual_acuity)], ["Pupil dilated", yes(b.pupil_dilated)],
+    ["IOL", `${num(b.iol?.optic_diameter_mm ?? 6, 2)} mm optic${b.iol?.optic_material ? `, ${b.iol.optic_material}` : ""}${b.iol?.position ? `, ${w(b.iol.position)}` : ""}`],
+    ["Cataract surgery", b.cataract_surgery_date ? formatCalendarDay(b.cataract_surgery_date, true) : null],
+    ["Risk factors", risks.length ? risks.join(", ") : "none recorded"],
+    ["Axial length", b.risk_factors?.axial_length_mm !== undefined ? `${num(b.risk_factors.axial_length_mm, 2)} mm` : null],
+  ]));
+
+  const series = el("table", "p-table");
+  series.append(el("thead", null, el("tr", null, el("th", null, "Setting"), el("th", null, "Energy per pulse"), el("th", null, "Pulses"), el("th", null, "Energy"))));
+  const body = el("tbody");
+  (l.series || []).forEach((s, i) => {
+    const e = typeof s.energy_mj === "number" && typeof s.pulses === "number" ? `${num(s.energy_mj * s.pulses, 2)} mJ` : "–";
+    body.append(el("tr", null, el("td", null, String(i + 1)), el("td", null, typeof s.energy_mj === "number" ? `${num(s.energy_mj, 2)} mJ` : "–"), el("td", null, typeof s.pulses === "number" ? String(s.pulses) : "–"), el("td", null, e)));
+  });
+  series.append(body);
+  const laser = block("Laser settings", series, dl([
+    ["Total", d ? `${num(d.total_energy_mj, 2)} mJ in ${d.total_pulses} pulses` : null],
+    ["Laser counter", l.reported_total_energy_mj !== undefined ? `${num(l.reported_total_energy_mj, 2)} mJ` : null],
+    ["Wavelength", typeof l.wavelength_nm === "number" ? `${l.wavelength_nm} nm` : null],
+    ["Pattern", l.pattern ? `${l.pattern}${l.pattern_text ? ` (${l.pattern_text})` : ""}` : null],
+    ["Focus", l.focus ? `${w(l.focus.method)}${l.focus.distance_mm !== undefined ? `, ${num(l.focus.distance_mm, 2)} mm` : ""}` : null],
+    ["Contact lens", l.contact_lens?.used === true ? `used${l.contact_lens.cone_angle_deg !== undefined ? `, cone ${num(l.contact_lens.cone_angle_deg, 0)}°` : ""}` : yes(l.contact_lens?.used) === "no" ? "not used" : null],
+  ]));
+
+  const changes = new Map((d?.iop?.changes || []).map((c) => [c.reading_index, c.change_mmhg]));
+  const readings = (r.iop_after || []).map((x, i) => `${time(x.measured_at) || "?"}: ${num(x.value_mmhg)} mmHg${changes.has(i) ? ` (${changes.get(i) >= 0 ? "+" : "−"}${num(Math.abs(changes.get(i)))})` : ""}`);
+  const comps = (r.complications || []).map((c) => `${w(c.kind) || "?"}${c.on_visual_axis === true ? ", on the visual axis" : ""}${c.positions?.length ? `, ${c.positions.length} position(s)` : ""}${c.text ? ` (${c.text})` : ""}`);
+  const result = block("Result", dl([
+    ["Outcome", w(r.outcome)],
+    ["Opening", r.opening?.horizontal_mm !== undefined ? `${num(r.opening.horizontal_mm, 2)}${r.opening.vertical_mm !== undefined ? ` × ${num(r.opening.vertical_mm, 2)}` : ""} mm, ${r.opening.centred === false ? "not centred" : "centred"}` : null],
+    ["IOP after", readings.length ? readings.join("; ") : "no reading"],
+    ["Complications", comps.length ? comps.join("; ") : "none recorded"],
+    ["Visual acuity after", va(r.visual_acuity_after)],
+  ]));
+
+  const drops = (p.prophylaxis || []).map((x) => `${x.agent || "?"}${x.strength_percent !== undefined ? ` ${num(x.strength_percent, 2)} %` : ""} ${w(x.timing) || ""}`.trim());
+  const home = (p.take_home || []).map((x) => `${x.agent || "?"}${x.strength_percent !== undefined ? ` ${num(x.strength_percent, 2)} %` : ""}, ${x.times_per_day ?? "?"}×/day for ${x.days ?? "?"} days`);
+  const plan = block("Plan", dl([
+    ["Drops in clinic", drops.length ? drops.join("; ") : "none"],
+    ["Drops to take home", home.length ? home.join("; ") : "none"],
+    ["RD warning signs explained", yes(p.rd_warning_given)],
+    ["Further session planned", yes(p.further_session_planned)],
+  ]));
+
+  const worked = block("Worked out", dl(derivedRows(d).map(([, k, v, n]) => [k, v, n])));
+  const figure = el("figure", "p-figure");
+  if (svg) {
+    const copy = svg.cloneNode(true);
+    for (const n of copy.querySelectorAll("[id]")) n.removeAttribute("id");
+    copy.removeAttribute("id");
+    copy.removeAttribute("aria-labelledby");
+    copy.setAttribute("aria-hidden", "true");
+    figure.append(copy, el("figcaption", null, "Optic, opening and pits to scale, facing the patient (patient's right on the left)."));
+  }
+
+  const findings = el("ul", "p-list");
+  for (const f of view?.findings || []) {
+    findings.append(el("li", `sev-${f.severity}`, el("strong", null, `${f.severity}: `), f.message,
+      f.source ? el("span", "p-src", ` (source: ${f.source})`) : null));
+  }
+  if (!findings.children.length) findings.append(el("li", null, view ? "No findings." : "Not checked."));
+
+  const due = el("ul", "p-list");
+  for (const item of view?.due || []) {
+    const words = dueWords(item, zone);
+    const moved = words.lines.find((x) => x.startsWith("Moved"));
+    due.append(el("li", null, el("strong", null, `${words.title}: `), words.when,
+      moved ? el("span", "p-note", `. ${moved}.`) : null,
+      item.flag ? el("span", "p-note", `. Book by hand: ${item.flag}.`) : null));
+  }
+  if (!due.children.length) due.append(el("li", null, "Nothing scheduled."));
+
+  section.replaceChildren(head,
+    el("div", "p-grid", patient, before, laser, result, plan, el("div", "p-side", worked, figure)),
+    el("div", "p-bottom", block("Findings", findings), block("Follow-up to book", due)),
+    el("p", "p-caution", caution));
+}

@@ -1,0 +1,177 @@
+"""A receiving FHIR server for delivery tests, run on 127.0.0.1 by the tests themselves.
+
+It implements the parts of FHIR R4 that delivery relies on (Bundle transaction, urn:uuid
+reference resolution, conditional create with ifNoneExist: no match 201, one match 200,
+several 412; conditional update by identifier; all-or-nothing) and can be told to fail:
+answer 500 before doing anything, do the work and answer 500 (the answer is lost), do the
+work and answer too late for the client's timeout, answer 429 with Retry-After, or 400.
+"""
+
+from __future__ import annotations
+
+import copy
+import socket
+import threading
+import time
+import uuid
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+from urllib.parse import unquote
+
+import orjson
+import uvicorn
+from fastapi import FastAPI, Request
+from fastapi.responses import Response
+
+FHIR = "application/fhir+json"
+
+
+class Store:
+    """Resources by type and id, with every version kept."""
+
+    def __init__(self) -> None:
+        self.resources: dict[str, dict[str, list[dict[str, Any]]]] = {}
+        self.lock = threading.Lock()
+        self.faults: list[str] = []
+        self.transactions = 0
+        self.applied = 0
+
+    def matches(self, kind: str, query: str) -> list[str]:
+        """Ids of current resources of kind whose identifier matches identifier=system|value."""
+        term = query.removeprefix("identifier=")
+        system, _, value = term.partition("|")
+        system, value = (unquote(part).replace("\\|", "|") for part in (system, value))
+        found = []
+        for rid, versions in self.resources.get(kind, {}).items():
+            for ident in versions[-1].get("identifier", []):
+                if ident.get("system") == system and ident.get("value") == value:
+                    found.append(rid)
+                    break
+        return found
+
+    def count(self, kind: str) -> int:
+        return len(self.resources.get(kind, {}))
+
+
+def _outcome(status: int, text: str) -> Response:
+    body = {
+        "resourceType": "OperationOutcome",
+        "issue": [{"severity": "error", "code": "processing", "diagnostics": text}],
+    }
+    return Response(orjson.dumps(body), status, media_type=FHIR)
+
+
+def _resolve(node: Any, ids: dict[str, str]) -> Any:
+    if isinstance(node, dict):
+        out = {k: _resolve(v, ids) for k, v in node.items()}
+        ref = out.get("reference")
+        if isinstance(ref, str) and ref in ids:
+            out["reference"] = ids[ref]
+        return out
+    if isinstance(node, list):
+        return [_resolve(v, ids) for v in node]
+    return node
+
+
+def apply(store: Store, bundle: dict[str, Any]) -> tuple[int, dict[str, Any] | str]:
+    """Run a transaction on a copy and keep it only when every entry succeeds."""
+    if bundle.get("resourceType") != "Bundle" or bundle.get("type") != "transaction":
+        return 400, "not a transaction Bundle"
+    staged = copy.deepcopy(store.resources)
+    shadow = Store()
+    shadow.resources = staged
+    ids: dict[str, str] = {}
+    plan: list[tuple[str, str, str, bool]] = []  # kind, id, status, is_new_version
+    for entry in bundle.get("entry", []):
+        request, resource = entry.get("request", {}), entry.get("resource", {})
+        kind = resource.get("resourceType", "")
+        if request.get("method") == "POST":
+            found = shadow.matches(kind, request.get("ifNoneExist", ""))
+            if len(found) > 1:
+                return 412, "several matches for ifNoneExist"
+            if found:
+                ids[entry["fullUrl"]] = f"{kind}/{found[0]}"
+                plan.append((kind, found[0], "200 OK", False))
+                continue
+            rid = uuid.uuid4().hex
+            ids[entry["fullUrl"]] = f"{kind}/{rid}"
+            plan.append((kind, rid, "201 Created", True))
+        elif request.get("method") == "PUT" and "?" in request.get("url", ""):
+            found = shadow.matches(kind, request["url"].split("?", 1)[1])
+            if len(found) > 1:
+                return 412, "several matches for the conditional update"
+            rid = found[0] if found else uuid.uuid4().hex
+            ids[entry["fullUrl"]] = f"{kind}/{rid}"
+            plan.append((kind, rid, "200 OK" if found else "201 Created", True))
+        else:
+            return 400, "unsupported request in transaction"
+    answers = []
+    for entry, (kind, rid, status, write) in zip(bundle.get("entry", []), plan, strict=True):
+        if write:
+            resource = _resolve(entry["resource"], ids)
+            resource["id"] = rid
+            versions = staged.setdefault(kind, {}).setdefault(rid, [])
+            resource["meta"] = {"versionId": str(len(versions) + 1)}
+            versions.append(resource)
+        answers.append({"response": {"status": status, "location": f"{kind}/{rid}"}})
+    store.resources = staged
+    store.applied += 1
+    return 200, {"resourceType": "Bundle", "type": "transaction-response", "entry": answers}
+
+
+def receiver_app(store: Store, late_s: float = 3.0) -> FastAPI:
+    """The receiver's ASGI app; faults are taken one per transaction from store.faults."""
+    app = FastAPI()
+
+    @app.post("/fhir")
+    async def transaction(request: Request) -> Response:
+        if request.headers.get("authorization") != "Bearer receiver-secret":
+            return _outcome(401, "no or wrong token")
+        bundle = orjson.loads(await request.body())
+        with store.lock:
+            store.transactions += 1
+            fault = store.faults.pop(0) if store.faults else ""
+            if fault == "500-before":
+                return _outcome(500, "injected failure before processing")
+            if fault == "429":
+                response = _outcome(429, "slow down")
+                response.headers["Retry-After"] = "1"
+                return response
+            if fault == "400":
+                return _outcome(400, "injected refusal")
+            status, body = apply(store, bundle)
+        if fault == "500-after":
+            return _outcome(500, "injected failure after processing")
+        if fault == "late":
+            time.sleep(late_s)  # past the client's timeout: the work is done, the answer lost
+        if isinstance(body, str):
+            return _outcome(status, body)
+        return Response(orjson.dumps(body), status, media_type=FHIR)
+
+    return app
+
+
+@contextmanager
+def running(store: Store, late_s: float = 3.0) -> Iterator[str]:
+    """Serve the receiver on a free port of 127.0.0.1; yields its transaction URL."""
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    server = uvicorn.Server(
+        uvicorn.Config(
+            receiver_app(store, late_s), host="127.0.0.1", port=port, log_level="warning"
+        )
+    )
+    thread = threading.Thread(target=server.run, daemon=True)
+    thread.start()
+    deadline = time.monotonic() + 20
+    while not server.started:
+        if time.monotonic() > deadline:
+            raise RuntimeError("receiver did not start")
+        time.sleep(0.05)
+    try:
+        yield f"http://127.0.0.1:{port}/fhir"
+    finally:
+        server.should_exit = True
+        thread.join(timeout=20)

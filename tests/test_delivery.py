@@ -1,0 +1,248 @@
+"""Forwarding to a FHIR server over real HTTP on 127.0.0.1: every Bundle arrives exactly once
+however the receiver fails, on both databases."""
+
+from __future__ import annotations
+
+import json
+import threading
+from collections import Counter
+from collections.abc import Iterator
+from datetime import datetime, timedelta
+from typing import Any
+
+import httpx
+import pytest
+from sqlalchemy import text
+from sqlmodel import Session
+
+from service.assess import Assessor
+from service.delivery import DeliveryWorker, Receiver
+from service.notes import NoteService, Principal
+from service.policy import load_policy
+from service.store import outbox
+from service.store.database import make_engine, upgrade
+from tests.conftest import NOW, routine
+from tests.fhir_receiver import Store, running
+
+WHO = Principal("delivery test", "submitter")
+
+
+class Clock:
+    """A clock the test moves on, so back-off delays pass at once."""
+
+    def __init__(self) -> None:
+        self.now = NOW
+
+    def __call__(self) -> datetime:
+        return self.now
+
+
+@pytest.fixture
+def setup(database_url: str) -> Iterator[tuple[NoteService, Any, Clock]]:
+    engine = make_engine(database_url)
+    upgrade(engine)
+    clock = Clock()
+    service = NoteService(engine, Assessor(load_policy()), clock, forward=True)
+    yield service, engine, clock
+    engine.dispose()
+
+
+def notes(n: int) -> list[bytes]:
+    out = []
+    for i in range(n):
+        data = routine()
+        data["note_id"]["value"] = f"LN-DELIVER-{i:03d}"
+        out.append(json.dumps(data).encode())
+    return out
+
+
+def drain(worker: DeliveryWorker, clock: Clock, rounds: int = 40) -> None:
+    for _ in range(rounds):
+        worker.run_once()
+        clock.now += timedelta(minutes=30)  # every back-off has passed
+
+
+def states(engine: Any) -> Counter[str]:
+    with Session(engine) as session:
+        return Counter(e.state for e in outbox.listing(session, None, 1000))
+
+
+def identifiers(store: Store) -> Counter[str]:
+    seen: Counter[str] = Counter()
+    for kind, resources in store.resources.items():
+        for versions in resources.values():
+            for ident in versions[-1].get("identifier", []):
+                seen[f"{kind}|{ident['system']}|{ident['value']}"] += 1
+    return seen
+
+
+def worker_for(engine: Any, url: str, clock: Clock, timeout_s: float = 1.0) -> DeliveryWorker:
+    return DeliveryWorker(
+        engine,
+        Receiver(url, token="receiver-secret", timeout_s=timeout_s),
+        clock,
+        httpx.Client(),
+        base_delay_s=0.01,
+    )
+
+
+def test_every_bundle_arrives_exactly_once_despite_failures(setup: Any) -> None:
+    service, engine, clock = setup
+    for body in notes(6):
+        service.submit(body, WHO)
+    receiver = Store()
+    receiver.faults = ["500-before", "500-after", "late", "429", "500-after", "late"]
+    with running(receiver, late_s=2.0) as url:
+        worker = worker_for(engine, url, clock)
+        drain(worker, clock)
+        worker.client.close()
+    assert states(engine) == Counter({"delivered": 6})
+    assert receiver.count("Procedure") == 6
+    assert all(n == 1 for n in identifiers(receiver).values())  # nothing twice
+    assert receiver.transactions > 6  # the failures really happened and were retried
+
+
+def test_a_refusal_is_parked_with_the_receivers_answer(setup: Any) -> None:
+    service, engine, clock = setup
+    service.submit(notes(1)[0], WHO)
+    receiver = Store()
+    receiver.faults = ["400"]
+    with running(receiver) as url:
+        worker = worker_for(engine, url, clock)
+        drain(worker, clock, rounds=3)
+        worker.client.close()
+    with Session(engine) as session:
+        [entry] = outbox.listing(session, None, 10)
+    assert entry.state == "failed"
+    assert entry.last_status == 400
+    assert json.loads(entry.last_error or "")["resourceType"] == "OperationOutcome"
+    assert receiver.count("Procedure") == 0
+
+
+def test_an_amendment_updates_what_the_receiver_holds(setup: Any) -> None:
+    service, engine, clock = setup
+    _, stored = service.submit(notes(1)[0], WHO)
+    receiver = Store()
+    with running(receiver) as url:
+        worker = worker_for(engine, url, clock)
+        drain(worker, clock, rounds=2)
+        changed = json.loads(notes(1)[0])
+        changed["result"]["opening"]["horizontal_mm"] = 4.0
+        service.amend(
+            stored.key, json.dumps({"reason": "re-measured", "note": changed}).encode(), WHO, None
+        )
+        drain(worker, clock, rounds=2)
+        worker.client.close()
+    assert states(engine) == Counter({"delivered": 2})
+    assert receiver.count("Procedure") == 1
+    [versions] = receiver.resources["Procedure"].values()
+    assert len(versions) == 2  # created, then updated in place
+
+
+def test_two_workers_never_deliver_one_entry_twice(setup: Any) -> None:
+    service, engine, clock = setup
+    for body in notes(10):
+        service.submit(body, WHO)
+    receiver = Store()
+    with running(receiver) as url:
+        workers = [worker_for(engine, url, clock, timeout_s=10) for _ in range(2)]
+        threads = [threading.Thread(target=w.run_once, kwargs={"limit": 10}) for w in workers]
+        for t in threads:
+            t.start()
+        for t in threads:
+            t.join(timeout=60)
+        for w in workers:
+            w.client.close()
+    assert states(engine) == Counter({"delivered": 10})
+    assert receiver.transactions == 10
+
+
+def test_each_note_version_has_exactly_one_outbox_entry(setup: Any) -> None:
+    service, engine, _clock = setup
+    for body in notes(3):
+        service.submit(body, WHO)
+    with engine.connect() as connection:
+        orphans = connection.execute(
+            text(
+                "select count(*) from note_version v left join outbox_entry o "
+                "on o.note_key = v.note_key and o.version = v.version where o.id is null"
+            )
+        ).scalar()
+        entries = connection.execute(text("select count(*) from outbox_entry")).scalar()
+    assert (orphans, entries) == (0, 3)
+
+
+def test_the_service_forwards_and_shows_the_delivery(database_url: str) -> None:
+    import time
+
+    from fastapi.testclient import TestClient
+
+    from service.app import create_app
+    from service.config import Settings
+    from service.store import repository
+
+    receiver = Store()
+    with running(receiver) as url:
+        settings = Settings(
+            database_url=database_url,
+            forward_url=url,
+            forward_token="receiver-secret",
+            forward_timeout_s=5,
+        )
+        app = create_app(settings)  # the real clock: the worker delivers at once
+        with Session(app.state.engine) as session:
+            token, _ = repository.new_token(session, "submitter", "forward test", NOW)
+            session.commit()
+        headers = {"authorization": f"Bearer {token}", "content-type": "application/json"}
+        with TestClient(app) as client:
+            key = client.post("/notes", content=notes(1)[0], headers=headers).json()["id"]
+            deadline = time.monotonic() + 20
+            while time.monotonic() < deadline:
+                state = client.get(f"/notes/{key}/delivery", headers=headers).json()
+                if state["deliveries"] and state["deliveries"][0]["state"] == "delivered":
+                    break
+                time.sleep(0.2)
+        app.state.engine.dispose()
+    assert state["forwarding"] is True
+    assert state["deliveries"][0]["state"] == "delivered"
+    assert receiver.count("Procedure") == 1
+
+
+def test_operator_commands_deliver_list_retry_park(setup: Any, database_url: str) -> None:
+    import os
+    import subprocess
+    import sys
+
+    from tests.conftest import ROOT
+
+    service, _engine, _clock = setup
+    service.submit(notes(1)[0], WHO)
+    receiver = Store()
+    receiver.faults = ["400"]
+    with running(receiver) as url:
+        env = {
+            **os.environ,
+            "CAPNOTE_DATABASE_URL": database_url,
+            "CAPNOTE_FORWARD_URL": url,
+            "CAPNOTE_FORWARD_TOKEN": "receiver-secret",
+        }
+
+        def capnote(*args: str) -> subprocess.CompletedProcess[str]:
+            return subprocess.run(
+                [sys.executable, "-c", "from service.cli import main; main()", *args],
+                capture_output=True,
+                text=True,
+                env=env,
+                cwd=ROOT,
+                timeout=60,
+                check=False,
+            )
+
+        assert "1 entries tried" in capnote("deliver", "--once").stdout
+        listed = capnote("outbox", "list", "--state", "failed").stdout.split()
+        assert listed[3] == "failed"
+        assert capnote("outbox", "retry", listed[0]).returncode == 0
+        assert "1 entries tried" in capnote("deliver", "--once").stdout
+        assert capnote("outbox", "list", "--state", "delivered").stdout.split()[3] == "delivered"
+        assert capnote("outbox", "park", listed[0]).returncode == 1  # delivered: nothing to park
+    assert receiver.count("Procedure") == 1

@@ -1,0 +1,742 @@
+"""The clinician's form in a real browser: Debian's Chromium driven by Playwright against the
+real service (uvicorn on 127.0.0.1, a fresh SQLite file per test, the clock fixed on
+1 December 2026). The browser itself runs in another time zone (Pacific/Auckland), so every
+date the page shows must come from the clinic's zone, not the browser's."""
+
+from __future__ import annotations
+
+import json
+import re
+import shutil
+import subprocess
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from schemas.note import Note
+from tests.conftest import EXAMPLES, VALID, load
+from tests.web_helpers import (
+    ARTIFACTS,
+    AXE,
+    CHROMIUM,
+    CHROMIUM_ARGS,
+    browser_env,
+    build_app,
+    in_ci,
+    live_server,
+    missing,
+    new_token,
+    playwright_or_skip,
+)
+
+try:
+    from playwright.sync_api import Browser, Dialog, Locator, Page, Request, expect
+except ImportError:  # pragma: no cover - depends on the machine
+    if in_ci():
+        raise
+    pytest.skip("playwright is not installed", allow_module_level=True)
+
+pytestmark = pytest.mark.browser
+
+NOW = datetime(2026, 12, 1, 12, 0, tzinfo=UTC)
+ROUTINE = load(EXAMPLES / "notes" / "right-routine.json")
+CAUTION = (
+    "Thresholds are literature defaults; local protocol and the treating clinician decide. "
+    "capnote is not a certified medical device."
+)
+
+
+@pytest.fixture(scope="module")
+def browser() -> Iterator[Browser]:
+    factory = playwright_or_skip()
+    with factory() as playwright:
+        launched = playwright.chromium.launch(
+            executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS, env=browser_env()
+        )
+        yield launched
+        launched.close()
+
+
+@dataclass
+class Clinic:
+    """The service, a clinician token and one browser page on the form."""
+
+    base: str
+    app: Any
+    token: str
+    page: Page
+    problems: list[str]
+    checks: list[Request] = field(default_factory=list)
+    pending: set[Request] = field(default_factory=set)
+
+    def api(self) -> httpx.Client:
+        return httpx.Client(
+            base_url=self.base, headers={"authorization": f"Bearer {self.token}"}, timeout=10
+        )
+
+    def settle(self) -> None:
+        """Wait until typing has stopped long enough for the debounced check to have run."""
+        deadline = time.monotonic() + 15
+        while time.monotonic() < deadline:
+            before = len(self.checks)
+            self.page.wait_for_timeout(600)
+            if not self.pending and len(self.checks) == before:
+                return
+        raise AssertionError("the form kept checking")
+
+    def last_check(self) -> dict[str, Any]:
+        self.settle()
+        body = self.checks[-1].post_data_json
+        assert isinstance(body, dict)
+        return body
+
+
+def open_form(browser: Browser, base: str, *, bypass_csp: bool = False) -> tuple[Any, Page]:
+    context = browser.new_context(
+        locale="en-GB",
+        timezone_id="Pacific/Auckland",
+        viewport={"width": 1400, "height": 1000},
+        bypass_csp=bypass_csp,
+    )
+    page = context.new_page()
+    page.set_default_timeout(10_000)
+    return context, page
+
+
+@pytest.fixture
+def clinic(browser: Browser, tmp_path: Path) -> Iterator[Clinic]:
+    app = build_app(f"sqlite:///{tmp_path / 'capnote.sqlite3'}", lambda: NOW)
+    token = new_token(app, "clinician", NOW)
+    with live_server(app) as base:
+        context, page = open_form(browser, base)
+        problems: list[str] = []
+        clinic = Clinic(base, app, token, page, problems)
+
+        def console(message: Any) -> None:
+            # Refused requests (401, 422, an aborted network) are logged by Chromium as
+            # "Failed to load resource"; anything else (a CSP refusal, a script error) is a bug.
+            if message.type == "error" and "Failed to load resource" not in message.text:
+                problems.append(message.text)
+
+        def started(request: Request) -> None:
+            if request.url.endswith("/notes/check") and request.method == "POST":
+                clinic.checks.append(request)
+                clinic.pending.add(request)
+
+        page.on("console", console)
+        page.on("pageerror", lambda error: problems.append(str(error)))
+        page.on("request", started)
+        page.on("requestfinished", lambda r: clinic.pending.discard(r))
+        page.on("requestfailed", lambda r: clinic.pending.discard(r))
+        page.goto(f"{base}/")
+        expect(page.locator("body")).to_have_attribute("data-ready", "true")
+        try:
+            yield clinic
+        finally:
+            context.close()
+    assert problems == [], problems
+
+
+def artifact(name: str) -> Path:
+    ARTIFACTS.mkdir(exist_ok=True)
+    return ARTIFACTS / name
+
+
+# --- typing, as a person at the keyboard does -----------------------------------------------
+
+
+def key_in(page: Page, field: Locator, text: str, *, replace: bool = False) -> None:
+    field.focus()
+    if replace:
+        page.keyboard.press("Control+A")
+    page.keyboard.type(text)
+
+
+def type_label(page: Page, label: str, text: str, *, exact: bool = False) -> None:
+    key_in(page, page.get_by_label(label, exact=exact), text)
+
+
+def choose(page: Page, label: str, option: str, *, exact: bool = False) -> None:
+    """Pick an option of a closed <select> by typing its first letters, as the keyboard does."""
+    select = page.get_by_label(label, exact=exact)
+    select.focus()
+    page.keyboard.type(option)
+    expect(select.locator("option:checked")).to_have_text(re.compile(f"^{re.escape(option)}"))
+
+
+def pick(page: Page, group: str, option: str) -> None:
+    """A radio button in a named group: focus it and press Space."""
+    radio = page.get_by_role("group", name=group).get_by_label(option, exact=True)
+    radio.focus()
+    page.keyboard.press("Space")
+    expect(radio).to_be_checked()
+
+
+def press(page: Page, button: str) -> None:
+    page.get_by_role("button", name=button, exact=True).focus()
+    page.keyboard.press("Enter")
+
+
+def sign_in(page: Page, token: str) -> None:
+    type_label(page, "Clinician token", token)
+    page.keyboard.press("Enter")
+    expect(page.locator("#signin")).to_be_hidden()
+
+
+def fill_routine(page: Page, *, patient: bool = True) -> None:
+    """The routine right-eye session of examples/notes/right-routine.json, typed in."""
+    if patient:
+        type_label(page, "Patient ID", "HX100234", exact=True)
+    type_label(page, "Visit number", "V-0417")
+    pick(page, "Eye treated", "Right eye")
+    type_label(page, "Session date", "27112026")
+    type_label(page, "Laser started", "1005")
+    type_label(page, "Laser finished", "1015")
+    pick(page, "Consent given", "Yes")
+    type_label(page, "Consent time", "0950")
+    type_label(page, "Treating clinician", "Dr Ilona Marsh")
+    type_label(page, "Clinician staff ID", "S-0042")
+    type_label(page, "Place (unit and room)", "Harbourside Eye Unit, laser room 2")
+    site = "https://harbourside-eye.example/fhir/sid"
+    type_label(page, "System for patient IDs", f"{site}/mrn")
+    type_label(page, "System for visits", f"{site}/visit")
+    type_label(page, "System for staff IDs", f"{site}/staff")
+
+    type_label(page, "IOP before the laser", "15")
+    choose(page, "Tonometry", "Applanation", exact=True)
+    type_label(page, "IOP measured at", "0940")
+    type_label(page, "Visual acuity before", "6/18")
+    choose(page, "Acuity notation", "Snellen, metres", exact=True)
+    pick(page, "Pupil dilated", "Yes")
+    choose(page, "IOL optic material", "Hydrophobic acrylic")
+    type_label(page, "Cataract surgery date", "12032025")
+
+    choose(page, "Pattern", "Cruciate", exact=True)
+    choose(page, "Focus", "Posterior offset", exact=True)
+    type_label(page, "Offset or focus depth", "0.15")
+    pick(page, "Capsulotomy contact lens", "Used")
+    type_label(page, "Setting 1: Energy per pulse", "1.6")
+    type_label(page, "Setting 1: Pulses", "18")
+    type_label(page, "Total energy on the laser's counter", "28.6")
+
+    choose(page, "Outcome", "Complete opening")
+    type_label(page, "Opening, horizontal diameter", "4.5")
+    press(page, "Add an IOP reading")
+    type_label(page, "Reading 1: IOP", "17")
+    choose(page, "Reading 1: Tonometry", "Applanation")
+    type_label(page, "Reading 1: Measured at", "1115")
+    type_label(page, "Visual acuity after", "6/9")
+    choose(page, "Acuity notation, after", "Snellen, metres")
+
+    press(page, "Add a drop given")
+    type_label(page, "Drop given 1: Drop", "apraclonidine")
+    type_label(page, "Drop given 1: Strength", "1")
+    choose(page, "Drop given 1: Given", "Before and after")
+    press(page, "Add drops to take home")
+    type_label(page, "Drops to take home 1: Drops", "prednisolone acetate")
+    type_label(page, "Drops to take home 1: Strength", "1")
+    type_label(page, "Drops to take home 1: Times a day", "4")
+    type_label(page, "Drops to take home 1: For", "7")
+    pick(page, "Warning signs of retinal detachment explained", "Yes")
+
+
+def same_note(sent: dict[str, Any], expected: dict[str, Any]) -> None:
+    """Both through the contract (strict JSON mode), so defaults and 15 vs 15.0 compare equal."""
+    assert Note.model_validate_json(json.dumps(sent)) == Note.model_validate_json(
+        json.dumps(expected)
+    )
+
+
+def finding_beside(clinic: Clinic, label: str, code: str) -> Locator:
+    """The finding with this code for the labelled control, checked to be tied to it: named
+    in its aria-describedby and placed in its own field or row."""
+    clinic.settle()
+    control = clinic.page.get_by_label(label)
+    path = control.evaluate("c => c.dataset.bind || c.dataset.path")
+    box = clinic.page.locator(f'.finding-inline[data-code="{code}"][data-location="{path}"]')
+    expect(box).to_be_visible()
+    assert box.get_attribute("id") in (control.get_attribute("aria-describedby") or "").split()
+    assert box.evaluate("(b, c) => b.parentElement.contains(c)", control.element_handle())
+    return box
+
+
+# --- the tests ---------------------------------------------------------------------------------
+
+
+def test_a_whole_note_typed_by_label_is_the_note_the_contract_expects(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    sent = clinic.last_check()
+    # The times were typed as clinic time (London, GMT in November) in a browser set to
+    # Auckland: the note must carry +00:00, not the browser's +13:00.
+    assert sent["started_at"] == "2026-11-27T10:05:00+00:00"
+    same_note(sent, {**ROUTINE, "note_id": sent["note_id"], "status": "draft"})
+    assert sent["note_id"]["system"] == "urn:ietf:rfc:3986"
+    assert re.fullmatch(r"urn:uuid:[0-9a-f-]{36}", sent["note_id"]["value"])
+    expect(page.locator("#findings-list > li")).to_have_count(0)
+    expect(page.locator("#check-status")).to_contain_text("0 errors, 0 warnings")
+    page.screenshot(path=artifact("form-filled.png"), full_page=True)
+
+
+def test_review_on_christmas_day_moves_to_the_next_open_day(clinic: Clinic) -> None:
+    # 27 Nov 2026 + 28 days (the routine review) is Fri 25 Dec 2026. England's bank holidays
+    # (GOV.UK "UK bank holidays", England and Wales, 2026): Christmas Day Fri 25 Dec, Boxing
+    # Day Sat 26 Dec with the substitute day Mon 28 Dec; Sun 27 Dec is a weekend day. So the
+    # first open day is Tue 29 Dec 2026.
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    review = page.locator("#due-list li[data-kind=review]")
+    expect(review.locator(".due-when")).to_have_text("Tue 29 Dec 2026")
+    moved = review.locator(".due-moved")
+    expect(moved).to_contain_text("Moved from Fri 25 Dec 2026")
+    expect(moved).to_contain_text("Fri 25 Dec (Christmas Day)")
+    expect(moved).to_contain_text("Sat 26 Dec (Boxing Day)")
+    expect(moved).to_contain_text("Mon 28 Dec")
+    # The same-day recheck is shown in clinic time (GMT), not the browser's Auckland time.
+    recheck = page.locator("#due-list li[data-kind=iop-recheck] .due-when")
+    expect(recheck).to_have_text("Fri 27 Nov 2026, 11:15 GMT")
+    expect(page.locator("[data-derived=total-energy] dd")).to_contain_text("28.8 mJ in 18 pulses")
+    expect(page.locator("[data-derived=fluence] dt")).to_have_text("Focal spot (idealised)")
+    expect(page.locator("[data-derived=fluence] dd")).to_contain_text(
+        "idealised diffraction-limited estimate, not a measurement"
+    )
+    expect(page.locator("[data-derived=cumulative] dd")).to_contain_text("28.8 mJ over 1 session")
+    expect(page.locator("[data-derived=risk] dd")).to_contain_text("routine")
+    expect(page.locator("[data-derived=opening] dd")).to_contain_text("15.9 mm²")
+    page.locator("aside.panel").screenshot(path=artifact("panel-christmas.png"))
+
+
+def rows_total(page: Page) -> tuple[int, float]:
+    """The sum of energy x pulses over the rows, read from the inputs themselves."""
+    pulses, energy = 0, 0.0
+    for row in page.locator("#series-rows > li").all():
+        e = float(row.locator("[data-sub=energy_mj]").input_value())
+        n = int(row.locator("[data-sub=pulses]").input_value())
+        pulses += n
+        energy += e * n
+    return pulses, energy
+
+
+def shown_total(page: Page) -> tuple[int, float]:
+    text = page.locator("#laser-total").inner_text()
+    m = re.fullmatch(r"([\d,]+) pulses · ([\d,.]+) mJ", text.strip())
+    assert m, text
+    return int(m[1].replace(",", "")), float(m[2].replace(",", ""))
+
+
+def assert_total(page: Page, pulses: int, energy: float) -> None:
+    shown_pulses, shown_energy = shown_total(page)
+    assert shown_pulses == pulses
+    assert shown_energy == pytest.approx(energy)
+
+
+def test_high_pulse_energy_is_flagged_beside_its_field_and_totals_follow_the_rows(
+    clinic: Clinic,
+) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    energy = page.get_by_label("Setting 1: Energy per pulse")
+    key_in(page, energy, "8", replace=True)
+    # The usual pulse energy is at most 3 mJ (policy default, "from memory": usually 1-3 mJ).
+    beside = finding_beside(clinic, "Setting 1: Energy per pulse", "pulse-energy-above-usual")
+    expect(beside).to_contain_text("pulse energy 8 mJ is above the usual 3 mJ")
+    expect(beside).to_contain_text("Source:")
+    expect(beside).to_contain_text("Rule:")
+    # The counter (28.6 mJ) now disagrees with 8 x 18 = 144 mJ: an error at its own field.
+    finding_beside(clinic, "Total energy on the laser's counter", "total-energy-mismatch")
+    key_in(page, page.get_by_label("Total energy on the laser's counter"), "", replace=True)
+    page.keyboard.press("Delete")
+
+    press(page, "Add an energy setting")
+    type_label(page, "Setting 2: Energy per pulse", "2.2")
+    type_label(page, "Setting 2: Pulses", "10")
+    assert_total(page, 28, 8 * 18 + 2.2 * 10)
+    assert_total(page, *rows_total(page))
+    expect(page.locator("[data-derived=total-energy] dd")).to_contain_text("166 mJ in 28 pulses")
+    page.screenshot(path=artifact("form-energy-warning.png"), full_page=True)
+
+    press(page, "Remove setting 1")
+    expect(page.locator("#series-rows > li")).to_have_count(1)
+    assert_total(page, 10, 2.2 * 10)
+    # After renumbering, the old finding is gone and row 1 is the former row 2.
+    expect(page.get_by_label("Setting 1: Energy per pulse")).to_have_value("2.2")
+    expect(page.locator("[data-derived=total-energy] dd")).to_contain_text("22 mJ in 10 pulses")
+    expect(page.locator(".finding-inline[data-code=pulse-energy-above-usual]")).to_have_count(0)
+
+
+def test_iop_rise_of_12_is_a_severe_spike_with_a_next_day_check(clinic: Clinic) -> None:
+    # A rise of 10 mmHg or more is a severe IOP spike (Chawla et al., ESCRS 2014; Unal et al.,
+    # J Cataract Refract Surg 2006), and a severe spike calls for a next-day IOP check
+    # (Simsek et al. 1998: 24 h recheck).
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    key_in(page, page.get_by_label("Reading 1: IOP"), "27", replace=True)
+    expect(page.locator("[data-derived=spike] dd")).to_contain_text("+12 mmHg")
+    expect(page.locator("[data-derived=spike] dd")).to_contain_text("spike grade: severe")
+    finding_beside(clinic, "Reading 1: IOP", "iop-rise-severe")
+    next_day = page.locator("#due-list li[data-kind=next-day-iop]")
+    expect(next_day.locator(".due-title")).to_have_text("Next-day IOP check")
+    # 18-48 h after the session (Fri 27 Nov 10:15 GMT) is Sat 04:15 to Sun 10:15: the clinic
+    # is shut at weekends for the whole window, so the check keeps its target and is flagged
+    # to be booked by hand.
+    expect(next_day.locator(".due-when")).to_have_text("Sat 28 Nov 2026, 10:15 GMT")
+    expect(next_day).to_contain_text("Book by hand: the clinic is shut for the whole window")
+    expect(page.locator("[data-derived=risk] dd")).to_contain_text("raised")
+    page.screenshot(path=artifact("form-iop-spike.png"), full_page=True)
+
+
+def test_sign_final_then_amend_and_void_with_reasons(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    clinic.settle()
+    press(page, "Sign as final…")
+    dialog = page.get_by_role("dialog", name="Sign this note as final?")
+    expect(dialog).to_be_visible()
+    expect(dialog).to_contain_text("no errors")
+    page.screenshot(path=artifact("sign-dialog.png"))
+    dialog.get_by_role("button", name="Sign as final").focus()
+    page.keyboard.press("Enter")
+    expect(page.locator("#notice")).to_contain_text("Signed as final: version 1")
+    key = page.locator("#record-id").inner_text().strip()
+    with clinic.api() as api:
+        stored = api.get(f"/notes/{key}")
+        assert stored.status_code == 200
+        assert stored.json()["status"] == "final"
+        assert stored.headers["etag"] == 'W/"1"'
+        same_note(stored.json()["note"], {**ROUTINE, "note_id": stored.json()["note"]["note_id"]})
+
+    # A signed note changes only with a reason: without one the server refuses and says so
+    # beside the reason field, and what was typed stays.
+    key_in(page, page.get_by_label("Opening, horizontal diameter"), "4", replace=True)
+    press(page, "Save the amendment")
+    expect(page.locator("#notice")).to_contain_text("the server refused the note")
+    expect(finding_beside(clinic, "Reason for the change", "missing-field")).to_contain_text(
+        "needs a reason"
+    )
+    expect(page.get_by_label("Opening, horizontal diameter")).to_have_value("4")
+    type_label(page, "Reason for the change", "opening re-measured")
+    press(page, "Save the amendment")
+    expect(page.locator("#notice")).to_contain_text("Amendment saved: version 2")
+    press(page, "Show versions")
+    expect(page.locator("#versions-list > li")).to_have_count(2)
+    expect(page.locator("#versions-list > li").nth(1)).to_contain_text("opening re-measured")
+    with clinic.api() as api:
+        versions = api.get(f"/notes/{key}/versions").json()["versions"]
+        assert [(v["version"], v["status"], v["reason"]) for v in versions] == [
+            (1, "final", None),
+            (2, "final", "opening re-measured"),
+        ]
+        assert api.get(f"/notes/{key}").json()["note"]["result"]["opening"]["horizontal_mm"] == 4
+
+    press(page, "Void (entered in error)…")
+    void = page.get_by_role("dialog", name="Void this note?")
+    void.get_by_role("button", name="Void the note").click()
+    expect(void.locator("#void-message")).to_contain_text("Give the reason")
+    void.get_by_label("Reason for voiding").fill("wrong eye recorded")
+    void.get_by_role("button", name="Void the note").click()
+    expect(page.locator("#notice")).to_contain_text("Voided: version 3")
+    expect(page.get_by_label("Patient ID", exact=True)).to_be_disabled()
+    with clinic.api() as api:
+        latest = api.get(f"/notes/{key}").json()
+        assert (latest["status"], latest["reason"]) == ("void", "wrong eye recorded")
+
+
+@pytest.mark.parametrize("path", VALID, ids=lambda p: p.stem)
+def test_a_stored_note_opens_by_id_and_comes_back_unchanged(clinic: Clinic, path: Path) -> None:
+    note = load(path)
+    with clinic.api() as api:
+        stored = api.post("/notes", json=note)
+        assert stored.status_code == 201, stored.text
+        key = stored.json()["id"]
+        derived = stored.json()["derived"]
+    page = clinic.page
+    sign_in(page, clinic.token)
+    type_label(page, "Open a stored note by record id", key)
+    page.keyboard.press("Enter")
+    expect(page.locator("#record-id")).to_have_text(key)
+    # What the form would send now is the stored note, field for field.
+    same_note(clinic.last_check(), note)
+    expect(page.get_by_label("Right eye" if note["eye"] == "right" else "Left eye")).to_be_checked()
+    assert_total(page, derived["total_pulses"], derived["total_energy_mj"])
+    pits = [p for c in note["result"]["complications"] for p in c.get("positions", [])]
+    expect(page.locator("#drawing .d-pit")).to_have_count(len(pits))
+    expect(page.locator("#versions-list > li")).to_have_count(1)
+
+
+def test_the_drawing_is_to_scale(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    key_in(page, page.get_by_label("IOL optic diameter"), "6", replace=True)
+    type_label(page, "Opening, horizontal diameter", "4.5")
+    type_label(page, "Opening, vertical diameter", "3.5")
+    press(page, "Add a complication")
+    choose(page, "Complication 1: Kind", "IOL pits or marks")
+    press(page, "Add a pit position (complication 1)")
+    type_label(page, "Pit 1: x, to patient's right", "1")
+    type_label(page, "Pit 1: y, upwards", "0.5")
+    press(page, "Add a pit position (complication 1)")
+    type_label(page, "Pit 2: x, to patient's right", "-2.5")
+    type_label(page, "Pit 2: y, upwards", "-1")
+    svg = page.locator("#drawing")
+    # One user unit is one millimetre: radii are half the diameters typed.
+    expect(svg.locator(".d-optic")).to_have_attribute("r", "3")
+    expect(svg.locator(".d-opening")).to_have_attribute("rx", "2.25")
+    expect(svg.locator(".d-opening")).to_have_attribute("ry", "1.75")
+    # Seen facing the patient: the patient's right (x > 0) is drawn on the left, up is up.
+    first = svg.locator(".d-pit circle").first
+    expect(first).to_have_attribute("cx", "-1")
+    expect(first).to_have_attribute("cy", "-0.5")
+    desc = svg.locator("desc")
+    expect(desc).to_contain_text(
+        "Pit 1: 1 mm to the patient's right, 0.5 mm up, inside the opening"
+    )
+    expect(desc).to_contain_text(
+        "Pit 2: 2.5 mm to the patient's left, 1 mm down, outside the opening"
+    )
+    box = svg.bounding_box()
+    assert box is not None
+    assert box["width"] == pytest.approx(box["height"], abs=1)
+    page.locator("#drawing-figure").screenshot(path=artifact("drawing.png"))
+
+
+def test_refusals_and_failures_are_explained_and_keep_what_was_typed(clinic: Clinic) -> None:
+    page = clinic.page
+    # A wrong token and a token of a role that may not check are both explained.
+    type_label(page, "Clinician token", "cap_not-a-real-token")
+    page.keyboard.press("Enter")
+    expect(page.locator("#signin-message")).to_contain_text("not accepted")
+    auditor = new_token(clinic.app, "auditor", NOW)
+    key_in(page, page.get_by_label("Clinician token"), auditor, replace=True)
+    page.keyboard.press("Enter")
+    expect(page.locator("#signin-message")).to_contain_text("role")
+    key_in(page, page.get_by_label("Clinician token"), clinic.token, replace=True)
+    page.keyboard.press("Enter")
+    expect(page.locator("#signin")).to_be_hidden()
+
+    # A draft that does not meet the contract is refused: the errors show beside their
+    # fields (even those not reached yet) and what was typed stays.
+    type_label(page, "Patient ID", "HX100234", exact=True)
+    press(page, "Save as draft")
+    expect(page.locator("#notice")).to_contain_text("Saving the draft failed")
+    expect(page.locator("#notice")).to_contain_text("Everything typed is still in the form")
+    eye = page.locator("fieldset[data-path=eye] .finding-inline[data-code=missing-field]")
+    expect(eye).to_be_visible()
+    expect(page.get_by_label("Patient ID", exact=True)).to_have_value("HX100234")
+
+    # A complete note with an impossible value: refused with the range beside the field.
+    fill_routine(page, patient=False)
+    key_in(page, page.get_by_label("IOP before the laser"), "95", replace=True)
+    press(page, "Save as draft")
+    expect(page.locator("#notice")).to_contain_text("Saving the draft failed")
+    expect(finding_beside(clinic, "IOP before the laser", "out-of-range")).to_contain_text(
+        "outside >= 0 and <= 80 mmHg"
+    )
+    expect(page.get_by_label("IOP before the laser")).to_have_value("95")
+    expect(page.locator("#record-state")).to_have_text("not stored yet")
+
+    # The network fails: a plain message, nothing lost.
+    page.route("**/notes", lambda route: route.abort())
+    press(page, "Save as draft")
+    expect(page.locator("#notice")).to_contain_text("could not be reached")
+    expect(page.get_by_label("Patient ID", exact=True)).to_have_value("HX100234")
+    page.unroute("**/notes")
+
+    # The token is revoked meanwhile (401 on the next check): sign-in comes back, text stays.
+    page.evaluate("sessionStorage.setItem('capnote-token', 'cap_revoked')")
+    key_in(page, page.get_by_label("Treating clinician"), "Dr Ilona Marsh", replace=True)
+    expect(page.locator("#signin")).to_be_visible()
+    expect(page.locator("#signin-message")).to_contain_text("Sign in again")
+    expect(page.get_by_label("Treating clinician")).to_have_value("Dr Ilona Marsh")
+
+    # Nothing of the note is kept in the browser: only the token, in sessionStorage.
+    stored = page.evaluate(
+        """async () => ({
+            local: localStorage.length,
+            session: Object.keys(sessionStorage),
+            idb: indexedDB.databases ? (await indexedDB.databases()).length : 0,
+        })"""
+    )
+    assert stored == {"local": 0, "session": [], "idb": 0}
+    sign_in(page, clinic.token)
+    assert page.evaluate("Object.keys(sessionStorage)") == ["capnote-token"]
+
+
+def test_leaving_with_unsaved_changes_asks_first(clinic: Clinic) -> None:
+    page = clinic.page
+    asked: list[str] = []
+
+    def answer(dialog: Dialog) -> None:
+        asked.append(dialog.type)
+        dialog.accept()
+
+    page.on("dialog", answer)
+    page.goto(f"{clinic.base}/")  # nothing typed yet: leaving asks nothing
+    expect(page.locator("body")).to_have_attribute("data-ready", "true")
+    assert asked == []
+    type_label(page, "Patient ID", "HX100234", exact=True)
+    with page.expect_event("close"):
+        page.close(run_before_unload=True)
+    assert asked == ["beforeunload"]
+
+
+def tabbables(page: Page) -> list[str]:
+    """Every element the Tab key should reach, in document order (one stop per radio group)."""
+    keys: list[str] = page.evaluate(
+        """() => {
+            const all = [...document.querySelectorAll(
+                'a[href], button, input, select, textarea, summary, [tabindex]')];
+            const seen = new Set();
+            const out = [];
+            all.forEach((el, i) => {
+                el.dataset.tabkey = String(i);
+                if (el.disabled || el.tabIndex < 0 || !el.checkVisibility()) return;
+                if (el.closest('dialog:not([open]), template')) return;
+                if (el.type === 'radio') {
+                    if (seen.has(el.name)) return;
+                    seen.add(el.name);
+                }
+                out.push(String(i));
+            });
+            return out;
+        }"""
+    )
+    return keys
+
+
+def test_tab_goes_through_the_page_top_to_bottom_with_visible_focus(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    clinic.settle()
+    # Leaving a required field empty shows its error (and a "Go to" button in the summary),
+    # so a first pass over the page settles what is there; the second pass is checked.
+    page.locator(".skip").focus()
+    for _ in range(len(tabbables(page)) * 3):
+        page.keyboard.press("Tab")
+        if page.evaluate("document.activeElement === document.body"):
+            break
+    clinic.settle()
+    expected = tabbables(page)
+    # Start where a keyboard user starts: the first stop of the page (the skip link).
+    page.locator(".skip").focus()
+    visited = [page.evaluate("document.activeElement.dataset.tabkey")]
+    for _ in range(len(expected) * 5):
+        page.keyboard.press("Tab")
+        key, outline = page.evaluate(
+            """() => { const el = document.activeElement;
+                       const s = getComputedStyle(el);
+                       return [el.dataset.tabkey || el.tagName,
+                               s.outlineStyle + ' ' + s.outlineWidth]; }"""
+        )
+        if visited[-1] != key:
+            visited.append(key)
+            # Every stop shows where the focus is: a solid outline of 2 px or more.
+            assert outline.startswith("solid"), (key, outline)
+            assert float(outline.split()[1].removesuffix("px")) >= 2, (key, outline)
+        if key == expected[-1]:
+            break
+    assert visited == expected
+
+
+def run_axe(page: Page) -> list[dict[str, Any]]:
+    page.add_script_tag(path=str(AXE))
+    result = page.evaluate(
+        """async () => await axe.run(document, {
+            runOnly: {type: 'tag', values: ['wcag2a', 'wcag2aa', 'wcag21a', 'wcag21aa']}})"""
+    )
+    violations: list[dict[str, Any]] = result["violations"]
+    return [v for v in violations if v["impact"] in ("serious", "critical")]
+
+
+def test_axe_finds_no_serious_or_critical_violations(browser: Browser, tmp_path: Path) -> None:
+    if not AXE.exists():
+        missing("axe-core is missing (npm install --no-save --prefix tests/.node axe-core@4)")
+    app = build_app(f"sqlite:///{tmp_path / 'capnote.sqlite3'}", lambda: NOW)
+    token = new_token(app, "clinician", NOW)
+    with live_server(app) as base:
+        # axe is injected as a script, which the page's CSP would refuse: this context only.
+        context, page = open_form(browser, base, bypass_csp=True)
+        try:
+            page.goto(f"{base}/")
+            expect(page.locator("body")).to_have_attribute("data-ready", "true")
+            states = {"signed out": run_axe(page)}
+            sign_in(page, token)
+            fill_routine(page)
+            key_in(page, page.get_by_label("Setting 1: Energy per pulse"), "8", replace=True)
+            press(page, "Add a complication")
+            choose(page, "Complication 1: Kind", "IOL pits or marks")
+            press(page, "Add a pit position (complication 1)")
+            type_label(page, "Pit 1: x, to patient's right", "0.4")
+            type_label(page, "Pit 1: y, upwards", "0.2")
+            expect(
+                page.locator(".finding-inline[data-code=pulse-energy-above-usual]")
+            ).to_be_visible()
+            page.wait_for_timeout(800)
+            states["note with findings"] = run_axe(page)
+            press(page, "Sign as final…")
+            expect(page.get_by_role("dialog")).to_be_visible()
+            states["sign dialog"] = run_axe(page)
+        finally:
+            context.close()
+    summary = {
+        state: [(v["id"], v["impact"], [n["target"] for n in v["nodes"]][:3]) for v in found]
+        for state, found in states.items()
+        if found
+    }
+    assert summary == {}
+
+
+def pdf_pages(data: bytes) -> int:
+    return len(re.findall(rb"/Type\s*/Page(?![a-zA-Z])", data))
+
+
+def test_print_view_is_one_page_with_findings_due_items_and_the_caution(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    # 4 mJ x 18 = 72 mJ: above the usual pulse energy, but not in the highest band, so the
+    # risk stays routine and the review stays four weeks out (moved past Christmas).
+    key_in(page, page.get_by_label("Setting 1: Energy per pulse"), "4", replace=True)
+    key_in(page, page.get_by_label("Total energy on the laser's counter"), "72", replace=True)
+    expect(page.locator(".finding-inline[data-code=pulse-energy-above-usual]")).to_be_visible()
+    clinic.settle()
+    expect(page.locator("#caution")).to_have_text(CAUTION)  # on screen too
+    page.emulate_media(media="print")
+    summary = page.locator("#print-summary")
+    expect(summary).to_be_visible()
+    expect(page.locator("#note-form")).to_be_hidden()
+    expect(summary).to_contain_text("pulse energy 4 mJ is above the usual 3 mJ")
+    expect(summary).to_contain_text("Review visit: Tue 29 Dec 2026")
+    expect(summary).to_contain_text("Christmas Day")
+    expect(summary.locator(".p-caution")).to_have_text(CAUTION)
+    expect(summary).to_contain_text("HX100234")
+    page.screenshot(path=artifact("print.png"), full_page=True)
+    pdf = page.pdf(format="A4", print_background=True, prefer_css_page_size=True)
+    artifact("summary.pdf").write_bytes(pdf)
+    assert pdf.startswith(b"%PDF")
+    assert pdf_pages(pdf) == 1
+    page.emulate_media(media="screen")
+    expect(page.locator("#note-form")).to_be_visible()
+    page.screenshot(path=artifact("form.png"))
+    page.locator("#step-laser").scroll_into_view_if_needed()
+    page.evaluate("document.getElementById('step-laser').scrollIntoView({block: 'start'})")
+    page.screenshot(path=artifact("form-laser.png"))
+    if shutil.which("pdftotext"):
+        # poppler's text extraction, when present, reads the caution off the printed page.
+        text = subprocess.run(
+            ["pdftotext", str(artifact("summary.pdf")), "-"],
+            capture_output=True,
+            text=True,
+            check=True,
+        ).stdout
+        assert "not a certified medical device" in " ".join(text.split())
