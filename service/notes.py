@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import hashlib
 import threading
-import uuid
 from collections.abc import Callable, Sequence
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
@@ -26,7 +25,8 @@ from service.assess import Assessment, Assessor
 from service.derive import PriorSession
 from service.errors import ConflictError, InputError, NotFoundError, PreconditionError
 from service.fhir.common import Version, stable_uuid
-from service.findings import Finding, Severity, has_errors
+from service.findings import Finding, has_errors
+from service.note_input import check_match, json_object, known_key, problem, reason_text
 from service.rules import Context, check_payload
 from service.store import outbox
 from service.store import repository as repo
@@ -78,18 +78,6 @@ def note_key(note: Note) -> str:
     return stable_uuid(note, "procedure")
 
 
-def known_key(key: str) -> str:
-    """The key if it has the shape of a note id; anything else cannot name a note."""
-    try:
-        return str(uuid.UUID(key)) if len(key) == 36 else _no_such_note()
-    except ValueError:
-        return _no_such_note()
-
-
-def _no_such_note() -> str:
-    raise NotFoundError("no record with this id")
-
-
 def content_hash(note: Note) -> str:
     """A digest of the note's content, to tell a resend from a change."""
     return hashlib.sha256(note.model_dump_json().encode()).hexdigest()
@@ -125,11 +113,6 @@ def _read_copies(bundle: dict[str, Any], version: int, at: datetime) -> list[dic
             }
         )
     return out
-
-
-def _problem(code: str, location: str, message: str, rule: str) -> InputError:
-    finding = Finding(Severity.ERROR, code, location, message, rule, issue_type="required")
-    return InputError(message, [finding])
 
 
 class NoteService:
@@ -309,10 +292,10 @@ class NoteService:
     def amend(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
         """Store a new version of a note; a signed note needs a reason and stays signed."""
         key = known_key(key)
-        wrapper = _json_object(body, allowed={"note", "reason"})
-        note_part, reason = wrapper.get("note"), _reason(wrapper.get("reason"), required=False)
+        wrapper = json_object(body, allowed={"note", "reason"})
+        note_part, reason = wrapper.get("note"), reason_text(wrapper.get("reason"), required=False)
         if not isinstance(note_part, dict):
-            raise _problem(
+            raise problem(
                 "missing-field",
                 "note",
                 "the amended note is missing",
@@ -320,7 +303,7 @@ class NoteService:
             )
         note, findings = self._checked(orjson.dumps(note_part))
         if note_key(note) != key:
-            raise _problem(
+            raise problem(
                 "identifier-mismatch",
                 "note.note_id",
                 "the note's identifier belongs to another note",
@@ -330,18 +313,18 @@ class NoteService:
             latest = self._latest(session, key)
             if latest.content_hash == content_hash(note) and latest.status != "void":
                 return _stored(latest)  # a retry of an amendment that already landed
-            _check_match(latest, if_match)
+            check_match(latest, if_match)
             if latest.status == "void":
                 raise ConflictError("the note was voided; it cannot be amended")
             if latest.status == "final" and not reason:
-                raise _problem(
+                raise problem(
                     "missing-field",
                     "reason",
                     "amending a signed note needs a reason",
                     "a final note is amended only with a reason",
                 )
             if latest.status == "final" and note.status == "draft":
-                raise _problem(
+                raise problem(
                     "status-regression",
                     "note.status",
                     "a signed note cannot go back to draft",
@@ -362,12 +345,12 @@ class NoteService:
     def void(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
         """Mark a note entered-in-error: a new version whose resources say so."""
         key = known_key(key)
-        reason = _reason(_json_object(body, allowed={"reason"}).get("reason"), required=True)
+        reason = reason_text(json_object(body, allowed={"reason"}).get("reason"), required=True)
         with Session(self.engine) as session:
             latest = self._latest(session, key)
             if latest.status == "void":
                 return _stored(latest)  # voided already (a retry, or someone else did)
-            _check_match(latest, if_match)
+            check_match(latest, if_match)
             note = Note.model_validate_json(latest.note_json)
             emitted = Version(
                 latest.version + 1, voided=True, amends_final=latest.status == "final"
@@ -429,54 +412,3 @@ class NoteService:
         with Session(self.engine) as session:
             total, rows = repo.latest_per_note(session, patient, eye, start, end, offset, limit)
             return total, [_stored(r) for r in rows]
-
-
-def _check_match(latest: NoteVersion, if_match: int | None) -> None:
-    """412 when If-Match names a version other than the latest."""
-    if if_match is not None and if_match != latest.version:
-        raise PreconditionError(
-            f"If-Match names version {if_match} but the latest is {latest.version}"
-        )
-
-
-REASON_MAX = 500
-
-
-def _reason(value: object, *, required: bool) -> str | None:
-    """A reason: text of 1 to REASON_MAX characters (required for voids)."""
-    if value is None and not required:
-        return None
-    if not isinstance(value, str) or not value.strip():
-        raise _problem(
-            "missing-field", "reason", "a reason is needed, as text", "reason is a non-empty string"
-        )
-    if len(value) > REASON_MAX or any(ord(c) < 32 for c in value):
-        raise _problem(
-            "wrong-format",
-            "reason",
-            f"the reason must be printable text of at most {REASON_MAX} characters",
-            f"reason: 1 to {REASON_MAX} printable characters",
-        )
-    return value.strip()
-
-
-def _json_object(body: bytes, allowed: set[str] | None = None) -> dict[str, Any]:
-    try:
-        data = orjson.loads(body)
-    except orjson.JSONDecodeError as exc:
-        raise _problem(
-            "json-invalid", "", "the body is not valid JSON", "the body must be a JSON object"
-        ) from exc
-    if not isinstance(data, dict):
-        raise _problem(
-            "wrong-type", "", "the body must be a JSON object", "the body must be a JSON object"
-        )
-    unknown = sorted(set(data) - allowed) if allowed is not None else []
-    if unknown:
-        raise _problem(
-            "unknown-field",
-            unknown[0][:40],
-            "only " + ", ".join(sorted(allowed or ())) + " may be given",
-            "the body's documented fields only",
-        )
-    return data

@@ -19,7 +19,8 @@ from service.errors import InputError, NotFoundError
 from service.fhir.outcome import outcome
 from service.fhir.validate import validate_resource
 from service.findings import Finding, Severity
-from service.notes import Principal, known_key
+from service.note_input import known_key
+from service.notes import Principal
 from service.store import repository as repo
 from service.store.tables import FhirResource
 
@@ -139,49 +140,28 @@ def _searchset(
     return fhir_response(bundle)
 
 
-@router.get("/Procedure", responses=responses(200, 422, media=FHIR_JSON))
-def search_procedures(
+Page = Annotated[int, Query(alias="_page", ge=1, le=100_000)]
+Count = Annotated[int, Query(alias="_count", ge=1, le=200)]
+PatientIdentifier = Annotated[str | None, Query(alias="patient:identifier")]
+
+
+def _search(
     request: Request,
-    _who: Reader,
-    patient_identifier: Annotated[str | None, Query(alias="patient:identifier")] = None,
-    date_: Annotated[list[str] | None, Query(alias="date")] = None,
-    page: Annotated[int, Query(alias="_page", ge=1, le=100_000)] = 1,
-    count: Annotated[int, Query(alias="_count", ge=1, le=200)] = 50,
+    kind: str,
+    patient: str | None,
+    dates: list[str],
+    name: str,
+    status: str | None,
+    page: int,
+    count: int,
 ) -> Response:
-    """Procedures by patient identifier and performed date (prefixes ge, le, gt, lt, eq)."""
-    after, before, inc_a, inc_b = _date_range(date_ or [], "date")
+    """One searchset for a type: patient, a date parameter with prefixes, status; paged."""
+    after, before, inc_a, inc_b = _date_range(dates, name)
     with Session(request.app.state.engine) as session:
         total, rows = repo.fhir_search(
             session,
-            "Procedure",
-            patient=_patient(patient_identifier),
-            after=after,
-            before=before,
-            include_after=inc_a,
-            include_before=inc_b,
-            offset=(page - 1) * count,
-            limit=count,
-        )
-    return _searchset(request, "Procedure", total, list(rows), page, count)
-
-
-@router.get("/ServiceRequest", responses=responses(200, 422, media=FHIR_JSON))
-def search_service_requests(
-    request: Request,
-    _who: Reader,
-    status: Annotated[str | None, Query(pattern="^[a-z-]+$")] = None,
-    occurrence: Annotated[list[str] | None, Query()] = None,
-    patient_identifier: Annotated[str | None, Query(alias="patient:identifier")] = None,
-    page: Annotated[int, Query(alias="_page", ge=1, le=100_000)] = 1,
-    count: Annotated[int, Query(alias="_count", ge=1, le=200)] = 50,
-) -> Response:
-    """Follow-up requests by status, target date and patient: what is due."""
-    after, before, inc_a, inc_b = _date_range(occurrence or [], "occurrence")
-    with Session(request.app.state.engine) as session:
-        total, rows = repo.fhir_search(
-            session,
-            "ServiceRequest",
-            patient=_patient(patient_identifier),
+            kind,
+            patient=_patient(patient),
             status=status,
             after=after,
             before=before,
@@ -190,7 +170,43 @@ def search_service_requests(
             offset=(page - 1) * count,
             limit=count,
         )
-    return _searchset(request, "ServiceRequest", total, list(rows), page, count)
+    return _searchset(request, kind, total, list(rows), page, count)
+
+
+@router.get("/Procedure", responses=responses(200, 422, media=FHIR_JSON))
+def search_procedures(
+    request: Request,
+    _who: Reader,
+    patient_identifier: PatientIdentifier = None,
+    date_: Annotated[list[str] | None, Query(alias="date")] = None,
+    page: Page = 1,
+    count: Count = 50,
+) -> Response:
+    """Procedures by patient identifier and performed date (prefixes ge, le, gt, lt, eq)."""
+    return _search(request, "Procedure", patient_identifier, date_ or [], "date", None, page, count)
+
+
+@router.get("/ServiceRequest", responses=responses(200, 422, media=FHIR_JSON))
+def search_service_requests(
+    request: Request,
+    _who: Reader,
+    status: Annotated[str | None, Query(pattern="^[a-z-]+$")] = None,
+    occurrence: Annotated[list[str] | None, Query()] = None,
+    patient_identifier: PatientIdentifier = None,
+    page: Page = 1,
+    count: Count = 50,
+) -> Response:
+    """Follow-up requests by status, target date and patient: what is due."""
+    return _search(
+        request,
+        "ServiceRequest",
+        patient_identifier,
+        occurrence or [],
+        "occurrence",
+        status,
+        page,
+        count,
+    )
 
 
 @router.get("/{kind}/{resource_id}", responses=responses(200, 404, media=FHIR_JSON))

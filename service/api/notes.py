@@ -16,7 +16,8 @@ from service.api.media import json_body, json_response
 from service.delivery import outcome_text
 from service.errors import InputError, NotFoundError
 from service.findings import Finding, Severity
-from service.notes import NoteService, Principal, StoredNote, known_key
+from service.note_input import known_key
+from service.notes import NoteService, Principal, StoredNote
 from service.store import outbox
 from service.store import repository as repo
 
@@ -173,6 +174,17 @@ def delivery_state(
     )
 
 
+async def _change(
+    request: Request, action: str, note_id: str, who: Principal, if_match: str | None
+) -> Response:
+    """An amend or a void: read the body, call the service off the event loop, answer."""
+    body = await json_body(request)
+    service = _service(request)
+    change = service.amend if action == "amend" else service.void
+    stored = await run_in_threadpool(change, note_id, body, who, _if_match(if_match))
+    return json_response(stored.view(), headers=_etag(stored))
+
+
 @router.put("/{note_id}", openapi_extra=AMEND_BODY, responses=responses(200, 404, 409, 412, 422))
 async def amend_note(
     request: Request,
@@ -181,11 +193,7 @@ async def amend_note(
     if_match: Annotated[str | None, Header()] = None,
 ) -> Response:
     """Store an amended version: {"reason": ..., "note": {...}}; a final note needs a reason."""
-    body = await json_body(request)
-    stored = await run_in_threadpool(
-        _service(request).amend, note_id, body, who, _if_match(if_match)
-    )
-    return json_response(stored.view(), headers=_etag(stored))
+    return await _change(request, "amend", note_id, who, if_match)
 
 
 @router.post("/{note_id}/void", openapi_extra=VOID_BODY, responses=responses(200, 404, 412, 422))
@@ -196,8 +204,4 @@ async def void_note(
     if_match: Annotated[str | None, Header()] = None,
 ) -> Response:
     """Mark a note entered-in-error, with a reason; its resources are emitted so."""
-    body = await json_body(request)
-    stored = await run_in_threadpool(
-        _service(request).void, note_id, body, who, _if_match(if_match)
-    )
-    return json_response(stored.view(), headers=_etag(stored))
+    return await _change(request, "void", note_id, who, if_match)
