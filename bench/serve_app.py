@@ -14,21 +14,11 @@ socket carries IPPROTO_TCP, so two workers are measured for their work, not for 
 from __future__ import annotations
 
 import argparse
-import socket
 
 import uvicorn
 from uvicorn.supervisors import Multiprocess
 
-
-class TcpConfig(uvicorn.Config):
-    """uvicorn's Config whose shared socket says it is TCP, so connections get TCP_NODELAY."""
-
-    def bind_socket(self) -> socket.socket:
-        """The socket uvicorn binds, re-wrapped with its real protocol number."""
-        sock = super().bind_socket()
-        if sock.family not in (socket.AF_INET, socket.AF_INET6):
-            return sock
-        return socket.socket(sock.family, sock.type, socket.IPPROTO_TCP, fileno=sock.detach())
+from service.serving import TcpConfig
 
 
 def main() -> None:

@@ -18,12 +18,12 @@ from typing import Annotated, Any
 
 import orjson
 import typer
-import uvicorn
 from rich.progress import Progress
 from sqlalchemy import Engine
 from sqlmodel import Session
 
 from schemas.export import write_schemas
+from service import serving
 from service.assess import Assessor
 from service.config import Settings, effective_policy
 from service.delivery import DeliveryWorker
@@ -473,15 +473,7 @@ def serve(
         _load_demo(settings, engine)
     os.environ["CAPNOTE_MIGRATE_ON_START"] = "false"
     typer.echo(f"capnote serving on http://{host}:{port} (API docs at /docs)")
-    uvicorn.run(
-        "service.app:app_from_environment",
-        factory=True,
-        host=host,
-        port=port,
-        workers=workers,
-        log_level="info",
-        access_log=False,
-    )
+    serving.run("service.app:app_from_environment", host, port, workers)
 
 
 def _load_demo(settings: Settings, engine: Engine) -> None:

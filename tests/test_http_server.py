@@ -46,12 +46,12 @@ def run_cli(database_url: str, *args: str) -> str:
 
 
 @contextmanager
-def server(database_url: str, workdir: Path) -> Iterator[str]:
+def server(database_url: str, workdir: Path, workers: int = 1) -> Iterator[str]:
     """A `capnote serve` process; yields its base URL once /healthz answers."""
     port = free_port()
     log = (workdir / f"server-{port}.log").open("w")
     process = subprocess.Popen(
-        [*CAPNOTE, "serve", "--host", "127.0.0.1", "--port", str(port)],
+        [*CAPNOTE, "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)],
         cwd=workdir,
         stdout=log,
         stderr=subprocess.STDOUT,
@@ -173,3 +173,20 @@ def test_token_commands(database_url: str) -> None:
 def _isolated_cwd(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     # serve's default SQLite file lands in the working directory; keep it out of the repo.
     monkeypatch.chdir(tmp_path)
+
+
+def test_two_workers_share_one_port(database_url: str, tmp_path: Path) -> None:
+    auth = {
+        "authorization": f"Bearer {token(database_url, 'submitter')}",
+        "content-type": "application/json",
+    }
+    with (
+        server(database_url, tmp_path, workers=2) as base,
+        httpx.Client(base_url=base, timeout=30) as http,
+    ):
+        statuses = []
+        for i in range(20):
+            note = routine()
+            note["note_id"]["value"] = f"LN-WORKERS-{i:03d}"
+            statuses.append(http.post("/notes", content=json.dumps(note), headers=auth).status_code)
+        assert statuses == [201] * 20
