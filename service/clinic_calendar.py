@@ -66,15 +66,19 @@ class PolicyCalendar:
             raise PolicyError(f"calendar.timezone {policy.timezone!r} is not an IANA zone") from exc
         public: holidays.HolidayBase | None = None
         if policy.holiday_country:
-            try:
-                public = holidays.country_holidays(
-                    policy.holiday_country, subdiv=policy.holiday_subdivision
-                )
-            except NotImplementedError as exc:
+            # Asked first rather than caught: the package signals an unknown region with a
+            # generic exception type.
+            supported = holidays.list_supported_countries()
+            subdivisions = supported.get(policy.holiday_country)
+            subdivision = policy.holiday_subdivision
+            if subdivisions is None or (
+                subdivision is not None and subdivision not in subdivisions
+            ):
                 raise PolicyError(
                     f"calendar.holiday_country {policy.holiday_country!r} with subdivision "
-                    f"{policy.holiday_subdivision!r} is not known to the holidays package"
-                ) from exc
+                    f"{subdivision!r} is not known to the holidays package"
+                )
+            public = holidays.country_holidays(policy.holiday_country, subdiv=subdivision)
         return cls(zone, policy.working_days, policy.opens, policy.closes, public, policy.closures)
 
     @property
