@@ -9,7 +9,7 @@ is flagged for a person to book by hand.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import date, datetime, timedelta
 from typing import Literal
 
@@ -169,52 +169,18 @@ def _day_item(
 
 
 def _moved(item: DueItem, to: datetime, passed: list[Closure]) -> DueItem:
-    return DueItem(
-        item.kind,
-        item.title,
-        item.earliest,
-        to,
-        item.latest,
-        item.all_day,
-        item.reasons,
-        item.source,
-        moved_from=item.target,
-        passed_over=tuple(passed),
-    )
+    return replace(item, target=to, moved_from=item.target, passed_over=tuple(passed))
 
 
 def _flagged(item: DueItem) -> DueItem:
-    return DueItem(
-        item.kind,
-        item.title,
-        item.earliest,
-        item.target,
-        item.latest,
-        item.all_day,
-        item.reasons,
-        item.source,
-        flag="the clinic is shut for the whole window: book this by hand",
-    )
+    return replace(item, flag="the clinic is shut for the whole window: book this by hand")
 
 
 def _done_by(note: Note, item: DueItem) -> DueItem:
     """Mark a same-day recheck as done when a post-laser reading already lies in its window."""
     for i, reading in enumerate(note.result.iop_after):
         if item.earliest <= reading.measured_at <= item.latest:
-            return DueItem(
-                item.kind,
-                item.title,
-                item.earliest,
-                item.target,
-                item.latest,
-                item.all_day,
-                item.reasons,
-                item.source,
-                item.moved_from,
-                item.passed_over,
-                item.flag,
-                done_by_reading=i,
-            )
+            return replace(item, done_by_reading=i)
     return item
 
 

@@ -95,12 +95,7 @@ class ObservationMaker:
         logmar = acuity_logmar(entered)
         extra: dict[str, Any] = {}
         if logmar is not None:
-            extra["component"] = [
-                {
-                    "code": concept(own("logmar")),
-                    "valueQuantity": quantity(logmar, "logMAR", "{logMAR}"),
-                }
-            ]
+            extra["component"] = [part("logmar", quantity(logmar, "logMAR", "{logMAR}"))]
         return self.make(role, "exam", code, effective, {"valueString": shown}, **extra)
 
 
@@ -128,14 +123,8 @@ def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry
             concept(own("laser-series")),
             start,
             component=[
-                {
-                    "code": concept(own("pulse-energy")),
-                    "valueQuantity": quantity(s.energy_mj, "mJ", "mJ"),
-                },
-                {
-                    "code": concept(own("pulse-count")),
-                    "valueQuantity": quantity(s.pulses, "pulses", "{pulses}"),
-                },
+                part("pulse-energy", quantity(s.energy_mj, "mJ", "mJ")),
+                part("pulse-count", quantity(s.pulses, "pulses", "{pulses}")),
             ],
         )
         for i, s in enumerate(note.laser.series)
@@ -173,10 +162,10 @@ def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry
             {"valueQuantity": quantity(_sig(spot.peak_fluence_j_cm2), "J/cm2", "J/cm2")},
             derivedFrom=from_series,
             component=[
-                {
-                    "code": concept(own("focal-spot-diameter-idealised")),
-                    "valueQuantity": quantity(round(spot.airy_diameter_um, 1), "um", "um"),
-                },
+                part(
+                    "focal-spot-diameter-idealised",
+                    quantity(round(spot.airy_diameter_um, 1), "um", "um"),
+                ),
             ],
             note=[
                 {
@@ -209,14 +198,8 @@ def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry
             concept(own("opening-size")),
             finish,
             component=[
-                {
-                    "code": concept(own("opening-diameter-horizontal")),
-                    "valueQuantity": quantity(opening.horizontal_mm, "mm", "mm"),
-                },
-                {
-                    "code": concept(own("opening-diameter-vertical")),
-                    "valueQuantity": quantity(vertical, "mm", "mm"),
-                },
+                part("opening-diameter-horizontal", quantity(opening.horizontal_mm, "mm", "mm")),
+                part("opening-diameter-vertical", quantity(vertical, "mm", "mm")),
             ],
         )
         out.append(size)
@@ -253,6 +236,11 @@ def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry
     return out
 
 
+def part(code: str, value: dict[str, Any]) -> dict[str, Any]:
+    """An Observation.component: one of our codes with a Quantity."""
+    return {"code": concept(own(code)), "valueQuantity": value}
+
+
 def _cumulative_components(derived: Derived) -> list[dict[str, Any]]:
     c = derived.cumulative
     parts: list[dict[str, Any]] = [
@@ -260,10 +248,7 @@ def _cumulative_components(derived: Derived) -> list[dict[str, Any]]:
     ]
     if c.days_since_last_session is not None:
         parts.append(
-            {
-                "code": concept(own("days-since-last-session")),
-                "valueQuantity": quantity(c.days_since_last_session, "days", "d"),
-            }
+            part("days-since-last-session", quantity(c.days_since_last_session, "days", "d"))
         )
     return parts
 
