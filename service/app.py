@@ -3,35 +3,30 @@
 from __future__ import annotations
 
 import threading
-from collections.abc import AsyncIterator, Awaitable, Callable
+from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from datetime import UTC, datetime
 
-from fastapi import FastAPI, Request
+from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
-from fastapi.responses import Response
 
 from service import __version__
 from service.api import audit, docs, errors, fhir, health, notes, web
 from service.api.guard import Guard
+from service.api.headers import SecurityHeaders
 from service.api.limits import BodyLimit
 from service.assess import Assessor
 from service.config import Settings, effective_policy
 from service.delivery import DeliveryWorker
 from service.notes import Clock, NoteService
 from service.store.database import make_engine, upgrade
+from service.store.ledger import Ledger
 
 DESCRIPTION = (
     "Structured, checked records of Nd:YAG laser posterior capsulotomy sessions, emitted as "
     "FHIR R4. Thresholds are literature defaults, overridable per site; local protocol and "
     "the treating clinician decide. capnote is not a certified medical device."
 )
-_HEADERS = {
-    "X-Content-Type-Options": "nosniff",
-    "Content-Security-Policy": "default-src 'self'; frame-ancestors 'none'",
-    "Referrer-Policy": "no-referrer",
-    "Cache-Control": "no-store",
-}
 
 
 def utc_now() -> datetime:
@@ -47,9 +42,11 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     if settings.migrate_on_start:
         upgrade(engine)
     receiver = settings.receiver()
+    ledger = Ledger(settings.database_url)
 
     @asynccontextmanager
     async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
+        ledger.start_checkpoints()
         # Delivery runs beside the service when forwarding is on; claims in the database keep
         # several processes from sending one entry twice.
         stop = threading.Event()
@@ -63,6 +60,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         if thread is not None and worker is not None:
             thread.join(timeout=10)
             worker.close()
+        ledger.close()
 
     # No /docs or /redoc: both pages load their scripts from a CDN, which the CSP (and many
     # hospital networks) refuse; the OpenAPI document itself is at /openapi.json.
@@ -75,22 +73,16 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         redoc_url=None,
     )
     app.state.engine = engine
-    app.state.notes = NoteService(engine, Assessor(policy), clock, forward=receiver is not None)
+    app.state.ledger = ledger
+    assessor = Assessor(policy, output_check=settings.output_check)
+    app.state.notes = NoteService(engine, ledger, assessor, clock, forward=receiver is not None)
     app.state.settings = settings
     errors.install(app)
     docs.install(app)
     for router in (health.router, notes.router, fhir.router, audit.router, web.router):
         app.include_router(router)
 
-    @app.middleware("http")
-    async def security_headers(
-        request: Request, call_next: Callable[[Request], Awaitable[Response]]
-    ) -> Response:
-        response = await call_next(request)
-        for name, value in _HEADERS.items():
-            response.headers.setdefault(name, value)
-        return response
-
+    app.add_middleware(SecurityHeaders)
     if settings.cors_origins:
         app.add_middleware(
             CORSMiddleware,

@@ -14,7 +14,7 @@ from typing import Any
 from schemas.note import Note
 from service.clinic_calendar import ClinicCalendar, PolicyCalendar
 from service.derive import Derived, PriorSession, derive
-from service.fhir.bundle import bundle
+from service.fhir.bundle import OutputCheck, emit
 from service.fhir.common import Version
 from service.findings import Finding, has_errors
 from service.policy.model import Policy
@@ -31,6 +31,8 @@ class Assessment:
     derived: Derived | None = None
     due: tuple[DueItem, ...] = ()
     bundle: dict[str, Any] | None = None
+    # Each Bundle entry's role, in entry order (see service.fhir.common.Emitted).
+    roles: tuple[str, ...] = ()
 
     @property
     def accepted(self) -> bool:
@@ -41,9 +43,15 @@ class Assessment:
 class Assessor:
     """Holds the policy and calendar so that many notes share one set-up."""
 
-    def __init__(self, policy: Policy, calendar: ClinicCalendar | None = None) -> None:
+    def __init__(
+        self,
+        policy: Policy,
+        calendar: ClinicCalendar | None = None,
+        output_check: OutputCheck = OutputCheck.BINDINGS,
+    ) -> None:
         self.policy = policy
         self.calendar = calendar or PolicyCalendar.from_policy(policy.calendar)
+        self.output_check = output_check
 
     def assess(
         self,
@@ -67,5 +75,5 @@ class Assessor:
         """Derive, schedule and emit for a note that passed its checks."""
         derived = derive(note, self.policy, prior)
         due = schedule(note, derived, self.policy, self.calendar)
-        emitted = bundle(note, derived, due, version)
-        return Assessment(note, findings, derived, tuple(due), emitted)
+        emitted = emit(note, derived, due, version, self.output_check)
+        return Assessment(note, findings, derived, tuple(due), emitted.bundle, emitted.roles)

@@ -6,6 +6,7 @@ error; 3 an unexpected failure (a generic message with an incident id, never a t
 
 from __future__ import annotations
 
+import asyncio
 import logging
 import os
 import signal
@@ -487,8 +488,15 @@ def _load_demo(settings: Settings, engine: Engine) -> None:
         raise typer.BadParameter(
             f"no demo notes in {DEMO_NOTES}; run from a checkout", param_hint="--demo"
         )
-    for path in demo:
-        notes.submit(path.read_bytes(), who)
+
+    async def load() -> None:
+        for path in demo:
+            await notes.submit(path.read_bytes(), who)
+
+    try:
+        asyncio.run(load())
+    finally:
+        notes.ledger.close()
     with Session(engine) as session:
         token, _row = repository.new_token(session, "clinician", "demo", datetime.now(UTC))
         session.commit()

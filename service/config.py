@@ -10,6 +10,7 @@ from pathlib import Path
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from service.delivery import Receiver
+from service.fhir.bundle import OutputCheck
 from service.policy import Policy, load_policy
 
 
@@ -36,6 +37,9 @@ class Settings(BaseSettings):
     forward_timeout_s: float = 30.0
     # Run a delivery loop inside each service process; off when `capnote deliver` runs alone.
     deliver_in_service: bool = True
+    # How each emitted Bundle is checked before it leaves: "bindings" (required code
+    # bindings; the default) or "r4b" (also the whole Bundle through the R4B models).
+    output_check: OutputCheck = OutputCheck.BINDINGS
 
     def receiver(self) -> Receiver | None:
         """The forwarding target, when one is configured."""

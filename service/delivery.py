@@ -144,7 +144,7 @@ class DeliveryWorker:
                 self._deliver(session, entry.id, entry.attempts, outbox.bundle_of(session, entry))
         return len(entries)
 
-    def _deliver(self, session: Session, entry_id: int, attempts: int, bundle: str) -> None:
+    def _deliver(self, session: Session, entry_id: int, attempts: int, bundle: bytes) -> None:
         now = self.clock()
         try:
             headers = {"Content-Type": FHIR_JSON, "Accept": FHIR_JSON, **self.credentials.header()}

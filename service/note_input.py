@@ -13,7 +13,6 @@ import orjson
 
 from service.errors import InputError, NotFoundError, PreconditionError
 from service.findings import Finding, Severity
-from service.store.tables import NoteVersion
 
 
 def known_key(key: str) -> str:
@@ -33,12 +32,10 @@ def problem(code: str, location: str, message: str, rule: str) -> InputError:
     return InputError(message, [finding])
 
 
-def check_match(latest: NoteVersion, if_match: int | None) -> None:
+def check_match(latest: int, if_match: int | None) -> None:
     """412 when If-Match names a version other than the latest."""
-    if if_match is not None and if_match != latest.version:
-        raise PreconditionError(
-            f"If-Match names version {if_match} but the latest is {latest.version}"
-        )
+    if if_match is not None and if_match != latest:
+        raise PreconditionError(f"If-Match names version {if_match} but the latest is {latest}")
 
 
 REASON_MAX = 500

@@ -3,34 +3,43 @@
 Idempotency and uniqueness rest on the database: the note key is derived from the sender's
 note identifier, and (note key, version) is unique, so two processes racing to store the same
 note make one row and the loser reads the winner's.
+
+The methods are coroutines because the store's calls are (service.store.ledger); the
+clinical work between them (checks, derived values, schedule, Bundle) is plain computation
+and runs where it is called.
 """
 
 from __future__ import annotations
 
 import hashlib
-import threading
 from collections.abc import Callable, Sequence
-from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
 import orjson
 from sqlalchemy import Engine
-from sqlalchemy.exc import IntegrityError
 from sqlmodel import Session
 
 from schemas.note import Note
 from service.assess import Assessment, Assessor
 from service.derive import PriorSession
 from service.errors import ConflictError, InputError, NotFoundError, PreconditionError
-from service.fhir.common import Version, stable_uuid
+from service.fhir.common import Emitted, Version, stable_uuid
+from service.fhir.readmodel import read_references, searchables
 from service.findings import Finding, has_errors
 from service.note_input import check_match, json_object, known_key, problem, reason_text
 from service.rules import Context, check_payload
-from service.store import outbox
 from service.store import repository as repo
-from service.store.tables import NoteVersion
+from service.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
+from service.store.ledger import (
+    AuditRow,
+    DuplicateVersionError,
+    IndexRow,
+    Ledger,
+    NewVersion,
+    VersionRow,
+)
 from service.views import assessment_view
 
 Clock = Callable[[], datetime]
@@ -47,7 +56,11 @@ class Principal:
 
 @dataclass(frozen=True, slots=True)
 class StoredNote:
-    """One stored note version as the API shows it."""
+    """One stored note version as the API shows it.
+
+    The note and the Bundle are kept as the JSON text they are stored as, so an answer
+    embeds them without parsing and serialising them again.
+    """
 
     key: str
     version: int
@@ -55,22 +68,32 @@ class StoredNote:
     recorded_at: datetime
     recorded_by: str
     reason: str | None
-    note: dict[str, Any]
+    note_json: str
     result: dict[str, Any]
-    bundle: dict[str, Any]
+    bundle_json: bytes
+    # Where each Bundle entry is read on the FHIR API ("Observation/<id>"), in entry order.
+    resources: tuple[str, ...]
+
+    def json(self) -> bytes:
+        """The JSON body for this version."""
+        return orjson.dumps(
+            {
+                "id": self.key,
+                "version": self.version,
+                "status": self.status,
+                "recorded_at": self.recorded_at.isoformat(),
+                "reason": self.reason,
+                "note": orjson.Fragment(self.note_json),
+                **self.result,
+                "resources": self.resources,
+                "bundle": orjson.Fragment(self.bundle_json),
+            }
+        )
 
     def view(self) -> dict[str, Any]:
-        """The JSON body for this version."""
-        return {
-            "id": self.key,
-            "version": self.version,
-            "status": self.status,
-            "recorded_at": self.recorded_at.isoformat(),
-            "reason": self.reason,
-            "note": self.note,
-            **self.result,
-            "bundle": self.bundle,
-        }
+        """The same body as data."""
+        data: dict[str, Any] = orjson.loads(self.json())
+        return data
 
 
 def note_key(note: Note) -> str:
@@ -78,62 +101,53 @@ def note_key(note: Note) -> str:
     return stable_uuid(note, "procedure")
 
 
-def content_hash(note: Note) -> str:
-    """A digest of the note's content, to tell a resend from a change."""
-    return hashlib.sha256(note.model_dump_json().encode()).hexdigest()
+def content_hash(note_json: str) -> str:
+    """A digest of a note's stored JSON (absent and null fields alike), to tell a resend from
+    a change."""
+    return hashlib.sha256(note_json.encode()).hexdigest()
 
 
-def _stored(row: NoteVersion) -> StoredNote:
+def _stored(row: VersionRow) -> StoredNote:
     return StoredNote(
         key=row.note_key,
         version=row.version,
         status=row.status,
-        recorded_at=repo.from_db(row.recorded_at),
+        recorded_at=row.recorded_at,
         recorded_by=row.recorded_by,
         reason=row.reason,
-        note=orjson.loads(row.note_json),
+        note_json=row.note_json,
         result=orjson.loads(row.result_json),
-        bundle=orjson.loads(row.bundle_json),
+        bundle_json=unpack_bundle(row.bundle),
+        resources=read_references(row.note_key, unpack_roles(row.roles)),
     )
 
 
-def _read_copies(bundle: dict[str, Any], version: int, at: datetime) -> list[dict[str, Any]]:
-    """The Bundle's resources as the read API serves them: with id and meta."""
-    out = []
-    for entry in bundle["entry"]:
-        resource = entry["resource"]
-        key = entry["fullUrl"].removeprefix("urn:uuid:")
-        meta = {"versionId": str(version), "lastUpdated": at.isoformat()}
-        out.append(
-            {
-                "resourceType": resource["resourceType"],
-                "id": key,
-                "meta": meta,
-                **{k: v for k, v in resource.items() if k != "resourceType"},
-            }
-        )
-    return out
+def emitted_before(row: VersionRow) -> Emitted:
+    """What a stored version emitted: its Bundle and the roles of its entries."""
+    roles = tuple(role for _kind, role in unpack_roles(row.roles))
+    return Emitted(orjson.loads(unpack_bundle(row.bundle)), roles)
 
 
 class NoteService:
     """The note lifecycle over one store."""
 
     def __init__(
-        self, engine: Engine, assessor: Assessor, clock: Clock, *, forward: bool = False
+        self,
+        engine: Engine,
+        ledger: Ledger,
+        assessor: Assessor,
+        clock: Clock,
+        *,
+        forward: bool = False,
     ) -> None:
+        # The engine serves listings (SQLAlchemy sessions); the ledger everything a single
+        # note needs, submissions first.
         self.engine = engine
+        self.ledger = ledger
         self.assessor = assessor
         self.clock = clock
         # With forwarding on, every stored version gets an outbox entry in its own transaction.
         self.forward = forward
-        # SQLite has one writer at a time, and a writer that finds the database locked sleeps
-        # in steps of up to 100 ms (its busy handler) although the lock is held for about a
-        # millisecond: under concurrent submissions the threads of one process then spend
-        # their time asleep. They queue here instead and wake as soon as the writer commits;
-        # other processes still meet the busy handler. PostgreSQL locks rows, not the file.
-        self._write_turn: AbstractContextManager[object] = (
-            threading.Lock() if engine.dialect.name == "sqlite" else nullcontext()
-        )
 
     # -- checking --------------------------------------------------------------------------
 
@@ -143,153 +157,140 @@ class NoteService:
             raise InputError("the note has errors", findings)
         return note, findings
 
-    def _priors(self, session: Session, note: Note, key: str) -> list[PriorSession]:
-        rows = repo.earlier_sessions(
-            session, (note.patient.system, note.patient.value), note.eye, note.started_at, key
+    async def _priors(self, note: Note, key: str) -> list[PriorSession]:
+        rows = await self.ledger.earlier_sessions(
+            key, (note.patient.system, note.patient.value), note.eye, note.started_at
         )
         return [PriorSession(r.started_at, r.total_energy_mj) for r in rows]
 
-    def check(self, payload: bytes) -> dict[str, Any]:
+    async def check(self, payload: bytes) -> dict[str, Any]:
         """Everything a submission would produce, stored nowhere."""
         note, findings = check_payload(payload, Context(self.assessor.policy, self.clock()))
         if note is None or has_errors(findings):
             return {**assessment_view(Assessment(note, findings)), "bundle": None}
-        with Session(self.engine) as session:
-            prior = self._priors(session, note, note_key(note))
-        result = self.assessor.complete(note, findings, prior)
-        return {"id": note_key(note), **assessment_view(result), "bundle": result.bundle}
+        key = note_key(note)
+        result = self.assessor.complete(note, findings, await self._priors(note, key))
+        return {"id": key, **assessment_view(result), "bundle": result.bundle}
 
     # -- writing ---------------------------------------------------------------------------
 
-    def _write(
+    def prepare(
         self,
-        session: Session,
         note: Note,
+        note_json: str,
         findings: list[Finding],
+        prior: Sequence[PriorSession],
         emitted: Version,
         status: str,
         reason: str | None,
         who: Principal,
         action: str,
-        digest: str | None = None,
-    ) -> StoredNote:
+    ) -> tuple[NewVersion, StoredNote]:
+        """Everything a version stores (derived values, schedule, Bundle, search rows, audit
+        entry) and the answer that goes with it; nothing is written yet."""
         key = note_key(note)
         now = self.clock()
-        version = emitted.number
-        result = self.assessor.complete(note, findings, self._priors(session, note, key), emitted)
+        result = self.assessor.complete(note, findings, prior, emitted)
         if result.bundle is None or result.derived is None:  # complete() always sets both
             raise RuntimeError("assessment of a checked note came back incomplete")
-        note_json = note.model_dump_json(exclude_none=True)
-        result_json = orjson.dumps(assessment_view(result))
+        view = assessment_view(result)
         bundle_json = orjson.dumps(result.bundle)
-        recorded_at = repo.to_db(now)
-        # Column values and Core inserts, not ORM objects: building, flushing and refreshing
-        # a NoteVersion and its FhirResources was most of a submission's time. Everything
-        # above is done before the first write, so the write lock is held for the writes only.
-        values = {
-            "note_key": key,
-            "version": version,
-            "sender_system": note.note_id.system,
-            "sender_value": note.note_id.value,
-            "patient_system": note.patient.system,
-            "patient_value": note.patient.value,
-            "eye": note.eye,
-            "started_at": repo.to_db(note.started_at),
-            "status": status,
-            "total_energy_mj": result.derived.total_energy_mj,
-            "content_hash": digest or content_hash(note),
-            "note_json": note_json,
-            "result_json": result_json.decode(),
-            "bundle_json": bundle_json.decode(),
-            "reason": reason,
-            "recorded_at": recorded_at,
-            "recorded_by": who.label,
-        }
-        copies = _read_copies(result.bundle, version, now)
-        with self._write_turn:
-            repo.insert_version(session, values, copies, (note.patient.system, note.patient.value))
-            if self.forward:
-                outbox.enqueue(session, key, version, now)
-            self._audit(session, who, action, key, version, "ok")
-            session.commit()
-        # What a re-read of the row would give (the store keeps these texts verbatim).
-        return StoredNote(
-            key=key,
-            version=version,
+        kinds = [e["resource"]["resourceType"] for e in result.bundle["entry"]]
+        row = VersionRow(
+            note_key=key,
+            version=emitted.number,
+            sender_system=note.note_id.system,
+            sender_value=note.note_id.value,
+            patient_system=note.patient.system,
+            patient_value=note.patient.value,
+            eye=note.eye,
+            started_at=note.started_at,
             status=status,
-            recorded_at=repo.from_db(recorded_at),
+            total_energy_mj=result.derived.total_energy_mj,
+            content_hash=content_hash(note_json),
+            note_json=note_json,
+            result_json=orjson.dumps(view).decode(),
+            bundle=pack_bundle(bundle_json),
+            roles=pack_roles(kinds, result.roles),
+            reason=reason,
+            recorded_at=now,
+            recorded_by=who.label,
+        )
+        index = tuple(
+            IndexRow(s.role, s.resource_type, s.status, s.date)
+            for s in searchables(result.bundle, result.roles)
+        )
+        audit = AuditRow(now, who.label, who.role, action, who.remote)
+        stored = StoredNote(
+            key=key,
+            version=row.version,
+            status=status,
+            recorded_at=now,
             recorded_by=who.label,
             reason=reason,
-            note=orjson.loads(note_json),
-            result=orjson.loads(result_json),
-            bundle=orjson.loads(bundle_json),
+            note_json=note_json,
+            result=view,
+            bundle_json=bundle_json,
+            resources=read_references(key, tuple(zip(kinds, result.roles, strict=True))),
         )
+        return NewVersion(row, index, audit), stored
 
-    def _audit(
+    async def _write(
         self,
-        session: Session,
+        note: Note,
+        note_json: str,
+        findings: list[Finding],
+        prior: Sequence[PriorSession],
+        emitted: Version,
+        status: str,
+        reason: str | None,
         who: Principal,
         action: str,
-        key: str | None,
-        version: int | None,
-        outcome: str,
-    ) -> None:
-        repo.insert_audit(
-            session,
-            {
-                "at": repo.to_db(self.clock()),
-                "actor": who.label,
-                "role": who.role,
-                "action": action,
-                "note_key": key,
-                "version": version,
-                "remote": who.remote,
-                "outcome": outcome,
-            },
+    ) -> StoredNote:
+        new, stored = self.prepare(
+            note, note_json, findings, prior, emitted, status, reason, who, action
         )
+        await self.ledger.write_many([new], forward=self.forward)
+        return stored
 
-    def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredNote]:
+    async def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredNote]:
         """Store a new note; (False, stored) when the same note was already there."""
         note, findings = self._checked(payload)
-        key, digest = note_key(note), content_hash(note)
-        with Session(self.engine) as session:
-            known = self._same_content(session, key, digest)
-            if known is not None:
-                return False, known
-            try:
-                return True, self._write(
-                    session, note, findings, Version(1), note.status, None, who, "create", digest
-                )
-            except IntegrityError:
-                session.rollback()
-        # Another request stored this note between our read and our write.
-        with Session(self.engine) as session:
-            known = self._same_content(session, key, digest)
-            if known is not None:
-                return False, known
-            raise self._conflict(key)
+        note_json = note.model_dump_json(exclude_none=True)
+        key, digest = note_key(note), content_hash(note_json)
+        patient = (note.patient.system, note.patient.value)
+        # One call for both reads: on PostgreSQL that is one trip to the server.
+        digests, earlier = await self.ledger.before_write(key, patient, note.eye, note.started_at)
+        if digests:
+            return False, await self._resent(key, digest, digests)
+        prior = [PriorSession(r.started_at, r.total_energy_mj) for r in earlier]
+        try:
+            stored = await self._write(
+                note, note_json, findings, prior, Version(1), note.status, None, who, "create"
+            )
+        except DuplicateVersionError:
+            # Another request stored this note between our read and our write.
+            digests, _earlier = await self.ledger.before_write(
+                key, patient, note.eye, note.started_at
+            )
+            return False, await self._resent(key, digest, digests)
+        return True, stored
 
-    def _same_content(self, session: Session, key: str, digest: str) -> StoredNote | None:
+    async def _resent(self, key: str, digest: str, digests: list[str]) -> StoredNote:
         """For a resend: the record as it stands now when any stored version has this content;
-        None when the note is new; a conflict when it is stored with other content."""
-        # Digests first: a new note, the common case, then costs one narrow query.
-        digests = repo.content_hashes(session, key)
-        if not digests:
-            return None
+        a conflict when the note is stored with other content."""
         if digest in digests:
-            latest = repo.latest_version(session, key)
+            latest = await self.ledger.latest(key)
             if latest is not None:  # rows are never deleted: it is there
                 return _stored(latest)
-        raise self._conflict(key)
-
-    @staticmethod
-    def _conflict(key: str) -> ConflictError:
-        return ConflictError(
+        raise ConflictError(
             f"a note with this identifier is already stored with different content; "
             f"amend it with PUT /notes/{key}"
         )
 
-    def amend(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
+    async def amend(
+        self, key: str, body: bytes, who: Principal, if_match: int | None
+    ) -> StoredNote:
         """Store a new version of a note; a signed note needs a reason and stays signed."""
         key = known_key(key)
         wrapper = json_object(body, allowed={"note", "reason"})
@@ -309,95 +310,94 @@ class NoteService:
                 "the note's identifier belongs to another note",
                 "an amendment keeps the note identifier",
             )
-        with Session(self.engine) as session:
-            latest = self._latest(session, key)
-            if latest.content_hash == content_hash(note) and latest.status != "void":
-                return _stored(latest)  # a retry of an amendment that already landed
-            check_match(latest, if_match)
-            if latest.status == "void":
-                raise ConflictError("the note was voided; it cannot be amended")
-            if latest.status == "final" and not reason:
-                raise problem(
-                    "missing-field",
-                    "reason",
-                    "amending a signed note needs a reason",
-                    "a final note is amended only with a reason",
-                )
-            if latest.status == "final" and note.status == "draft":
-                raise problem(
-                    "status-regression",
-                    "note.status",
-                    "a signed note cannot go back to draft",
-                    "once final, later versions are final",
-                )
-            emitted = Version(
-                latest.version + 1,
-                amends_final=latest.status == "final",
-                previous=orjson.loads(latest.bundle_json),
+        note_json = note.model_dump_json(exclude_none=True)
+        latest = await self._latest(key)
+        if latest.content_hash == content_hash(note_json) and latest.status != "void":
+            return _stored(latest)  # a retry of an amendment that already landed
+        check_match(latest.version, if_match)
+        if latest.status == "void":
+            raise ConflictError("the note was voided; it cannot be amended")
+        if latest.status == "final" and not reason:
+            raise problem(
+                "missing-field",
+                "reason",
+                "amending a signed note needs a reason",
+                "a final note is amended only with a reason",
             )
-            try:
-                return self._write(
-                    session, note, findings, emitted, note.status, reason, who, "amend"
-                )
-            except IntegrityError as exc:
-                raise PreconditionError("the note changed meanwhile; read it and retry") from exc
+        if latest.status == "final" and note.status == "draft":
+            raise problem(
+                "status-regression",
+                "note.status",
+                "a signed note cannot go back to draft",
+                "once final, later versions are final",
+            )
+        emitted = Version(
+            latest.version + 1,
+            amends_final=latest.status == "final",
+            previous=emitted_before(latest),
+        )
+        prior = await self._priors(note, key)
+        try:
+            return await self._write(
+                note, note_json, findings, prior, emitted, note.status, reason, who, "amend"
+            )
+        except DuplicateVersionError as exc:
+            raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
-    def void(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
+    async def void(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
         """Mark a note entered-in-error: a new version whose resources say so."""
         key = known_key(key)
         reason = reason_text(json_object(body, allowed={"reason"}).get("reason"), required=True)
-        with Session(self.engine) as session:
-            latest = self._latest(session, key)
-            if latest.status == "void":
-                return _stored(latest)  # voided already (a retry, or someone else did)
-            check_match(latest, if_match)
-            note = Note.model_validate_json(latest.note_json)
-            emitted = Version(
-                latest.version + 1, voided=True, amends_final=latest.status == "final"
+        latest = await self._latest(key)
+        if latest.status == "void":
+            return _stored(latest)  # voided already (a retry, or someone else did)
+        check_match(latest.version, if_match)
+        note = Note.model_validate_json(latest.note_json)
+        emitted = Version(latest.version + 1, voided=True, amends_final=latest.status == "final")
+        prior = await self._priors(note, key)
+        try:
+            return await self._write(
+                note, latest.note_json, [], prior, emitted, "void", reason, who, "void"
             )
-            try:
-                return self._write(session, note, [], emitted, "void", reason, who, "void")
-            except IntegrityError as exc:
-                raise PreconditionError("the note changed meanwhile; read it and retry") from exc
+        except DuplicateVersionError as exc:
+            raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
-    def _latest(self, session: Session, key: str) -> NoteVersion:
-        latest = repo.latest_version(session, key)
+    async def _latest(self, key: str) -> VersionRow:
+        latest = await self.ledger.latest(key)
         if latest is None:
             raise NotFoundError("no note with this id")
         return latest
 
     # -- reading ---------------------------------------------------------------------------
 
-    def get(self, key: str, version: int | None = None) -> StoredNote:
+    async def get(self, key: str, version: int | None = None) -> StoredNote:
         """The latest version, or the one asked for."""
         key = known_key(key)
-        with Session(self.engine) as session:
-            row = (
-                repo.latest_version(session, key)
-                if version is None
-                else repo.note_version(session, key, version)
-            )
-            if row is None:
-                raise NotFoundError("no such note or version")
-            return _stored(row)
+        row = (
+            await self.ledger.latest(key)
+            if version is None
+            else await self.ledger.version(key, version)
+        )
+        if row is None:
+            raise NotFoundError("no such note or version")
+        return _stored(row)
 
-    def versions(self, key: str) -> list[dict[str, Any]]:
+    async def versions(self, key: str) -> list[dict[str, Any]]:
         """Every version's summary, oldest first."""
         key = known_key(key)
-        with Session(self.engine) as session:
-            rows = repo.all_versions(session, key)
-            if not rows:
-                raise NotFoundError("no note with this id")
-            return [
-                {
-                    "version": r.version,
-                    "status": r.status,
-                    "reason": r.reason,
-                    "recorded_at": repo.from_db(r.recorded_at).isoformat(),
-                    "recorded_by": r.recorded_by,
-                }
-                for r in rows
-            ]
+        rows = await self.ledger.versions(key)
+        if not rows:
+            raise NotFoundError("no note with this id")
+        return [
+            {
+                "version": r.version,
+                "status": r.status,
+                "reason": r.reason,
+                "recorded_at": r.recorded_at.isoformat(),
+                "recorded_by": r.recorded_by,
+            }
+            for r in rows
+        ]
 
     def search(
         self,
@@ -411,4 +411,4 @@ class NoteService:
         """The latest version of each matching note, in session order."""
         with Session(self.engine) as session:
             total, rows = repo.latest_per_note(session, patient, eye, start, end, offset, limit)
-            return total, [_stored(r) for r in rows]
+            return total, [_stored(repo.version_row(r)) for r in rows]

@@ -49,20 +49,61 @@ def test_capability_statement_is_valid_r4_and_truthful(api: Api) -> None:
 
 def test_read_every_stored_resource_and_its_history(api: Api) -> None:
     stored = load_demo(api)["right-routine"]
-    for entry in stored["bundle"]["entry"]:
-        kind = entry["resource"]["resourceType"]
-        rid = entry["fullUrl"].removeprefix("urn:uuid:")
-        r = fhir(api, f"/fhir/{kind}/{rid}")
+    # The answer says where each Bundle entry is read, in entry order.
+    assert len(stored["resources"]) == len(stored["bundle"]["entry"])
+    for entry, where in zip(stored["bundle"]["entry"], stored["resources"], strict=True):
+        kind, rid = where.split("/")
+        assert kind == entry["resource"]["resourceType"]
+        r = fhir(api, f"/fhir/{where}")
         assert r.status_code == 200
         resource = r.json()
         assert resource["id"] == rid
         assert resource["meta"]["versionId"] == "1"
+        # The same resource as emitted, with the same identifiers ...
+        assert resource["identifier"] == entry["resource"]["identifier"]
+        assert resource["status"] == entry["resource"]["status"]
         assert r4_problems(resource) == []
-    proc_id = stored["bundle"]["entry"][0]["fullUrl"].removeprefix("urn:uuid:")
+        # ... and its references within the Bundle readable here (FHIR R4 3.2.0.4:
+        # relative references resolve against the server's base).
+        for ref in _references(resource):
+            assert not ref.startswith("urn:uuid:")
+            assert fhir(api, f"/fhir/{ref}").status_code == 200
+    assert stored["resources"][0] == f"Procedure/{stored['id']}"
+    proc_id = stored["id"]
     history = fhir(api, f"/fhir/Procedure/{proc_id}/_history").json()
     assert history["type"] == "history"
     assert history["total"] == 1
     assert r4_problems(history) == []
+
+
+def _references(node: Any) -> list[str]:
+    if isinstance(node, dict):
+        found = [node["reference"]] if isinstance(node.get("reference"), str) else []
+        return found + [r for value in node.values() for r in _references(value)]
+    if isinstance(node, list):
+        return [r for value in node for r in _references(value)]
+    return []
+
+
+@pytest.mark.parametrize(
+    "resource_id",
+    [
+        "x",
+        "00000000-0000-0000-0000-000000000000-",
+        "00000000-0000-0000-0000-000000000000-A",
+        "1" * 80,
+    ],
+)
+def test_ids_that_cannot_name_a_resource_are_not_found(api: Api, resource_id: str) -> None:
+    assert fhir(api, f"/fhir/Observation/{resource_id}").status_code == 404
+
+
+def test_a_resource_read_as_another_type_is_not_found(api: Api) -> None:
+    stored = load_demo(api)["right-routine"]
+    observation = next(r for r in stored["resources"] if r.startswith("Observation/"))
+    assert (
+        fhir(api, observation.replace("Observation/", "/fhir/ServiceRequest/")).status_code == 404
+    )
 
 
 def test_amendment_raises_the_version_id_and_keeps_history(api: Api) -> None:

@@ -219,9 +219,14 @@ def test_database_down_answers_503_with_retry_after(api: Api) -> None:
     app.state.engine.dispose()
     from sqlalchemy import create_engine
 
-    dead = create_engine("postgresql+psycopg://nobody@127.0.0.1:1/none", pool_pre_ping=False)
+    from service.store.ledger import Ledger
+
+    nowhere = "postgresql+psycopg://nobody@127.0.0.1:1/none"
+    dead = create_engine(nowhere, pool_pre_ping=False)
+    dead_ledger = Ledger(nowhere)
     app.state.engine = dead
     app.state.notes.engine = dead
+    app.state.ledger = app.state.notes.ledger = dead_ledger
     try:
         for r in (
             api.client.get("/readyz"),
@@ -234,6 +239,7 @@ def test_database_down_answers_503_with_retry_after(api: Api) -> None:
         assert ready.headers["retry-after"]
     finally:
         dead.dispose()
+        dead_ledger.close()
 
 
 def test_a_real_server_logs_no_traceback_for_an_unexpected_error(

@@ -3,6 +3,7 @@ however the receiver fails, on both databases."""
 
 from __future__ import annotations
 
+import asyncio
 import json
 import threading
 from collections import Counter
@@ -21,6 +22,7 @@ from service.notes import NoteService, Principal
 from service.policy import load_policy
 from service.store import outbox
 from service.store.database import make_engine, upgrade
+from service.store.ledger import Ledger
 from tests.conftest import NOW, routine
 from tests.fhir_receiver import Store, running
 
@@ -42,8 +44,10 @@ def setup(database_url: str) -> Iterator[tuple[NoteService, Any, Clock]]:
     engine = make_engine(database_url)
     upgrade(engine)
     clock = Clock()
-    service = NoteService(engine, Assessor(load_policy()), clock, forward=True)
+    ledger = Ledger(database_url)
+    service = NoteService(engine, ledger, Assessor(load_policy()), clock, forward=True)
     yield service, engine, clock
+    ledger.close()
     engine.dispose()
 
 
@@ -89,7 +93,7 @@ def worker_for(engine: Any, url: str, clock: Clock, timeout_s: float = 1.0) -> D
 def test_every_bundle_arrives_exactly_once_despite_failures(setup: Any) -> None:
     service, engine, clock = setup
     for body in notes(6):
-        service.submit(body, WHO)
+        asyncio.run(service.submit(body, WHO))
     receiver = Store()
     receiver.faults = ["500-before", "500-after", "late", "429", "500-after", "late"]
     with running(receiver, late_s=2.0) as url:
@@ -104,7 +108,7 @@ def test_every_bundle_arrives_exactly_once_despite_failures(setup: Any) -> None:
 
 def test_a_refusal_is_parked_with_the_receivers_answer(setup: Any) -> None:
     service, engine, clock = setup
-    service.submit(notes(1)[0], WHO)
+    asyncio.run(service.submit(notes(1)[0], WHO))
     receiver = Store()
     receiver.faults = ["400"]
     with running(receiver) as url:
@@ -121,16 +125,15 @@ def test_a_refusal_is_parked_with_the_receivers_answer(setup: Any) -> None:
 
 def test_an_amendment_updates_what_the_receiver_holds(setup: Any) -> None:
     service, engine, clock = setup
-    _, stored = service.submit(notes(1)[0], WHO)
+    _, stored = asyncio.run(service.submit(notes(1)[0], WHO))
     receiver = Store()
     with running(receiver) as url:
         worker = worker_for(engine, url, clock)
         drain(worker, clock, rounds=2)
         changed = json.loads(notes(1)[0])
         changed["result"]["opening"]["horizontal_mm"] = 4.0
-        service.amend(
-            stored.key, json.dumps({"reason": "re-measured", "note": changed}).encode(), WHO, None
-        )
+        body = json.dumps({"reason": "re-measured", "note": changed}).encode()
+        asyncio.run(service.amend(stored.key, body, WHO, None))
         drain(worker, clock, rounds=2)
         worker.client.close()
     assert states(engine) == Counter({"delivered": 2})
@@ -142,7 +145,7 @@ def test_an_amendment_updates_what_the_receiver_holds(setup: Any) -> None:
 def test_two_workers_never_deliver_one_entry_twice(setup: Any) -> None:
     service, engine, clock = setup
     for body in notes(10):
-        service.submit(body, WHO)
+        asyncio.run(service.submit(body, WHO))
     receiver = Store()
     with running(receiver) as url:
         workers = [worker_for(engine, url, clock, timeout_s=10) for _ in range(2)]
@@ -160,7 +163,7 @@ def test_two_workers_never_deliver_one_entry_twice(setup: Any) -> None:
 def test_each_note_version_has_exactly_one_outbox_entry(setup: Any) -> None:
     service, engine, _clock = setup
     for body in notes(3):
-        service.submit(body, WHO)
+        asyncio.run(service.submit(body, WHO))
     with engine.connect() as connection:
         orphans = connection.execute(
             text(
@@ -216,7 +219,7 @@ def test_operator_commands_deliver_list_retry_park(setup: Any, database_url: str
     from tests.conftest import ROOT
 
     service, _engine, _clock = setup
-    service.submit(notes(1)[0], WHO)
+    asyncio.run(service.submit(notes(1)[0], WHO))
     receiver = Store()
     receiver.faults = ["400"]
     with running(receiver) as url:

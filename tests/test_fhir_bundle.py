@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import copy
 import json
+import uuid
 from pathlib import Path
 from typing import Any
 from urllib.parse import unquote
@@ -11,8 +13,11 @@ import pytest
 from fhir.resources.R4B.bundle import Bundle
 from ucumvert import get_ucum_parser
 
+from schemas.note import Note
 from service.assess import Assessment, Assessor
-from service.fhir.codes import LOINC, SNOMED, UCUM
+from service.fhir import codes
+from service.fhir.codes import CANONICAL, LOINC, SNOMED, UCUM
+from service.fhir.common import stable_uuid
 from tests.conftest import NOW, VALID, routine
 from tests.fhir_r4_check import r4_problems
 
@@ -246,3 +251,24 @@ def test_observation_categories_are_in_the_core_code_system(assessor: Assessor) 
     used = {c["code"] for o in resources(bundle, "Observation") for c in o["category"][0]["coding"]}
     assert used == {"exam", "procedure"}
     assert used <= codes
+
+
+@pytest.mark.parametrize("role", ["procedure", "iop-after-0", "due-review", "bundle", "x" * 40])
+def test_stable_keys_are_rfc_4122_version_5_uuids(role: str) -> None:
+    # Python's uuid.uuid5 (RFC 4122 section 4.3): the independent reference for the
+    # hand-rolled key maker, which hashes the shared prefix once per note.
+    note = Note.model_validate_json(json.dumps(routine()))
+    name = f"{note.note_id.system}|{note.note_id.value}|{role}"
+    expected = uuid.uuid5(uuid.uuid5(uuid.NAMESPACE_URL, CANONICAL), name)
+    assert stable_uuid(note, role) == str(expected)
+
+
+def test_emitting_leaves_the_shared_codings_as_they_were(assessor: Assessor) -> None:
+    # Codings built once are shared by every resource (service.fhir.codes._OWN): an
+    # amendment or a withdrawal that changed one would change every later Bundle.
+    before = copy.deepcopy(codes._OWN)
+    first = assessed(assessor, routine()).bundle
+    for path in VALID:
+        assessed(assessor, path)
+    assert before == codes._OWN
+    assert assessed(assessor, routine()).bundle == first

@@ -3,10 +3,12 @@ no version lost, none duplicated, history in order, the latest always the one re
 
 from __future__ import annotations
 
+import asyncio
 import json
 import tempfile
+from collections.abc import Coroutine
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
@@ -14,12 +16,26 @@ from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, pr
 
 from service.assess import Assessor
 from service.errors import ConflictError, InputError, NotFoundError, PreconditionError
-from service.notes import NoteService, Principal
+from service.notes import NoteService, Principal, StoredNote
 from service.policy import load_policy
 from service.store.database import make_engine, upgrade
+from service.store.ledger import Ledger
 from tests.conftest import NOW, routine
 
 WHO = Principal("stateful test", "submitter")
+T = TypeVar("T")
+
+
+def run(call: Coroutine[Any, Any, T]) -> T:
+    """One service call, awaited (the service's methods are coroutines)."""
+    return asyncio.run(call)
+
+
+def opening_of(stored: StoredNote) -> float:
+    opening: float = json.loads(stored.note_json)["result"]["opening"]["horizontal_mm"]
+    return opening
+
+
 NOTE_IDS = ["LN-S-1", "LN-S-2", "LN-S-3"]
 
 
@@ -39,11 +55,13 @@ class Lifecycle(RuleBasedStateMachine):
         self.folder = tempfile.TemporaryDirectory()
         self.engine = make_engine(f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}")
         upgrade(self.engine)
-        self.service = NoteService(self.engine, Assessor(load_policy()), lambda: NOW)
+        self.ledger = Ledger(f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}")
+        self.service = NoteService(self.engine, self.ledger, Assessor(load_policy()), lambda: NOW)
         self.model: dict[str, list[tuple[float, str]]] = {}
         self.keys: dict[str, str] = {}
 
     def teardown(self) -> None:
+        self.ledger.close()
         self.engine.dispose()
         self.folder.cleanup()
 
@@ -56,7 +74,7 @@ class Lifecycle(RuleBasedStateMachine):
         body = json.dumps(note_body(note_id, opening, status)).encode()
         versions = self.model.get(note_id)
         try:
-            created, stored = self.service.submit(body, WHO)
+            created, stored = run(self.service.submit(body, WHO))
         except ConflictError:
             assert versions is not None
             assert (opening, status) not in versions
@@ -106,7 +124,7 @@ class Lifecycle(RuleBasedStateMachine):
         else:
             expected = "new"
         try:
-            stored = self.service.amend(self.keys[note_id], body, WHO, if_match)
+            stored = run(self.service.amend(self.keys[note_id], body, WHO, if_match))
         except PreconditionError:
             assert expected == "stale"
             return
@@ -126,8 +144,10 @@ class Lifecycle(RuleBasedStateMachine):
     def void(self, data: st.DataObject) -> None:
         note_id = data.draw(st.sampled_from(sorted(self.model)))
         versions = self.model[note_id]
-        stored = self.service.void(
-            self.keys[note_id], b'{"reason": "entered on the wrong patient"}', WHO, None
+        stored = run(
+            self.service.void(
+                self.keys[note_id], b'{"reason": "entered on the wrong patient"}', WHO, None
+            )
         )
         if versions[-1][1] != "void":
             versions.append((versions[-1][0], "void"))
@@ -137,7 +157,7 @@ class Lifecycle(RuleBasedStateMachine):
     @rule()
     def unknown_note(self) -> None:
         try:
-            self.service.get("00000000-0000-0000-0000-000000000000")
+            run(self.service.get("00000000-0000-0000-0000-000000000000"))
         except NotFoundError:
             return
         raise AssertionError("an unknown note was found")
@@ -146,16 +166,14 @@ class Lifecycle(RuleBasedStateMachine):
     def store_matches_model(self) -> None:
         for note_id, versions in self.model.items():
             key = self.keys[note_id]
-            history = self.service.versions(key)
+            history = run(self.service.versions(key))
             assert [h["version"] for h in history] == list(range(1, len(versions) + 1))
             assert [h["status"] for h in history] == [v[1] for v in versions]
-            latest = self.service.get(key)
+            latest = run(self.service.get(key))
             assert latest.version == len(versions)
-            assert latest.note["result"]["opening"]["horizontal_mm"] == versions[-1][0]
+            assert opening_of(latest) == versions[-1][0]
             for n, (opening, _status) in enumerate(versions, start=1):
-                assert (
-                    self.service.get(key, n).note["result"]["opening"]["horizontal_mm"] == opening
-                )
+                assert opening_of(run(self.service.get(key, n))) == opening
 
 
 Lifecycle.TestCase.settings = settings(

@@ -20,7 +20,7 @@ def test_upgrade_from_empty_gives_the_models_tables(database_url: str) -> None:
         assert set(inspect(engine).get_table_names()) == {
             "alembic_version",
             "note_version",
-            "fhir_resource",
+            "fhir_index",
             "api_token",
             "audit_entry",
             "outbox_entry",
@@ -28,7 +28,7 @@ def test_upgrade_from_empty_gives_the_models_tables(database_url: str) -> None:
         with engine.connect() as connection:
             assert (
                 connection.execute(text("select version_num from alembic_version")).scalar()
-                == "0002"
+                == "0003"
             )
             diff = compare_metadata(MigrationContext.configure(connection), SQLModel.metadata)
         assert diff == []

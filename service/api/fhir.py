@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import re
 from datetime import UTC, date, datetime, time, timedelta
-from typing import Annotated, Any
+from typing import Annotated
 
 import orjson
 from fastapi import APIRouter, Depends, Path, Query, Request
@@ -17,21 +17,15 @@ from service.api.docs import responses
 from service.api.media import FHIR_JSON, fhir_response, json_body
 from service.errors import InputError, NotFoundError
 from service.fhir.outcome import outcome
+from service.fhir.readmodel import READABLE, StoredBundle, parse_id
 from service.fhir.validate import validate_resource
 from service.findings import Finding, Severity
-from service.note_input import known_key
 from service.notes import Principal
 from service.store import repository as repo
-from service.store.tables import FhirResource
+from service.store.codec import unpack_bundle, unpack_roles
+from service.store.ledger import Ledger, VersionRow
 
 router = APIRouter(prefix="/fhir", tags=["fhir"])
-READABLE = (
-    "Procedure",
-    "Observation",
-    "ServiceRequest",
-    "MedicationRequest",
-    "MedicationAdministration",
-)
 _DATE = re.compile(r"^(eq|ne|gt|lt|ge|le)?(\d{4}-\d{2}-\d{2}(T[0-9:.]+(Z|[+-]\d{2}:\d{2}))?)$")
 Reader = Annotated[Principal, Depends(allow(*READ))]
 
@@ -59,13 +53,26 @@ def _kind(kind: str) -> str:
     return kind
 
 
-def _id(resource_id: str) -> str:
-    """Resource ids are UUIDs here; anything else names nothing (and never reaches SQL)."""
-    return known_key(resource_id)
+def _id(resource_id: str) -> tuple[str, str]:
+    """(note id, role) of a resource id; anything else names nothing (and never reaches SQL)."""
+    parsed = parse_id(resource_id)
+    if parsed is None:
+        raise NotFoundError("no record with this id")
+    return parsed
 
 
-def _body(row: FhirResource) -> Any:
-    return orjson.loads(row.body)
+def _stored(key: str, version: int, at: datetime, bundle: bytes, roles: str) -> StoredBundle:
+    bundle_data = orjson.loads(unpack_bundle(bundle))
+    return StoredBundle(key, version, at, bundle_data, tuple(r for _k, r in unpack_roles(roles)))
+
+
+def _from_row(row: VersionRow) -> StoredBundle:
+    return _stored(row.note_key, row.version, row.recorded_at, row.bundle, row.roles)
+
+
+def _ledger(request: Request) -> Ledger:
+    ledger: Ledger = request.app.state.ledger
+    return ledger
 
 
 @router.get("/metadata", responses=responses(200, media=FHIR_JSON))
@@ -115,9 +122,16 @@ def _patient(value: str | None) -> tuple[str, str] | None:
 
 
 def _searchset(
-    request: Request, kind: str, total: int, rows: list[FhirResource], page: int, count: int
+    request: Request, kind: str, total: int, rows: list[repo.Found], page: int, count: int
 ) -> Response:
     base = str(request.base_url).rstrip("/") + "/fhir"
+    resources = []
+    for r in rows:
+        resource = _stored(r.note_key, r.version, r.recorded_at, r.bundle, r.roles).served(
+            r.role, kind
+        )
+        if resource is not None:  # the index and the Bundle are written together: always
+            resources.append(resource)
     self_link = str(request.url)
     links = [{"relation": "self", "url": self_link}]
     if page * count < total:
@@ -130,11 +144,11 @@ def _searchset(
         "link": links,
         "entry": [
             {
-                "fullUrl": f"{base}/{kind}/{r.resource_id}",
-                "resource": _body(r),
+                "fullUrl": f"{base}/{kind}/{resource['id']}",
+                "resource": resource,
                 "search": {"mode": "match"},
             }
-            for r in rows
+            for resource in resources
         ],
     }
     return fhir_response(bundle)
@@ -210,42 +224,49 @@ def search_service_requests(
 
 
 @router.get("/{kind}/{resource_id}", responses=responses(200, 404, media=FHIR_JSON))
-def read_resource(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
+async def read_resource(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
     """The current version of a resource."""
-    with Session(request.app.state.engine) as session:
-        row = repo.fhir_latest(session, _kind(kind), _id(resource_id))
-    if row is None:
+    key, role = _id(resource_id)
+    row = await _ledger(request).latest(key)
+    resource = _from_row(row).served(role, _kind(kind)) if row is not None else None
+    if resource is None:
         raise NotFoundError(f"no {kind} with this id")
-    return fhir_response(_body(row), headers={"ETag": f'W/"{row.version}"'})
+    return fhir_response(resource, headers={"ETag": f'W/"{resource["meta"]["versionId"]}"'})
 
 
 @router.get("/{kind}/{resource_id}/_history", responses=responses(200, 404, media=FHIR_JSON))
-def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
+async def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
     """Every version of a resource, newest first."""
-    with Session(request.app.state.engine) as session:
-        rows = repo.fhir_history(session, _kind(kind), _id(resource_id))
-    if not rows:
+    key, role = _id(resource_id)
+    kind = _kind(kind)
+    found = []
+    for row in reversed(await _ledger(request).versions(key)):
+        resource = _from_row(row).served(role, kind)
+        if resource is not None:
+            found.append((row.version, resource))
+    if not found:
         raise NotFoundError(f"no {kind} with this id")
+    # The first version this resource appeared in created it; later ones updated it.
+    first = found[-1][0]
     base = str(request.base_url).rstrip("/") + "/fhir"
-    method = {1: "POST"}
     bundle = {
         "resourceType": "Bundle",
         "type": "history",
-        "total": len(rows),
+        "total": len(found),
         "entry": [
             {
                 "fullUrl": f"{base}/{kind}/{resource_id}",
-                "resource": _body(r),
+                "resource": resource,
                 "request": {
-                    "method": method.get(r.version, "PUT"),
-                    "url": kind if r.version == 1 else f"{kind}/{resource_id}",
+                    "method": "POST" if version == first else "PUT",
+                    "url": kind if version == first else f"{kind}/{resource_id}",
                 },
                 "response": {
-                    "status": "201 Created" if r.version == 1 else "200 OK",
-                    "etag": f'W/"{r.version}"',
+                    "status": "201 Created" if version == first else "200 OK",
+                    "etag": f'W/"{version}"',
                 },
             }
-            for r in rows
+            for version, resource in found
         ],
     }
     return fhir_response(bundle)
@@ -254,7 +275,7 @@ def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Resp
 @router.get(
     "/{kind}/{resource_id}/_history/{version}", responses=responses(200, 404, media=FHIR_JSON)
 )
-def version_read(
+async def version_read(
     request: Request,
     kind: str,
     resource_id: str,
@@ -262,12 +283,12 @@ def version_read(
     _who: Reader,
 ) -> Response:
     """One version of a resource (vread)."""
-    with Session(request.app.state.engine) as session:
-        rows = repo.fhir_history(session, _kind(kind), _id(resource_id))
-    for row in rows:
-        if row.version == version:
-            return fhir_response(_body(row), headers={"ETag": f'W/"{row.version}"'})
-    raise NotFoundError(f"no version {version} of this {kind}")
+    key, role = _id(resource_id)
+    row = await _ledger(request).version(key, version)
+    resource = _from_row(row).served(role, _kind(kind)) if row is not None else None
+    if resource is None:
+        raise NotFoundError(f"no version {version} of this {kind}")
+    return fhir_response(resource, headers={"ETag": f'W/"{version}"'})
 
 
 @router.post("/{kind}/$validate", responses=responses(200, 422, media=FHIR_JSON))

@@ -4,15 +4,15 @@ from __future__ import annotations
 
 from typing import Annotated, Any
 
+import orjson
 from fastapi import APIRouter, Depends, Header, Path, Query, Request
 from fastapi.responses import Response
 from pydantic import AwareDatetime
 from sqlmodel import Session
-from starlette.concurrency import run_in_threadpool
 
 from service.api.auth import CHECK, READ, WRITE, allow
 from service.api.docs import AMEND_BODY, CHECK_BODY, NOTE_BODY, VOID_BODY, responses
-from service.api.media import json_body, json_response
+from service.api.media import JSON, json_body, json_response
 from service.delivery import outcome_text
 from service.errors import InputError, NotFoundError
 from service.findings import Finding, Severity
@@ -31,6 +31,11 @@ def _service(request: Request) -> NoteService:
 
 def _etag(stored: StoredNote) -> dict[str, str]:
     return {"ETag": f'W/"{stored.version}"', "Location": f"/notes/{stored.key}"}
+
+
+def _answer(stored: StoredNote, status: int = 200) -> Response:
+    """A stored version as the answer, with its ETag and Location."""
+    return Response(stored.json(), status, _etag(stored), media_type=JSON)
 
 
 def _if_match(value: str | None) -> int | None:
@@ -61,9 +66,11 @@ async def submit_note(
     request: Request, who: Annotated[Principal, Depends(allow(*WRITE))]
 ) -> Response:
     """Check, derive, schedule, store and emit one note (resending the same note is safe)."""
+    # No thread hop: the work is computation under the GIL, which a worker thread would
+    # only slow down, and the store's calls never block the loop (service.store.ledger).
     body = await json_body(request)
-    created, stored = await run_in_threadpool(_service(request).submit, body, who)
-    return json_response(stored.view(), 201 if created else 200, _etag(stored))
+    created, stored = await _service(request).submit(body, who)
+    return _answer(stored, 201 if created else 200)
 
 
 @router.post("/check", openapi_extra=CHECK_BODY, responses=responses(200))
@@ -88,7 +95,7 @@ async def check_note(
                 )
             ],
         )
-    return json_response(await run_in_threadpool(_service(request).check, body))
+    return json_response(await _service(request).check(body))
 
 
 @router.get("", responses=responses(200, 422))
@@ -111,38 +118,37 @@ def list_notes(
         "total": total,
         "page": page,
         "count": count,
-        "notes": [r.view() for r in rows],
+        "notes": [orjson.Fragment(r.json()) for r in rows],
     }
     return json_response(body)
 
 
 @router.get("/{note_id}", responses=responses(200, 404))
-def read_note(
+async def read_note(
     request: Request, note_id: str, _who: Annotated[Principal, Depends(allow(*READ))]
 ) -> Response:
     """The latest version of a note."""
-    stored = _service(request).get(note_id)
-    return json_response(stored.view(), headers=_etag(stored))
+    return _answer(await _service(request).get(note_id))
 
 
 @router.get("/{note_id}/versions", responses=responses(200, 404))
-def list_versions(
+async def list_versions(
     request: Request, note_id: str, _who: Annotated[Principal, Depends(allow(*READ))]
 ) -> Response:
     """Every version of a note, oldest first."""
-    return json_response({"id": note_id, "versions": _service(request).versions(note_id)})
+    versions = await _service(request).versions(note_id)
+    return json_response({"id": note_id, "versions": versions})
 
 
 @router.get("/{note_id}/versions/{version}", responses=responses(200, 404))
-def read_version(
+async def read_version(
     request: Request,
     note_id: str,
     version: Annotated[int, Path(ge=1, le=2**31 - 1)],
     _who: Annotated[Principal, Depends(allow(*READ))],
 ) -> Response:
     """One version of a note."""
-    stored = _service(request).get(note_id, version)
-    return json_response(stored.view(), headers=_etag(stored))
+    return _answer(await _service(request).get(note_id, version))
 
 
 @router.get("/{note_id}/delivery", responses=responses(200, 404))
@@ -153,7 +159,7 @@ def delivery_state(
     key = known_key(note_id)
     with Session(request.app.state.engine) as session:
         entries = outbox.for_note(session, key)
-        if not entries and repo.latest_version(session, key) is None:
+        if not entries and not repo.note_exists(session, key):
             raise NotFoundError("no note with this id")
         body = [
             {
@@ -181,8 +187,7 @@ async def _change(
     body = await json_body(request)
     service = _service(request)
     change = service.amend if action == "amend" else service.void
-    stored = await run_in_threadpool(change, note_id, body, who, _if_match(if_match))
-    return json_response(stored.view(), headers=_etag(stored))
+    return _answer(await change(note_id, body, who, _if_match(if_match)))
 
 
 @router.put("/{note_id}", openapi_extra=AMEND_BODY, responses=responses(200, 404, 409, 412, 422))

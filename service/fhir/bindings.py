@@ -8,7 +8,6 @@ official core package.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
 from typing import Any, Final
 
 _EVENT_STATUS = frozenset(
@@ -116,19 +115,30 @@ REQUIRED: Final[dict[tuple[str, str], tuple[frozenset[str], str]]] = {
 }
 
 
-def _values(node: Any, path: list[str]) -> Iterator[tuple[str, Any]]:
-    """Values at a dotted path, with their indexed FHIRPath locations."""
-    if not path:
-        yield "", node
+def _collect(
+    node: Any, path: list[str], depth: int, where: str, out: list[tuple[str, Any]]
+) -> None:
+    """Append the values at path[depth:] below node, with their indexed FHIRPath locations.
+
+    A plain recursive walk that fills one list: nested generators cost more than the
+    lookups themselves on the request path, where every emitted resource is checked.
+    """
+    name = path[depth]
+    if not isinstance(node, dict) or name not in node:
         return
-    if not isinstance(node, dict) or path[0] not in node:
-        return
-    child = node[path[0]]
-    items = child if isinstance(child, list) else [child]
-    for i, item in enumerate(items):
-        step = f".{path[0]}[{i}]" if isinstance(child, list) else f".{path[0]}"
-        for rest, value in _values(item, path[1:]):
-            yield step + rest, value
+    child = node[name]
+    last = depth == len(path) - 1
+    if isinstance(child, list):
+        for i, item in enumerate(child):
+            step = f"{where}.{name}[{i}]"
+            if last:
+                out.append((step, item))
+            else:
+                _collect(item, path, depth + 1, step, out)
+    elif last:
+        out.append((f"{where}.{name}", child))
+    else:
+        _collect(child, path, depth + 1, f"{where}.{name}", out)
 
 
 # REQUIRED's rows that apply to each resource type, in REQUIRED's order, with their paths
@@ -158,7 +168,15 @@ def binding_problems(resource: dict[str, Any]) -> list[tuple[str, str, str]]:
     for path, allowed, value_set in _rules(kind):
         if path[0] not in resource:  # most rows name an element this resource lacks
             continue
-        for where, value in _values(resource, path):
+        if len(path) == 1:  # status, intent, type: a direct look, no walk
+            value = resource[path[0]]
+            if not isinstance(value, list):
+                if not isinstance(value, str) or value not in allowed:
+                    problems.append((f"{kind}.{path[0]}", str(value), value_set))
+                continue
+        found: list[tuple[str, Any]] = []
+        _collect(resource, path, 0, "", found)
+        for where, value in found:
             # A non-string (an object, a number) is never a code: report it, don't hash it.
             if not isinstance(value, str) or value not in allowed:
                 problems.append((f"{kind}{where}", str(value), value_set))

@@ -119,9 +119,14 @@ def coding(system: str, code: str, display: str | None = None) -> dict[str, Any]
     return out
 
 
+# One Coding per concept, built once: a Bundle holds dozens. Shared between resources, so
+# never mutated (tests/test_fhir_bundle.py checks that emitting leaves them as they were).
+_OWN: Final = {code: coding(CAPNOTE_CS, code, display) for code, (display, _d) in CONCEPTS.items()}
+
+
 def own(code: str) -> dict[str, Any]:
     """A Coding from the project's CodeSystem, with its display."""
-    return coding(CAPNOTE_CS, code, CONCEPTS[code][0])
+    return _OWN[code]
 
 
 def concept(*codings: dict[str, Any], text: str | None = None) -> dict[str, Any]:

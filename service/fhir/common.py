@@ -7,6 +7,7 @@ are kept for validation at the edges and in tests).
 from __future__ import annotations
 
 import hashlib
+import re
 import uuid
 from dataclasses import dataclass
 from datetime import datetime
@@ -20,20 +21,40 @@ _NAMESPACE = uuid.uuid5(uuid.NAMESPACE_URL, CANONICAL)
 
 
 _NAMESPACE_BYTES = _NAMESPACE.bytes
+_VARIANT = "89ab" * 4  # the nibble with RFC 4122's variant bits set, by its old value
+
+
+# The Procedure's role: its key is the note's key (service.notes.note_key).
+PROCEDURE_ROLE = "procedure"
+
+
+class KeyMaker:
+    """Stable UUIDs for one note: the same note and role give the same UUID, every time, on
+    every machine.
+
+    uuid.uuid5 written out (RFC 4122 section 4.3: SHA-1 of namespace and name, version 5,
+    RFC variant), without its UUID object. A Bundle needs about twenty of these, so the
+    hash of the shared prefix (namespace, note identifier) is computed once and copied.
+    """
+
+    __slots__ = ("_prefix",)
+
+    def __init__(self, note: Note) -> None:
+        name = f"{note.note_id.system}|{note.note_id.value}|".encode()
+        self._prefix = hashlib.sha1(_NAMESPACE_BYTES + name, usedforsecurity=False)
+
+    def key(self, role: str) -> str:
+        """The UUID of this note's resource in the given role."""
+        digest = self._prefix.copy()
+        digest.update(role.encode())
+        h = digest.hexdigest()
+        # Version nibble 5; variant bits 10 (the nibble becomes 8, 9, a or b).
+        return f"{h[:8]}-{h[8:12]}-5{h[13:16]}-{_VARIANT[int(h[16], 16)]}{h[17:20]}-{h[20:32]}"
 
 
 def stable_uuid(note: Note, role: str) -> str:
-    """The same UUID for the same note and role, every time, on every machine.
-
-    uuid.uuid5 written out (RFC 4122 section 4.3: SHA-1 of namespace and name, version 5,
-    RFC variant), without its UUID object: a Bundle needs about twenty of these.
-    """
-    name = f"{note.note_id.system}|{note.note_id.value}|{role}".encode()
-    raw = bytearray(hashlib.sha1(_NAMESPACE_BYTES + name, usedforsecurity=False).digest()[:16])
-    raw[6] = (raw[6] & 0x0F) | 0x50
-    raw[8] = (raw[8] & 0x3F) | 0x80
-    h = raw.hex()
-    return f"{h[:8]}-{h[8:12]}-{h[12:16]}-{h[16:20]}-{h[20:]}"
+    """The stable UUID of one role of a note (see KeyMaker)."""
+    return KeyMaker(note).key(role)
 
 
 def search_escape(value: str) -> str:
@@ -43,15 +64,24 @@ def search_escape(value: str) -> str:
     return value
 
 
+# Characters that neither FHIR search escaping nor percent-encoding (quote, safe="") changes.
+_UNCHANGED = re.compile(r"[A-Za-z0-9_.~-]*")
+
+
+def _search_part(text: str) -> str:
+    """One part of a token search: FHIR-escaped, then percent-encoded."""
+    if _UNCHANGED.fullmatch(text):  # most identifiers and every UUID: nothing to do
+        return text
+    return quote(search_escape(text), safe="")
+
+
 def identifier_query(system: str, value: str) -> str:
     """An ``identifier=system|value`` search, as ifNoneExist takes it.
 
     Each part is FHIR-escaped, then percent-encoded: an identifier holding ``&``, ``#`` or
     ``+`` must not add search parameters of its own to the receiver's duplicate check.
     """
-    system_part = quote(search_escape(system), safe="")
-    value_part = quote(search_escape(value), safe="")
-    return f"identifier={system_part}|{value_part}"
+    return f"identifier={_search_part(system)}|{_search_part(value)}"
 
 
 def fhir_identifier(identifier: Identifier) -> dict[str, Any]:
@@ -66,11 +96,13 @@ def when(moment: datetime) -> str:
 
 @dataclass(frozen=True, slots=True)
 class Entry:
-    """One resource on its way into the Bundle, with its stable key."""
+    """One resource on its way into the Bundle, with its stable key and its role in the note
+    (the role names it in the read API: see service.fhir.ids)."""
 
     key: str
     resource: dict[str, Any]
     if_none_exist: str
+    role: str
 
     @property
     def full_url(self) -> str:
@@ -83,13 +115,35 @@ class Entry:
         return {"reference": self.full_url}
 
 
-def keyed(note: Note, role: str, resource: dict[str, Any]) -> Entry:
-    """An entry whose identifier is the project's resource key (used by ifNoneExist)."""
-    key = stable_uuid(note, role)
-    resource["identifier"] = [{"system": RESOURCE_KEY, "value": key}]
-    # Keep resourceType first and identifier second, as FHIR JSON is usually read.
-    ordered = {"resourceType": resource.pop("resourceType"), **resource}
-    return Entry(key, ordered, identifier_query(RESOURCE_KEY, key))
+# The ifNoneExist search of a resource key, but for the key itself: a UUID needs no escaping.
+_KEY_QUERY = identifier_query(RESOURCE_KEY, "")
+
+
+def key_query(key: str) -> str:
+    """The ifNoneExist search that finds the resource with this project key."""
+    return _KEY_QUERY + key
+
+
+def keyed(ctx: Context, role: str, resource: dict[str, Any]) -> Entry:
+    """An entry whose identifier is the project's resource key (used by ifNoneExist).
+
+    The builder puts resourceType first and leaves the identifier for here, so that it
+    comes second, as FHIR JSON is usually read.
+    """
+    key = ctx.keys.key(role)
+    kind = resource.pop("resourceType")
+    ordered = {"resourceType": kind, "identifier": [{"system": RESOURCE_KEY, "value": key}]}
+    ordered.update(resource)
+    return Entry(key, ordered, _KEY_QUERY + key, role)
+
+
+@dataclass(frozen=True, slots=True)
+class Emitted:
+    """A Bundle as emitted, with each entry's role in entry order (roles are not part of the
+    Bundle: the read API names resources by them, and an amendment carries them forward)."""
+
+    bundle: dict[str, Any]
+    roles: tuple[str, ...]
 
 
 @dataclass(frozen=True, slots=True)
@@ -100,8 +154,8 @@ class Version:
     voided: bool = False
     # An earlier version was signed: this one amends what the receiver already holds.
     amends_final: bool = False
-    # The Bundle of the version before, to withdraw what this one no longer has.
-    previous: dict[str, Any] | None = None
+    # What the version before emitted, to withdraw what this one no longer has.
+    previous: Emitted | None = None
 
 
 class Context:
@@ -110,6 +164,7 @@ class Context:
     def __init__(self, note: Note, version: Version | None = None) -> None:
         version = version or Version()
         self.note = note
+        self.keys = KeyMaker(note)
         self.version = version.number
         self.voided = version.voided
         self.amended = version.amends_final and note.status == "final"

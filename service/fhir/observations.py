@@ -22,6 +22,14 @@ _METHOD = {
 }
 
 
+# Built once and shared by every Observation (never mutated): category and eye codes.
+_CATEGORY = {c: concept(coding(OBS_CATEGORY, c)) for c in ("exam", "procedure")}
+_BODY_SITE = {
+    eye: concept(coding(SNOMED, codes.EYE_STRUCTURE[eye], codes.EYE_DISPLAY[eye]))
+    for eye in codes.EYE_STRUCTURE
+}
+
+
 class ObservationMaker:
     """Builds the Observations of one note, sharing status, subject and partOf."""
 
@@ -29,6 +37,9 @@ class ObservationMaker:
         self.ctx = ctx
         self.procedure = procedure
         self.status = ctx.status("final", draft="preliminary", amended="amended")
+        self.part_of = [procedure.reference]
+        self.performer = [ctx.clinician]
+        self.body_site = _BODY_SITE[ctx.note.eye]
 
     def make(
         self,
@@ -43,23 +54,20 @@ class ObservationMaker:
         resource: dict[str, Any] = {
             "resourceType": "Observation",
             "status": self.status,
-            "partOf": [self.procedure.reference],
-            "category": [concept(coding(OBS_CATEGORY, category))],
+            "partOf": self.part_of,
+            "category": [_CATEGORY[category]],
             "code": code,
             "subject": self.ctx.subject,
         }
         self.ctx.with_encounter(resource)
         resource["effectiveDateTime"] = effective
-        resource["performer"] = [self.ctx.clinician]
+        resource["performer"] = self.performer
         if value:
             resource.update(value)
         resource.update(extra)
         if "bodySite" not in resource:
-            eye = self.ctx.note.eye
-            resource["bodySite"] = concept(
-                coding(SNOMED, codes.EYE_STRUCTURE[eye], codes.EYE_DISPLAY[eye])
-            )
-        return keyed(self.ctx.note, role, resource)
+            resource["bodySite"] = self.body_site
+        return keyed(self.ctx, role, resource)
 
     def iop(self, role: str, reading: IopReading, fallback: str) -> Entry:
         """An IOP reading, coded by eye."""

@@ -9,7 +9,14 @@ from schemas.note import Complication, Note
 from service.derive import Derived
 from service.fhir import codes
 from service.fhir.codes import SNOMED, coding, concept, own
-from service.fhir.common import Context, Entry, fhir_identifier, identifier_query, stable_uuid, when
+from service.fhir.common import (
+    PROCEDURE_ROLE,
+    Context,
+    Entry,
+    fhir_identifier,
+    identifier_query,
+    when,
+)
 from service.schedule import DueItem
 
 _PATTERN = {"cruciate": "cruciate", "circular": "circular", "other": "other"}
@@ -105,5 +112,6 @@ def procedure(ctx: Context, derived: Derived, due: list[DueItem]) -> Entry:
             concept(text=f"{item.title}: {item.target.date().isoformat()}") for item in due
         ]
     resource["usedCode"] = used
-    key = stable_uuid(note, "procedure")
-    return Entry(key, resource, identifier_query(note.note_id.system, note.note_id.value))
+    key = ctx.keys.key(PROCEDURE_ROLE)
+    query = identifier_query(note.note_id.system, note.note_id.value)
+    return Entry(key, resource, query, PROCEDURE_ROLE)

@@ -65,7 +65,7 @@ def service_request(ctx: Context, procedure: Entry, item: DueItem) -> Entry:
     # reasonReference cannot point at a Procedure in R4; supportingInfo takes any resource.
     resource["supportingInfo"] = [procedure.reference]
     resource["note"] = [{"text": _due_note(item)}]
-    return keyed(ctx.note, f"due-{item.kind}", resource)
+    return keyed(ctx, f"due-{item.kind}", resource)
 
 
 def _drug(agent: str, strength: float | None) -> dict[str, Any]:
@@ -98,7 +98,7 @@ def administrations(ctx: Context, procedure: Entry, drop: ClinicDrop, index: int
             "route": _ROUTE,
             "dose": quantity(1, "drop", "{drop}"),
         }
-        out.append(keyed(note, f"prophylaxis-{index}-{label}", resource))
+        out.append(keyed(ctx, f"prophylaxis-{index}-{label}", resource))
     return out
 
 
@@ -133,4 +133,4 @@ def medication_request(ctx: Context, procedure: Entry, drop: HomeDrop, index: in
             "doseAndRate": [{"doseQuantity": quantity(1, "drop", "{drop}")}],
         }
     ]
-    return keyed(note, f"take-home-{index}", resource)
+    return keyed(ctx, f"take-home-{index}", resource)

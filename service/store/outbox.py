@@ -13,24 +13,11 @@ from datetime import datetime, timedelta
 from sqlalchemy import ColumnElement, or_, update
 from sqlmodel import Session, col, select
 
+from service.store.codec import unpack_bundle
 from service.store.repository import to_db
 from service.store.tables import NoteVersion, OutboxEntry
 
 PENDING, DELIVERING, DELIVERED, FAILED = "pending", "delivering", "delivered", "failed"
-
-
-def enqueue(session: Session, note_key: str, version: int, now: datetime) -> None:
-    """Add an entry for a note version (inside the caller's transaction)."""
-    session.add(
-        OutboxEntry(
-            note_key=note_key,
-            version=version,
-            state=PENDING,
-            attempts=0,
-            next_attempt_at=to_db(now),
-            created_at=to_db(now),
-        )
-    )
 
 
 def _due(now: datetime) -> ColumnElement[bool]:
@@ -69,14 +56,14 @@ def claim(
     return sorted(rows, key=lambda r: r.id or 0)
 
 
-def bundle_of(session: Session, entry: OutboxEntry) -> str:
+def bundle_of(session: Session, entry: OutboxEntry) -> bytes:
     """The Bundle JSON of the entry's note version."""
     row = session.exec(
-        select(NoteVersion.bundle_json).where(
+        select(NoteVersion.bundle).where(
             NoteVersion.note_key == entry.note_key, NoteVersion.version == entry.version
         )
     ).one()
-    return str(row)
+    return unpack_bundle(bytes(row))
 
 
 def _finish(session: Session, entry_id: int, worker: str, **values: object) -> bool:

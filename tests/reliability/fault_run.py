@@ -242,7 +242,7 @@ def check_store(url: str, figures: Figures) -> None:
         orphans = connection.execute(
             text(
                 "select count(*) from note_version v where not exists "
-                "(select 1 from fhir_resource r where r.note_key = v.note_key "
+                "(select 1 from fhir_index r where r.note_key = v.note_key "
                 "and r.version = v.version and r.resource_type = 'Procedure')"
             )
         ).scalar()
@@ -256,7 +256,8 @@ def check_store(url: str, figures: Figures) -> None:
         i = int(key.rsplit("-", 1)[1])
         from schemas.note import Note
 
-        expected = hashlib.sha256(Note.model_validate_json(note(i)).model_dump_json().encode())
+        stored_json = Note.model_validate_json(note(i)).model_dump_json(exclude_none=True)
+        expected = hashlib.sha256(stored_json.encode())
         if digest != expected.hexdigest():
             figures.wrong_content += 1
 

@@ -1,0 +1,206 @@
+"""The request path's store (service.store.ledger) on real databases: what it writes reads back
+through the ORM, a SQLite writer that meets a held lock waits without stopping the event
+loop, WAL checkpoints run off the request path, and stored rows from the previous layout
+are converted by migration 0003."""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import sqlite3
+import threading
+import time
+from pathlib import Path
+
+import orjson
+import pytest
+from alembic import command
+from alembic.config import Config
+from fastapi.testclient import TestClient
+from sqlalchemy import text
+from sqlmodel import Session, select
+
+from service.app import create_app
+from service.assess import Assessor
+from service.config import Settings
+from service.fhir.readmodel import ROLE_MAX, parse_id, resource_id
+from service.notes import NoteService, Principal, content_hash, note_key
+from service.policy import load_policy
+from service.store import repository
+from service.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
+from service.store.database import MIGRATIONS, make_engine, upgrade
+from service.store.ledger import Ledger
+from service.store.tables import FhirIndex, NoteVersion
+from tests.conftest import NOW, VALID, routine
+
+WHO = Principal("ledger test", "submitter")
+
+
+def service_on(url: str) -> NoteService:
+    engine = make_engine(url)
+    upgrade(engine)
+    return NoteService(engine, Ledger(url), Assessor(load_policy()), lambda: NOW)
+
+
+def test_a_written_version_reads_back_through_the_orm(database_url: str) -> None:
+    service = service_on(database_url)
+    try:
+        _created, stored = asyncio.run(service.submit(VALID[0].read_bytes(), WHO))
+        with Session(service.engine) as session:
+            row = session.exec(select(NoteVersion)).one()
+            index = session.exec(select(FhirIndex)).all()
+        latest = asyncio.run(service.ledger.latest(stored.key))
+        assert latest is not None
+        # Times as the ORM reads what the driver wrote, and back.
+        assert repository.from_db(row.recorded_at) == NOW == latest.recorded_at
+        assert repository.from_db(row.started_at) == latest.started_at
+        assert unpack_bundle(bytes(row.bundle)) == stored.bundle_json
+        assert {(i.resource_type, i.latest) for i in index} == {
+            ("Procedure", True),
+            ("ServiceRequest", True),
+        }
+    finally:
+        service.ledger.close()
+        service.engine.dispose()
+
+
+def test_a_held_write_lock_is_waited_for_without_stopping_the_loop(tmp_path: Path) -> None:
+    url = f"sqlite:///{tmp_path / 'locked.sqlite3'}"
+    service = service_on(url)
+    other = sqlite3.connect(
+        tmp_path / "locked.sqlite3", isolation_level=None, check_same_thread=False
+    )
+    other.execute("BEGIN IMMEDIATE")  # another process's writer, holding the lock
+    ticks = 0
+
+    async def scenario() -> bool:
+        nonlocal ticks
+
+        async def ticker() -> None:
+            nonlocal ticks
+            while True:
+                ticks += 1
+                await asyncio.sleep(0.01)
+
+        tick = asyncio.create_task(ticker())
+        # Release the lock after 0.3 s, from another thread, as the other process would.
+        threading.Timer(0.3, lambda: other.execute("COMMIT")).start()
+        created, _stored = await service.submit(routine_bytes(), WHO)
+        tick.cancel()
+        return created
+
+    try:
+        began = time.monotonic()
+        assert asyncio.run(scenario())
+        assert time.monotonic() - began >= 0.25  # it did wait for the lock ...
+        assert ticks >= 10  # ... and the loop went on meanwhile
+    finally:
+        other.close()
+        service.ledger.close()
+        service.engine.dispose()
+
+
+def routine_bytes() -> bytes:
+    return json.dumps(routine()).encode()
+
+
+def test_checkpoints_copy_the_log_into_the_database(tmp_path: Path) -> None:
+    path = tmp_path / "ckpt.sqlite3"
+    service = service_on(f"sqlite:///{path}")
+    service.ledger.start_checkpoints()
+    before = path.stat().st_size
+    for i in range(30):
+        data = routine()
+        data["note_id"]["value"] = f"LN-CKPT-{i}"
+        asyncio.run(service.submit(json.dumps(data).encode(), WHO))
+    service.ledger.close()  # stops the checkpoints, with a last one
+    service.engine.dispose()
+    assert path.stat().st_size > before  # pages reached the database file
+    with sqlite3.connect(path) as connection:
+        # A reader that opens the file finds every note.
+        assert connection.execute("select count(*) from note_version").fetchone() == (30,)
+
+
+def test_the_app_checkpoints_in_a_thread_of_its_own(tmp_path: Path) -> None:
+    app = create_app(Settings(database_url=f"sqlite:///{tmp_path / 'app.sqlite3'}"))
+    with TestClient(app):
+        assert any(t.name == "capnote-checkpoint" for t in threading.enumerate())
+    assert not any(t.name == "capnote-checkpoint" for t in threading.enumerate())
+    app.state.engine.dispose()
+
+
+@pytest.mark.parametrize("path", VALID, ids=lambda p: p.name)
+def test_roles_name_resources_within_fhir_id_limits(assessor: Assessor, path: Path) -> None:
+    # FHIR R4 id datatype: [A-Za-z0-9\-\.]{1,64} (spec, datatypes "id").
+    result = assessor.assess(path.read_bytes(), NOW)
+    assert result.note is not None
+    key = note_key(result.note)
+    for role in result.roles:
+        assert len(role) <= ROLE_MAX
+        rid = resource_id(key, role)
+        assert len(rid) <= 64
+        assert parse_id(rid) == (key, role)
+
+
+def test_codec_round_trips(assessor: Assessor) -> None:
+    result = assessor.assess(VALID[0].read_bytes(), NOW)
+    assert result.bundle is not None
+    raw = orjson.dumps(result.bundle)
+    packed = pack_bundle(raw)
+    assert len(packed) < len(raw) / 3
+    assert unpack_bundle(packed) == raw
+    kinds = [e["resource"]["resourceType"] for e in result.bundle["entry"]]
+    assert unpack_roles(pack_roles(kinds, result.roles)) == tuple(
+        zip(kinds, result.roles, strict=True)
+    )
+
+
+def test_migration_0003_converts_stored_versions(database_url: str) -> None:
+    # A store at revision 0002 holding a version in the old layout (Bundle as text).
+    engine = make_engine(database_url)
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS))
+    with engine.begin() as connection:
+        config.attributes["connection"] = connection
+        command.upgrade(config, "0002")
+    assessor = Assessor(load_policy())
+    result = assessor.assess(VALID[0].read_bytes(), NOW)
+    assert result.note is not None
+    assert result.bundle is not None
+    key = note_key(result.note)
+    note_json = result.note.model_dump_json(exclude_none=True)
+    with engine.begin() as connection:
+        connection.execute(
+            text(
+                "insert into note_version (note_key, version, sender_system, sender_value, "
+                "patient_system, patient_value, eye, started_at, status, total_energy_mj, "
+                "content_hash, note_json, result_json, bundle_json, reason, recorded_at, "
+                "recorded_by) values (:k, 1, :ss, :sv, :ps, :pv, :eye, :at, 'final', 1.0, "
+                "'old', :nj, '{}', :bj, null, :at, 'old layout')"
+            ),
+            {
+                "k": key,
+                "ss": result.note.note_id.system,
+                "sv": result.note.note_id.value,
+                "ps": result.note.patient.system,
+                "pv": result.note.patient.value,
+                "eye": result.note.eye,
+                "at": NOW,
+                "nj": note_json,
+                "bj": orjson.dumps(result.bundle).decode(),
+            },
+        )
+    upgrade(engine)
+    with Session(engine) as session:
+        row = session.exec(select(NoteVersion)).one()
+        index = session.exec(select(FhirIndex)).all()
+    engine.dispose()
+    assert orjson.loads(unpack_bundle(bytes(row.bundle))) == result.bundle
+    assert tuple(r for _k, r in unpack_roles(row.roles)) == result.roles
+    assert row.content_hash == content_hash(note_json)
+    assert sorted(i.role for i in index) == sorted(
+        r
+        for r, e in zip(result.roles, result.bundle["entry"], strict=True)
+        if e["resource"]["resourceType"] in ("Procedure", "ServiceRequest")
+    )
+    assert all(i.latest for i in index)
