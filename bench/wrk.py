@@ -20,7 +20,12 @@ local items = {ITEMS}
 local headers = {HEADERS}
 local vary, tag = {VARY}, {TAG}
 local counter = 0
-local statuses = {}
+statuses = {}
+local threads = {}
+
+setup = function(thread)
+  threads[#threads + 1] = thread
+end
 
 -- One thread: one counter, so that no two requests carry the same number.
 request = function()
@@ -28,7 +33,7 @@ request = function()
   counter = counter + 1
   local body = item[3]
   if vary ~= nil and body ~= "" then
-    body = body:gsub(vary, tag .. string.format("%07d", counter), 1)
+    body = body:gsub(vary, tag .. string.format("%07d", counter))
   end
   if body == "" then body = nil end
   return wrk.format(item[1], item[2], headers, body)
@@ -39,8 +44,15 @@ response = function(status, _headers, _body)
 end
 
 done = function(summary, latency, _requests)
+  -- Each wrk thread counts in its own Lua state; done() runs in the main one.
+  local totals = {}
+  for _, thread in ipairs(threads) do
+    for status, count in pairs(thread:get("statuses")) do
+      totals[status] = (totals[status] or 0) + count
+    end
+  end
   local parts = {}
-  for status, count in pairs(statuses) do
+  for status, count in pairs(totals) do
     parts[#parts + 1] = string.format('"%d": %d', status, count)
   end
   io.write(string.format(
@@ -80,7 +92,8 @@ def _lua(value: Any) -> str:
     if isinstance(value, list | tuple):
         return "{" + ", ".join(_lua(v) for v in value) + "}"
     if isinstance(value, dict):
-        return "{" + ", ".join(f"[{_lua(k)}] = {_lua(v)}" for k, v in value.items()) + "}"
+        # "[ [[key]] ]": without the spaces Lua reads "[[[" as the start of a long string.
+        return "{" + ", ".join(f"[ {_lua(k)} ] = {_lua(v)}" for k, v in value.items()) + "}"
     raise TypeError(type(value))
 
 
@@ -119,9 +132,12 @@ def run(job: dict[str, Any]) -> dict[str, Any]:
                 timeout=seconds + 120,
                 check=False,
             )
-            if done.returncode != 0:
-                raise RuntimeError(f"wrk failed:\n{done.stderr[-3000:]}")
-            results.append(json.loads(done.stdout.strip().splitlines()[-1]))
+            last = done.stdout.strip().splitlines()[-1:] or [""]
+            # A script wrk cannot load is reported on stderr, and wrk then runs without it
+            # (GET /): only the summary line that done() prints shows the script ran.
+            if done.returncode != 0 or not last[0].startswith("{"):
+                raise RuntimeError(f"wrk failed:\n{done.stderr[-3000:]}{done.stdout[-1000:]}")
+            results.append(json.loads(last[0]))
     measured = results[-1]
     measured["rps"] = measured["requests"] / measured["seconds"] if measured["seconds"] else 0.0
     return measured

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 import threading
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
@@ -46,6 +47,11 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
 
     @asynccontextmanager
     async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
+        # Everything built so far (modules, models, policy) lives as long as the process:
+        # moved out of the collector's reach, it is not traversed again by every full
+        # collection, which otherwise costs about a tenth of each request's time.
+        gc.collect()
+        gc.freeze()
         ledger.start_checkpoints()
         # Delivery runs beside the service when forwarding is on; claims in the database keep
         # several processes from sending one entry twice.

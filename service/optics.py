@@ -29,6 +29,8 @@ class FocalSpot:
     airy_diameter_um: float
     pulse_energy_mj: float
     peak_fluence_j_cm2: float
+    # The estimate says what it is wherever it is shown (API answers, the form, reports).
+    label: str = "idealised diffraction-limited estimate, not a measurement"
 
 
 def numerical_aperture(cone_angle_deg: float) -> float:

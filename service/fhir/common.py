@@ -124,17 +124,17 @@ def key_query(key: str) -> str:
     return _KEY_QUERY + key
 
 
-def keyed(ctx: Context, role: str, resource: dict[str, Any]) -> Entry:
-    """An entry whose identifier is the project's resource key (used by ifNoneExist).
-
-    The builder puts resourceType first and leaves the identifier for here, so that it
-    comes second, as FHIR JSON is usually read.
-    """
+def keyed(ctx: Context, role: str, kind: str) -> tuple[str, dict[str, Any]]:
+    """A new resource of the note in this role: its key and the resource, begun with its
+    type and its identifier (the project's resource key, which ifNoneExist searches), as
+    FHIR JSON is usually read; the builder adds the rest."""
     key = ctx.keys.key(role)
-    kind = resource.pop("resourceType")
-    ordered = {"resourceType": kind, "identifier": [{"system": RESOURCE_KEY, "value": key}]}
-    ordered.update(resource)
-    return Entry(key, ordered, _KEY_QUERY + key, role)
+    return key, {"resourceType": kind, "identifier": [{"system": RESOURCE_KEY, "value": key}]}
+
+
+def keyed_entry(key: str, resource: dict[str, Any], role: str) -> Entry:
+    """The Bundle entry of a resource begun with keyed()."""
+    return Entry(key, resource, _KEY_QUERY + key, role)
 
 
 @dataclass(frozen=True, slots=True)

@@ -12,7 +12,7 @@ from service.acuity import QUALITATIVE
 from service.derive import Derived, acuity_logmar
 from service.fhir import codes
 from service.fhir.codes import LOINC, OBS_CATEGORY, SNOMED, coding, concept, own, quantity
-from service.fhir.common import Context, Entry, keyed, when
+from service.fhir.common import Context, Entry, keyed, keyed_entry, when
 
 _METHOD = {
     "applanation": "applanation tonometry",
@@ -51,14 +51,12 @@ class ObservationMaker:
         **extra: Any,
     ) -> Entry:
         """One Observation; value is a ``{"valueX": ...}`` dict or None."""
-        resource: dict[str, Any] = {
-            "resourceType": "Observation",
-            "status": self.status,
-            "partOf": self.part_of,
-            "category": [_CATEGORY[category]],
-            "code": code,
-            "subject": self.ctx.subject,
-        }
+        key, resource = keyed(self.ctx, role, "Observation")
+        resource["status"] = self.status
+        resource["partOf"] = self.part_of
+        resource["category"] = [_CATEGORY[category]]
+        resource["code"] = code
+        resource["subject"] = self.ctx.subject
         self.ctx.with_encounter(resource)
         resource["effectiveDateTime"] = effective
         resource["performer"] = self.performer
@@ -67,7 +65,7 @@ class ObservationMaker:
         resource.update(extra)
         if "bodySite" not in resource:
             resource["bodySite"] = self.body_site
-        return keyed(self.ctx, role, resource)
+        return keyed_entry(key, resource, role)
 
     def iop(self, role: str, reading: IopReading, fallback: str) -> Entry:
         """An IOP reading, coded by eye."""

@@ -7,7 +7,7 @@ from typing import Any
 
 from schemas.note import ClinicDrop, HomeDrop
 from service.fhir.codes import concept, own, quantity
-from service.fhir.common import Context, Entry, keyed, when
+from service.fhir.common import Context, Entry, keyed, keyed_entry, when
 from service.schedule import DueItem
 
 _DUE_CODE = {
@@ -41,14 +41,12 @@ def _due_note(item: DueItem) -> str:
 def service_request(ctx: Context, procedure: Entry, item: DueItem) -> Entry:
     """One due item as a ServiceRequest with its window (Timing.repeat.boundsPeriod)."""
     done = item.done_by_reading is not None
-    status = ctx.status("completed" if done else "active", draft="draft")
-    resource: dict[str, Any] = {
-        "resourceType": "ServiceRequest",
-        "status": status,
-        "intent": "order",
-        "code": concept(own(_DUE_CODE[item.kind]), text=item.title),
-        "subject": ctx.subject,
-    }
+    role = f"due-{item.kind}"
+    key, resource = keyed(ctx, role, "ServiceRequest")
+    resource["status"] = ctx.status("completed" if done else "active", draft="draft")
+    resource["intent"] = "order"
+    resource["code"] = concept(own(_DUE_CODE[item.kind]), text=item.title)
+    resource["subject"] = ctx.subject
     ctx.with_encounter(resource)
     resource["occurrenceTiming"] = {
         "event": [_moment(item, item.target)],
@@ -65,7 +63,7 @@ def service_request(ctx: Context, procedure: Entry, item: DueItem) -> Entry:
     # reasonReference cannot point at a Procedure in R4; supportingInfo takes any resource.
     resource["supportingInfo"] = [procedure.reference]
     resource["note"] = [{"text": _due_note(item)}]
-    return keyed(ctx, f"due-{item.kind}", resource)
+    return keyed_entry(key, resource, role)
 
 
 def _drug(agent: str, strength: float | None) -> dict[str, Any]:
@@ -83,13 +81,12 @@ def administrations(ctx: Context, procedure: Entry, drop: ClinicDrop, index: int
     moments["both"] = moments["before"] + moments["after"]
     out = []
     for label, moment in moments[drop.timing]:
-        resource: dict[str, Any] = {
-            "resourceType": "MedicationAdministration",
-            "status": ctx.status("completed"),
-            "partOf": [procedure.reference],
-            "medicationCodeableConcept": _drug(drop.agent, drop.strength_percent),
-            "subject": ctx.subject,
-        }
+        role = f"prophylaxis-{index}-{label}"
+        key, resource = keyed(ctx, role, "MedicationAdministration")
+        resource["status"] = ctx.status("completed")
+        resource["partOf"] = [procedure.reference]
+        resource["medicationCodeableConcept"] = _drug(drop.agent, drop.strength_percent)
+        resource["subject"] = ctx.subject
         ctx.with_encounter(resource, "context")
         resource["effectiveDateTime"] = when(moment)
         resource["performer"] = [{"actor": ctx.clinician}]
@@ -98,20 +95,19 @@ def administrations(ctx: Context, procedure: Entry, drop: ClinicDrop, index: int
             "route": _ROUTE,
             "dose": quantity(1, "drop", "{drop}"),
         }
-        out.append(keyed(ctx, f"prophylaxis-{index}-{label}", resource))
+        out.append(keyed_entry(key, resource, role))
     return out
 
 
 def medication_request(ctx: Context, procedure: Entry, drop: HomeDrop, index: int) -> Entry:
     """Drops to take home, with how often and for how long."""
     note = ctx.note
-    resource: dict[str, Any] = {
-        "resourceType": "MedicationRequest",
-        "status": ctx.status("active", draft="draft"),
-        "intent": "order",
-        "medicationCodeableConcept": _drug(drop.agent, drop.strength_percent),
-        "subject": ctx.subject,
-    }
+    role = f"take-home-{index}"
+    key, resource = keyed(ctx, role, "MedicationRequest")
+    resource["status"] = ctx.status("active", draft="draft")
+    resource["intent"] = "order"
+    resource["medicationCodeableConcept"] = _drug(drop.agent, drop.strength_percent)
+    resource["subject"] = ctx.subject
     ctx.with_encounter(resource)
     resource["authoredOn"] = when(note.ended_at or note.started_at)
     resource["requester"] = ctx.clinician
@@ -133,4 +129,4 @@ def medication_request(ctx: Context, procedure: Entry, drop: HomeDrop, index: in
             "doseAndRate": [{"doseQuantity": quantity(1, "drop", "{drop}")}],
         }
     ]
-    return keyed(ctx, f"take-home-{index}", resource)
+    return keyed_entry(key, resource, role)

@@ -28,7 +28,6 @@ from __future__ import annotations
 import asyncio
 import hmac
 import logging
-import os
 import random
 import sqlite3
 import threading
@@ -60,9 +59,6 @@ _TOKEN = ApiToken.__table__  # type: ignore[attr-defined]
 
 # How long a SQLite writer keeps trying for the write lock before answering 503.
 SQLITE_LOCK_WAIT_S = 15.0
-# Checkpoint the WAL when it holds this many pages, or at least this often.
-CHECKPOINT_PAGES = 4000
-CHECKPOINT_EVERY_S = 1.0
 
 
 class DuplicateVersionError(Exception):
@@ -543,13 +539,18 @@ class Checkpointer:
 
     With automatic checkpoints, the commit that crosses the threshold copies every page and
     syncs the file, stalling its request (and, on the event loop, every other) for
-    milliseconds. Here a passive checkpoint, which never blocks writers, runs when the log
-    has grown or a second has passed; a page written many times in between is copied once.
+    milliseconds. Here a passive checkpoint, which never blocks writers, runs a few times a
+    second; a page written many times in between is copied once. Under steady writing a
+    passive checkpoint never catches the log's end, so the log would grow without bound:
+    once it holds RESTART_FRAMES, a restarting checkpoint takes the write lock for the
+    little that is left (writers await it: see Ledger._run_sqlite) and the log starts over.
     """
+
+    INTERVAL_S = 0.2
+    RESTART_FRAMES = 4000
 
     def __init__(self, path: str) -> None:
         self.path = path
-        self._last = 0.0
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._loop, name="capnote-checkpoint", daemon=True)
 
@@ -563,33 +564,24 @@ class Checkpointer:
         self._thread.join(timeout=30)
 
     def _loop(self) -> None:
-        connection = sqlite3.connect(self.path, isolation_level=None, timeout=5)
+        # The busy timeout lets a restarting checkpoint wait for the writer of the moment.
+        connection = sqlite3.connect(self.path, isolation_level=None, timeout=2)
         try:
-            while not self._stop.wait(0.05):
-                self._maybe(connection)
-            connection.execute("PRAGMA wal_checkpoint(PASSIVE)")
-        except sqlite3.Error as exc:  # a checkpoint that fails is retried by the next one
-            log.warning("WAL checkpoint failed: %s", type(exc).__name__)
+            while not self._stop.wait(self.INTERVAL_S):
+                self._checkpoint(connection)
+            self._checkpoint(connection)
         finally:
             connection.close()
 
-    def _maybe(self, connection: sqlite3.Connection) -> None:
-        # wal_checkpoint(PASSIVE) answers (busy, log pages, checkpointed pages); reading the
-        # log's size first is cheap, the copy is not.
-        now = time.monotonic()
-        pages = self._wal_pages()
-        if pages >= CHECKPOINT_PAGES or (pages and now - self._last >= CHECKPOINT_EVERY_S):
-            try:
-                connection.execute("PRAGMA wal_checkpoint(PASSIVE)")
-            except sqlite3.OperationalError as exc:
-                log.warning("WAL checkpoint skipped: %s", type(exc).__name__)
-            self._last = now
-
-    def _wal_pages(self) -> int:
+    def _checkpoint(self, connection: sqlite3.Connection) -> None:
         try:
-            return os.path.getsize(self.path + "-wal") // 4096  # SQLite's default page size
-        except OSError:
-            return 0
+            # (busy, frames in the log, frames copied); fetched, so no statement stays open
+            # (an open one would hold a read mark and keep the log from starting over).
+            _busy, frames, _copied = connection.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()
+            if frames >= self.RESTART_FRAMES:
+                connection.execute("PRAGMA wal_checkpoint(RESTART)").fetchone()
+        except sqlite3.Error as exc:  # a checkpoint that fails is retried by the next one
+            log.warning("WAL checkpoint skipped: %s", type(exc).__name__)
 
 
 def _autocommit(dbapi_connection: Any, _record: Any) -> None:
@@ -603,8 +595,13 @@ def _locked(exc: sqlite3.OperationalError) -> bool:
 
 
 def _one(connection: Any, sql: _Sql, params: dict[str, Any]) -> Any:
-    """The first row of a query, on a sqlite3 or a psycopg connection (both have execute)."""
-    return connection.execute(sql.text, sql.params(params)).fetchone()
+    """The first row of a query, on a sqlite3 or a psycopg connection (both have execute).
+
+    Every row is fetched: a SQLite statement left unfinished keeps its read snapshot, which
+    stops checkpoints at that point and keeps the log from ever starting over.
+    """
+    rows = _all(connection, sql, params)
+    return rows[0] if rows else None
 
 
 def _all(connection: Any, sql: _Sql, params: dict[str, Any]) -> list[Any]:
