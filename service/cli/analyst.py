@@ -31,12 +31,12 @@ _PICKED_UP = (
     "A folder is searched recursively, in name order, for *.json files (one note or FHIR "
     "resource each) and *.ndjson files (one per line); hidden files and folders are skipped."
 )
+# Existence is checked by service.batch.inputs.expand, which knows that - is standard input
+# (typer's own check, as of 0.29, refuses - even with allow_dash).
 CheckInputs = Annotated[
     list[Path],
     typer.Argument(
-        exists=True,
         readable=True,
-        allow_dash=True,
         show_default=False,
         help="Note or FHIR JSON files, NDJSON files, folders, or - for standard input "
         f"(NDJSON). {_PICKED_UP}",
@@ -45,9 +45,7 @@ CheckInputs = Annotated[
 EmitInputs = Annotated[
     list[Path],
     typer.Argument(
-        exists=True,
         readable=True,
-        allow_dash=True,
         show_default=False,
         help=f"Note files, NDJSON files of notes, folders, or - for standard input. {_PICKED_UP}",
     ),
