@@ -154,7 +154,9 @@ def serve(
     if demo:
         _load_demo(settings, engine)
     os.environ["CAPNOTE_MIGRATE_ON_START"] = "false"
-    typer.echo(f"capnote serving on http://{host}:{port} (API docs at /docs)")
+    # The service has no /docs page (its script would come from a CDN, which the service's
+    # CSP and many hospital networks refuse); the OpenAPI document is served as JSON.
+    typer.echo(f"capnote serving on http://{host}:{port} (OpenAPI document at /openapi.json)")
     serving.run("service.app:app_from_environment", host, port, workers)
 
 
