@@ -6,6 +6,7 @@ from __future__ import annotations
 import ast
 import io
 import json
+import subprocess
 from pathlib import Path
 
 import pytest
@@ -13,7 +14,7 @@ import pytest
 from service.batch import inputs
 from service.batch.inputs import STDIN, Source, expand, records
 from service.errors import UsageError
-from tests.batch_helpers import NOW, capnote, note
+from tests.batch_helpers import CAPNOTE, NOW, capnote, note
 from tests.conftest import ROOT, VALID
 
 
@@ -202,3 +203,23 @@ def test_batch_modules_know_nothing_of_the_command_line() -> None:
         }
         assert not imported & {"typer", "click", "rich"}, path.name
         assert len(path.read_text().splitlines()) <= 400, path.name
+
+
+def test_a_reader_that_goes_away_is_no_failure(tmp_path: Path) -> None:
+    # `capnote check big.ndjson | head`: the pipe closes early; no traceback, no incident.
+    dump = tmp_path / "dump.ndjson"
+    dump.write_text("".join(json.dumps(note(i, "error")) + "\n" for i in range(1, 2001)))
+    with subprocess.Popen(
+        [*CAPNOTE, "check", str(dump), "--now", NOW],
+        cwd=ROOT,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+    ) as proc:
+        assert proc.stdout is not None
+        assert proc.stderr is not None
+        assert proc.stdout.readline().startswith(str(dump).encode())
+        proc.stdout.close()
+        err = proc.stderr.read().decode()
+        proc.wait(timeout=120)
+    assert proc.returncode == 1
+    assert err == ""
