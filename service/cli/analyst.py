@@ -20,7 +20,7 @@ from service import __version__
 from service.assess import Assessor
 from service.batch.checking import Checker, Tally
 from service.batch.emitting import EmitTally, emit_records
-from service.batch.inputs import Source, expand, records
+from service.batch.inputs import STDIN, STDIN_NAME, Source, expand, records
 from service.batch.listing import BundleListing, Listing, NdjsonListing, TextListing
 from service.batch.output import AtomicFile, ReportWriter, RunInfo
 from service.batch.reports import open_report, report_format
@@ -110,7 +110,7 @@ def check(
         if writer is not None:
             writer.commit(
                 RunInfo(
-                    inputs=tuple("<stdin>" if str(p) == "-" else str(p) for p in inputs),
+                    inputs=tuple(STDIN_NAME if p == STDIN else str(p) for p in inputs),
                     files=len(sources),
                     tally=tally,
                     started=started,
