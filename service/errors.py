@@ -9,6 +9,7 @@
     ├── ForbiddenError       (403, forbidden)   the token's role may not do this
     ├── PayloadError         (413/415, ...)     a body too large or of the wrong media type
     ├── PolicyError          (500, invalid)     the site policy file is unusable
+    ├── UsageError           (400, invalid)     a command-line input or output it cannot use
     ├── EmissionError        (500, exception)   emitted FHIR broke a required binding (a bug)
     └── UnavailableError     (503, transient)   a dependency (database, receiver) is down
 
@@ -107,6 +108,14 @@ class PolicyError(CapnoteError):
 
     code = "policy-invalid"
     http_status = 500
+    issue_type = "invalid"
+
+
+class UsageError(CapnoteError):
+    """The command line names an input or output capnote cannot use (exit 2)."""
+
+    code = "usage"
+    http_status = 400
     issue_type = "invalid"
 
 

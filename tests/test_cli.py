@@ -4,10 +4,14 @@ from __future__ import annotations
 
 import json
 import os
+import re
+import socket
 import subprocess
 import sys
+import time
 from pathlib import Path
 
+import httpx
 import pytest
 
 from tests.conftest import EXAMPLES, INVALID, ROOT, VALID
@@ -119,3 +123,48 @@ def test_garbage_files_are_findings_not_crashes(tmp_path: Path) -> None:
     assert run.returncode == 1
     assert "Traceback" not in run.stdout + run.stderr
     assert run.stdout.count("FAILED") == 3
+
+
+def test_serve_names_a_page_that_exists(tmp_path: Path) -> None:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        port = s.getsockname()[1]
+    env = {
+        **os.environ,
+        "CAPNOTE_DATABASE_URL": f"sqlite:///{tmp_path / 'capnote.sqlite3'}",
+        "PYTHONUNBUFFERED": "1",
+    }
+    with subprocess.Popen(
+        [
+            sys.executable,
+            "-c",
+            "from service.cli import main; main()",
+            "serve",
+            "--port",
+            str(port),
+        ],
+        cwd=tmp_path,
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.DEVNULL,
+        text=True,
+    ) as proc:
+        try:
+            assert proc.stdout is not None
+            line = proc.stdout.readline()
+            named = re.search(r"on (http://\S+) \(.* at (/\S+)\)", line)
+            assert named is not None, line
+            url = named[1] + named[2]
+            deadline = time.monotonic() + 60
+            while True:
+                try:
+                    answer = httpx.get(url, timeout=5)
+                    break
+                except httpx.TransportError:
+                    assert time.monotonic() < deadline, "the service did not start"
+                    time.sleep(0.2)
+            assert answer.status_code == 200, url
+            assert "openapi" in answer.json()
+        finally:
+            proc.terminate()
+            proc.wait(timeout=30)

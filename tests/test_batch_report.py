@@ -1,0 +1,363 @@
+"""`capnote check --report`: the HTML and CSV reports say what the text output says, escape
+what the input echoes, appear whole or not at all, and keep memory flat."""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import signal
+import subprocess
+from collections import Counter
+from pathlib import Path
+
+import pytest
+
+from service.batch.output import AtomicFile
+from service.batch.report_csv import COLUMNS, cell
+from service.report import CAUTION
+from tests.batch_helpers import (
+    CAPNOTE,
+    NOW,
+    ReportPage,
+    by_code,
+    capnote,
+    note,
+    peak_rss_kib,
+    text_findings,
+    text_tally,
+    write_ndjson,
+)
+from tests.conftest import EXAMPLES, ROOT, load
+
+# Input that findings echo: an unknown key of a note, and the resourceType of a FHIR line.
+SCRIPT = "<script>alert('capnote')</script>"
+FORMULA = '=HYPERLINK("http://example.invalid","x")'
+IMG = "<img src=x onerror=alert(1)>"
+
+
+def _batch(folder: Path, lines: int = 300) -> list[Path]:
+    """An NDJSON dump (with hostile, broken and FHIR lines) and two whole JSON files."""
+    folder.mkdir(parents=True, exist_ok=True)
+    dump = write_ndjson(folder / "dump.ndjson", lines)
+    hostile = note(9001, "warning")
+    hostile[SCRIPT] = 1
+    formula = note(9002, "clean")
+    formula[FORMULA] = 1
+    bundle = load(EXAMPLES / "bundles" / "right-routine.bundle.json")
+    bundle["entry"][0]["resource"]["status"] = "done"  # outside the required value set
+    with dump.open("a") as out:
+        for extra in (hostile, formula, {"resourceType": IMG}, bundle):
+            out.write(json.dumps(extra) + "\n")
+        out.write("{not json\n")
+    single = folder / "single.json"
+    single.write_text(json.dumps(note(9100, "error")))
+    clean = EXAMPLES / "notes" / "right-iop-spike.json"
+    return [dump, single, clean]
+
+
+@pytest.fixture(scope="module")
+def checked(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
+    """One batch checked twice, with an HTML and with a CSV report, and the text output."""
+    folder = tmp_path_factory.mktemp("batch")
+    inputs = _batch(folder)
+    runs = {}
+    for fmt in ("html", "csv"):
+        report = folder / f"report.{fmt}"
+        run = capnote("check", *map(str, inputs), "--now", NOW, "--report", str(report))
+        assert run.returncode == 1, run.stdout + run.stderr
+        assert f"report written to {report}" in run.stderr
+        runs[fmt] = (run, report)
+    html_run, html = runs["html"]
+    csv_run, csv_path = runs["csv"]
+    assert isinstance(html_run, subprocess.CompletedProcess)
+    assert isinstance(csv_run, subprocess.CompletedProcess)
+    assert html_run.stdout == csv_run.stdout  # the report changes nothing on stdout
+    assert isinstance(html, Path)
+    assert isinstance(csv_path, Path)
+    return {
+        "stdout": html_run.stdout,
+        "html": html.read_text(),
+        "csv": csv_path.read_text(),
+        "inputs": inputs,
+    }
+
+
+def _html(checked: dict[str, object]) -> str:
+    text = checked["html"]
+    assert isinstance(text, str)
+    return text
+
+
+def _stdout(checked: dict[str, object]) -> str:
+    text = checked["stdout"]
+    assert isinstance(text, str)
+    return text
+
+
+def test_html_header_counts_match_the_text_tally(checked: dict[str, object]) -> None:
+    page = ReportPage(_html(checked))
+    tally = text_tally(_stdout(checked))
+    assert tally["records"] == 300 + 5 + 2
+    assert page.counts == {
+        "records": tally["records"],
+        "passed": tally["passed"],
+        "failed": tally["failed"],
+        "errors": tally["errors"],
+        "warnings": tally["warnings"],
+        "information": tally["information"],
+    }
+    assert CAUTION in _html(checked)
+
+
+def test_html_summary_by_code_and_severity_matches_the_text_output(
+    checked: dict[str, object],
+) -> None:
+    page = ReportPage(_html(checked))
+    found = text_findings(_stdout(checked))
+    summary = page.body_rows("summary")
+    table = {(r.attrs["data-code"], r.attrs["data-severity"]): int(r.values[0]) for r in summary}
+    assert table == dict(by_code(found))
+    per_severity: Counter[str] = Counter()
+    for (_code, severity), count in table.items():
+        per_severity[severity] += count
+    tally = text_tally(_stdout(checked))
+    assert per_severity["error"] == tally["errors"]
+    assert per_severity["warning"] == tally["warnings"]
+    assert per_severity["information"] == tally["information"]
+
+
+def test_html_lists_every_finding_with_file_line_and_location(checked: dict[str, object]) -> None:
+    page = ReportPage(_html(checked))
+    rows = page.body_rows("problems")
+    listed = [
+        (
+            r.cells[0],
+            r.cells[1],
+            "" if r.cells[2] == "(payload)" else r.cells[2],
+            r.cells[3],
+            r.cells[4],
+        )
+        for r in rows
+    ]
+    expected = text_findings(_stdout(checked))
+    assert sorted(listed) == sorted(expected)
+    assert len(listed) == len(expected)
+    single = next(r for r in rows if r.cells[0].endswith("single.json"))
+    assert single.cells[1] == "-"  # a whole JSON file has no line
+    spike = [r for r in rows if r.cells[0].endswith("right-iop-spike.json")]
+    assert {r.cells[4] for r in spike} == {"iop-rise-moderate", "iop-rise-severe"}
+    assert all(r.cells[6] and r.cells[7] for r in spike)  # allowed range and source
+
+
+def test_html_chart_shows_the_most_common_findings(checked: dict[str, object]) -> None:
+    page = ReportPage(_html(checked))
+    counts = by_code(text_findings(_stdout(checked)))
+    bars = [v for tag, k, v in page.attributes if tag == "g" and k == "data-code"]
+    assert len(bars) == min(12, len(counts))
+    top_code = max(counts.items(), key=lambda kv: kv[1])[0][0]
+    assert bars[0] == top_code
+
+
+def test_html_is_self_contained_and_escapes_what_the_input_echoes(
+    checked: dict[str, object],
+) -> None:
+    text = _html(checked)
+    page = ReportPage(text)
+    # Nothing to run and nothing to fetch: no script, no external link, image or style.
+    assert page.tags["script"] == 0
+    assert not {"link", "img", "iframe", "object", "embed"} & set(page.tags)
+    for tag, name, value in page.attributes:
+        assert not name.startswith("on"), (tag, name)
+        if name in ("href", "src"):
+            assert value.startswith("#"), (tag, name, value)
+    assert "url(" not in text
+    assert "@import" not in text
+    # The hostile values are shown as text, never as markup.
+    assert SCRIPT not in text
+    assert IMG not in text
+    assert "&lt;script&gt;alert(&#x27;capnote&#x27;)&lt;/script&gt;" in text
+    cells = [c for r in page.body_rows("problems") for c in r.cells]
+    assert SCRIPT in cells  # the location of the unknown key, read back as text
+    assert any(IMG in c for c in cells)
+    assert text.endswith("</html>\n")
+
+
+def test_csv_has_a_row_per_finding_with_the_same_columns_and_kind(
+    checked: dict[str, object],
+) -> None:
+    text = checked["csv"]
+    assert isinstance(text, str)
+    rows = list(csv.reader(text.splitlines()))
+    assert tuple(rows[0]) == COLUMNS
+    body = [dict(zip(COLUMNS, r, strict=True)) for r in rows[1:]]
+    listed = [
+        (r["file"], r["line"] or "-", r["location"].removeprefix("'"), r["severity"], r["code"])
+        for r in body
+    ]
+    assert sorted(listed) == sorted(text_findings(_stdout(checked)))
+    kinds = {(r["code"], r["kind"]) for r in body}
+    assert ("fhir-code-not-in-value-set", "fhir") in kinds
+    assert ("fhir-unknown-type", "fhir") in kinds
+    assert ("json-invalid", "note") in kinds
+    single = next(r for r in body if r["file"].endswith("single.json"))
+    assert single["line"] == ""  # a whole JSON file; "-" would read as a formula
+
+
+def test_csv_guards_cells_against_formulas(checked: dict[str, object]) -> None:
+    text = checked["csv"]
+    assert isinstance(text, str)
+    body = list(csv.DictReader(text.splitlines()))
+    (row,) = [r for r in body if "HYPERLINK" in r["location"]]
+    # OWASP, "CSV Injection": the cell starts with an apostrophe, so it is shown as text.
+    assert row["location"] == "'" + FORMULA
+    assert row["message"].startswith("'=HYPERLINK")
+    for r in body:
+        for value in r.values():
+            assert not value.startswith(("=", "+", "-", "@", "\t", "\r")), r
+
+
+# OWASP, "CSV Injection": cells starting with =, +, -, @, tab or carriage return are made text.
+@pytest.mark.parametrize(
+    ("text", "shown"),
+    [
+        ("=1+1", "'=1+1"),
+        ("+41 22", "'+41 22"),
+        ("-2+3", "'-2+3"),
+        ("@SUM(A1)", "'@SUM(A1)"),
+        ("\t=1", "'\t=1"),
+        ("\r=1", "'\r=1"),
+        ("a=1", "a=1"),
+        ("laser.series[0].energy_mj", "laser.series[0].energy_mj"),
+        ("", ""),
+        (None, ""),
+    ],
+)
+def test_csv_cell_guard(text: str | None, shown: str) -> None:
+    assert cell(text) == shown
+
+
+def test_a_file_name_that_looks_like_a_formula_is_guarded(tmp_path: Path) -> None:
+    name = "=cmd.ndjson"
+    (tmp_path / name).write_text(json.dumps(note(1, "error")) + "\n")
+    run = capnote("check", name, "--now", NOW, "--report", "r.csv", cwd=tmp_path)
+    assert run.returncode == 1, run.stdout + run.stderr
+    (row,) = list(csv.DictReader((tmp_path / "r.csv").read_text().splitlines()))
+    assert row["file"] == "'" + name
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["--report", "out.txt"], ".html, .htm, .csv"),
+        (["--report", "out"], ".html, .htm, .csv"),
+        (["--report", "out.html", "--report-format", "pdf"], "html, csv"),
+        (["--report", "no-such-folder/out.html"], "does not exist"),
+        (["--report", "."], "directory"),
+    ],
+)
+def test_report_usage_errors_exit_2_and_write_nothing(
+    tmp_path: Path, args: list[str], message: str
+) -> None:
+    source = tmp_path / "one.ndjson"
+    source.write_text(json.dumps(note(1, "clean")) + "\n")
+    before = sorted(p.name for p in tmp_path.iterdir())
+    run = capnote("check", str(source), *args, cwd=tmp_path)
+    assert run.returncode == 2, run.stdout + run.stderr
+    assert message in run.stderr
+    assert "Traceback" not in run.stderr
+    assert sorted(p.name for p in tmp_path.iterdir()) == before
+
+
+def test_report_format_option_overrides_the_ending(tmp_path: Path) -> None:
+    source = tmp_path / "one.ndjson"
+    source.write_text(json.dumps(note(1, "warning")) + "\n")
+    run = capnote("check", str(source), "--report", "r.txt", "--report-format", "csv", cwd=tmp_path)
+    assert run.returncode == 0, run.stdout + run.stderr
+    assert (tmp_path / "r.txt").read_text().startswith("file,line,kind,")
+
+
+def test_a_clean_batch_gets_a_report_that_says_so(tmp_path: Path) -> None:
+    source = tmp_path / "clean.ndjson"
+    source.write_text(json.dumps(note(1, "clean")) + "\n")
+    run = capnote("check", str(source), "--now", NOW, "--report", "r.html", cwd=tmp_path)
+    assert run.returncode == 0, run.stdout + run.stderr
+    page = ReportPage((tmp_path / "r.html").read_text())
+    assert page.counts["records"] == 1
+    assert page.counts["failed"] == 0
+    assert page.body_rows("problems") == []
+    assert "No findings." in (tmp_path / "r.html").read_text()
+
+
+def test_atomic_file_leaves_the_target_alone_when_writing_fails(tmp_path: Path) -> None:
+    target = tmp_path / "report.html"
+    target.write_text("the last good report")
+
+    def write_half() -> None:
+        with AtomicFile(target) as out:
+            out.binary.write(b"half a rep")
+            raise RuntimeError("disk on fire")
+
+    with pytest.raises(RuntimeError, match="disk on fire"):
+        write_half()
+    assert target.read_text() == "the last good report"
+    assert [p.name for p in tmp_path.iterdir()] == ["report.html"]
+    with AtomicFile(target) as out:
+        out.text().write("a new report")
+        out.commit()
+    assert target.read_text() == "a new report"
+    assert [p.name for p in tmp_path.iterdir()] == ["report.html"]
+
+
+def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
+    """Start a check with a report over 3,000 lines and send sig once findings are printing."""
+    source = write_ndjson(tmp_path / "dump.ndjson", 3_000)
+    target = tmp_path / f"report.{fmt}"
+    target.write_text("the last good report")
+    with subprocess.Popen(
+        [*CAPNOTE, "check", str(source), "--now", NOW, "--report", str(target)],
+        cwd=ROOT,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.DEVNULL,
+    ) as proc:
+        assert proc.stdout is not None
+        # stdout is a pipe, so it arrives in 8 KiB blocks: the first one is about 40 findings
+        # into the 3,000 lines, well before the end.
+        first = proc.stdout.readline()
+        assert first.startswith(str(source).encode())
+        proc.send_signal(sig)
+        proc.stdout.read()
+        proc.wait(timeout=60)
+    assert proc.returncode != 0
+    return target
+
+
+@pytest.mark.parametrize("fmt", ["html", "csv"])
+def test_a_killed_check_leaves_the_last_report_whole(tmp_path: Path, fmt: str) -> None:
+    target = _stop_midway(tmp_path, fmt, signal.SIGKILL)
+    assert target.read_text() == "the last good report"
+    # Nothing half-written under a visible name (a hidden .part may stay after SIGKILL).
+    assert sorted(p.name for p in tmp_path.iterdir() if not p.name.startswith(".")) == [
+        "dump.ndjson",
+        target.name,
+    ]
+
+
+@pytest.mark.parametrize("fmt", ["html", "csv"])
+def test_an_interrupted_check_cleans_up_after_itself(tmp_path: Path, fmt: str) -> None:
+    target = _stop_midway(tmp_path, fmt, signal.SIGINT)
+    assert target.read_text() == "the last good report"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["dump.ndjson", target.name]
+
+
+def test_report_memory_stays_flat_from_two_to_twenty_thousand_lines(tmp_path: Path) -> None:
+    small = write_ndjson(tmp_path / "small.ndjson", 2_000)
+    large = write_ndjson(tmp_path / "large.ndjson", 20_000)
+    for fmt in ("html", "csv"):
+        report = str(tmp_path / f"report.{fmt}")
+        low = peak_rss_kib("check", str(small), "--now", NOW, "--report", report)
+        high = peak_rss_kib("check", str(large), "--now", NOW, "--report", report)
+        # The large report lists 2,400 findings (about 1 MB of HTML); holding them, or the
+        # 36 MB of input, would add tens of MB. The bound is generous on purpose.
+        assert high < low * 1.10 + 8 * 1024, (fmt, low, high)
+        assert os.path.getsize(report) > 0
