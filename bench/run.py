@@ -304,7 +304,7 @@ def _prepared(service: NoteService, payload: bytes, who: Principal) -> Any:
     assert note is not None
     note_json = note.model_dump_json(exclude_none=True)
     return service.prepare(
-        note, note_json, findings, (), Version(1), note.status, None, who, "create"
+        note_key(note), note, note_json, findings, (), Version(1), note.status, None, who, "create"
     )
 
 

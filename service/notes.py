@@ -176,6 +176,7 @@ class NoteService:
 
     def prepare(
         self,
+        key: str,
         note: Note,
         note_json: str,
         findings: list[Finding],
@@ -187,8 +188,8 @@ class NoteService:
         action: str,
     ) -> tuple[NewVersion, StoredNote]:
         """Everything a version stores (derived values, schedule, Bundle, search rows, audit
-        entry) and the answer that goes with it; nothing is written yet."""
-        key = note_key(note)
+        entry) and the answer that goes with it; nothing is written yet. key is the note's
+        (note_key), which every caller has already."""
         now = self.clock()
         result = self.assessor.complete(note, findings, prior, emitted)
         if result.bundle is None or result.derived is None:  # complete() always sets both
@@ -237,6 +238,7 @@ class NoteService:
 
     async def _write(
         self,
+        key: str,
         note: Note,
         note_json: str,
         findings: list[Finding],
@@ -248,7 +250,7 @@ class NoteService:
         action: str,
     ) -> StoredNote:
         new, stored = self.prepare(
-            note, note_json, findings, prior, emitted, status, reason, who, action
+            key, note, note_json, findings, prior, emitted, status, reason, who, action
         )
         await self.ledger.write_many([new], forward=self.forward)
         return stored
@@ -266,7 +268,7 @@ class NoteService:
         prior = [PriorSession(r.started_at, r.total_energy_mj) for r in earlier]
         try:
             stored = await self._write(
-                note, note_json, findings, prior, Version(1), note.status, None, who, "create"
+                key, note, note_json, findings, prior, Version(1), note.status, None, who, "create"
             )
         except DuplicateVersionError:
             # Another request stored this note between our read and our write.
@@ -339,7 +341,7 @@ class NoteService:
         prior = await self._priors(note, key)
         try:
             return await self._write(
-                note, note_json, findings, prior, emitted, note.status, reason, who, "amend"
+                key, note, note_json, findings, prior, emitted, note.status, reason, who, "amend"
             )
         except DuplicateVersionError as exc:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc
@@ -357,7 +359,7 @@ class NoteService:
         prior = await self._priors(note, key)
         try:
             return await self._write(
-                note, latest.note_json, [], prior, emitted, "void", reason, who, "void"
+                key, note, latest.note_json, [], prior, emitted, "void", reason, who, "void"
             )
         except DuplicateVersionError as exc:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc

@@ -4,11 +4,13 @@ It implements the parts of FHIR R4 that delivery relies on (Bundle transaction, 
 reference resolution, conditional create with ifNoneExist: no match 201, one match 200,
 several 412; conditional update by identifier; all-or-nothing) and can be told to fail:
 answer 500 before doing anything, do the work and answer 500 (the answer is lost), do the
-work and answer too late for the client's timeout, answer 429 with Retry-After, or 400.
+work and answer too late for the client's timeout, answer 429 with Retry-After, or 400;
+and, through Dropper, a proxy in front of it, drop the connection before or after the work.
 """
 
 from __future__ import annotations
 
+import asyncio
 import copy
 import socket
 import threading
@@ -175,3 +177,79 @@ def running(store: Store, late_s: float = 3.0) -> Iterator[str]:
     finally:
         server.should_exit = True
         thread.join(timeout=20)
+
+
+class Dropper:
+    """A TCP proxy in front of the receiver that drops connections on command, as a failing
+    network or load balancer does: "drop-before" closes the connection once the request has
+    arrived, without passing it on (nothing is applied); "drop-after" passes it on, lets the
+    receiver apply it, then closes without sending the answer (the work is done, the client
+    never hears). Other requests pass through. One fault is used per request, in order."""
+
+    def __init__(self, target_port: int) -> None:
+        self.target_port = target_port
+        self.faults: list[str] = []
+        self.dropped = 0
+        self.loop = asyncio.new_event_loop()
+        self.port = 0
+
+    async def _read_message(self, reader: asyncio.StreamReader) -> bytes:
+        """One HTTP/1.1 message with a Content-Length body (as httpx and uvicorn send)."""
+        head = await reader.readuntil(b"\r\n\r\n")
+        length = 0
+        for line in head.split(b"\r\n")[1:]:
+            name, _, value = line.partition(b":")
+            if name.strip().lower() == b"content-length":
+                length = int(value)
+        return head + (await reader.readexactly(length) if length else b"")
+
+    async def _handle(self, reader: asyncio.StreamReader, writer: asyncio.StreamWriter) -> None:
+        upstream_reader, upstream_writer = await asyncio.open_connection(
+            "127.0.0.1", self.target_port
+        )
+        try:
+            while True:
+                try:
+                    request = await self._read_message(reader)
+                except (asyncio.IncompleteReadError, ConnectionError):
+                    return
+                fault = self.faults.pop(0) if self.faults else ""
+                if fault == "drop-before":
+                    self.dropped += 1
+                    return
+                upstream_writer.write(request)
+                await upstream_writer.drain()
+                answer = await self._read_message(upstream_reader)
+                if fault == "drop-after":
+                    self.dropped += 1
+                    return
+                writer.write(answer)
+                await writer.drain()
+        finally:
+            writer.close()
+            upstream_writer.close()
+
+    def _serve(self, ready: threading.Event) -> None:
+        asyncio.set_event_loop(self.loop)
+        server = self.loop.run_until_complete(
+            asyncio.start_server(self._handle, "127.0.0.1", 0)
+        )
+        self.port = server.sockets[0].getsockname()[1]
+        ready.set()
+        self.loop.run_forever()
+        server.close()
+        self.loop.run_until_complete(server.wait_closed())
+        self.loop.close()
+
+    @contextmanager
+    def running(self) -> Iterator[str]:
+        """Serve on a free port of 127.0.0.1; yields the transaction URL through the proxy."""
+        ready = threading.Event()
+        thread = threading.Thread(target=self._serve, args=(ready,), daemon=True)
+        thread.start()
+        ready.wait(10)
+        try:
+            yield f"http://127.0.0.1:{self.port}/fhir"
+        finally:
+            self.loop.call_soon_threadsafe(self.loop.stop)
+            thread.join(timeout=10)

@@ -24,7 +24,7 @@ from service.store import outbox
 from service.store.database import make_engine, upgrade
 from service.store.ledger import Ledger
 from tests.conftest import NOW, routine
-from tests.fhir_receiver import Store, running
+from tests.fhir_receiver import Dropper, Store, running
 
 WHO = Principal("delivery test", "submitter")
 
@@ -104,6 +104,29 @@ def test_every_bundle_arrives_exactly_once_despite_failures(setup: Any) -> None:
     assert receiver.count("Procedure") == 6
     assert all(n == 1 for n in identifiers(receiver).values())  # nothing twice
     assert receiver.transactions > 6  # the failures really happened and were retried
+
+
+def test_dropped_connections_deliver_every_bundle_exactly_once(setup: Any) -> None:
+    # The connection cut with the request unsent, and cut after the receiver applied it
+    # (the answer lost): ifNoneExist makes the resend harmless (FHIR R4 3.1.0.8.1,
+    # conditional create: a match answers 200 and creates nothing).
+    service, engine, clock = setup
+    for body in notes(4):
+        asyncio.run(service.submit(body, WHO))
+    receiver = Store()
+    with running(receiver) as url:
+        port = int(url.split(":")[2].split("/")[0])
+        dropper = Dropper(port)
+        dropper.faults = ["drop-before", "drop-after", "drop-after", "", "drop-before"]
+        with dropper.running() as proxied:
+            worker = worker_for(engine, proxied, clock)
+            drain(worker, clock)
+            worker.client.close()
+    assert dropper.dropped == 4
+    assert states(engine) == Counter({"delivered": 4})
+    assert receiver.count("Procedure") == 4
+    assert all(n == 1 for n in identifiers(receiver).values())  # nothing twice
+    assert receiver.applied == 6  # 8 requests, 2 cut before the receiver; 2 answers lost
 
 
 def test_a_refusal_is_parked_with_the_receivers_answer(setup: Any) -> None:

@@ -121,11 +121,17 @@ def test_checkpoints_copy_the_log_into_the_database(tmp_path: Path) -> None:
         assert connection.execute("select count(*) from note_version").fetchone() == (30,)
 
 
+def checkpoint_threads() -> set[threading.Thread]:
+    return {t for t in threading.enumerate() if t.name == "capnote-checkpoint"}
+
+
 def test_the_app_checkpoints_in_a_thread_of_its_own(tmp_path: Path) -> None:
     app = create_app(Settings(database_url=f"sqlite:///{tmp_path / 'app.sqlite3'}"))
+    others = checkpoint_threads()  # other tests' apps may still be closing theirs
     with TestClient(app):
-        assert any(t.name == "capnote-checkpoint" for t in threading.enumerate())
-    assert not any(t.name == "capnote-checkpoint" for t in threading.enumerate())
+        mine = checkpoint_threads() - others
+        assert len(mine) == 1
+    assert not mine & checkpoint_threads()  # stopped with the app
     app.state.engine.dispose()
 
 

@@ -15,7 +15,7 @@ from service.derive import Derived
 from service.errors import EmissionError
 from service.fhir.bindings import binding_problems
 from service.fhir.codes import RESOURCE_KEY
-from service.fhir.common import Context, Emitted, Entry, Version, key_query, stable_uuid
+from service.fhir.common import Context, Emitted, Entry, Version, key_query
 from service.fhir.observations import observations
 from service.fhir.procedure import procedure
 from service.fhir.requests import administrations, medication_request, service_request
@@ -24,10 +24,14 @@ from service.schedule import DueItem
 
 
 def entries(
-    note: Note, derived: Derived, due: list[DueItem], version: Version | None = None
+    note: Note,
+    derived: Derived,
+    due: list[DueItem],
+    version: Version | None = None,
+    ctx: Context | None = None,
 ) -> list[Entry]:
     """Every resource for the note version, the Procedure first."""
-    ctx = Context(note, version)
+    ctx = ctx or Context(note, version)
     proc = procedure(ctx, derived, due)
     out = [proc, *observations(ctx, proc, derived)]
     out += [service_request(ctx, proc, item) for item in due]
@@ -108,12 +112,13 @@ def emit(
     # No id or meta here: a receiver assigns its own, and a conditional update must not
     # carry an id that may differ from the matched resource's. The read API adds both.
     version = version or Version()
-    items = entries(note, derived, due, version)
+    ctx = Context(note, version)
+    items = entries(note, derived, due, version, ctx)
     if version.previous is not None:
         items += withdrawn(version.previous, {e.key for e in items})
     result: dict[str, Any] = {
         "resourceType": "Bundle",
-        "identifier": {"system": RESOURCE_KEY, "value": stable_uuid(note, "bundle")},
+        "identifier": {"system": RESOURCE_KEY, "value": ctx.keys.key("bundle")},
         "type": "transaction",
         "entry": [
             {

@@ -9,6 +9,7 @@ from schemas.note import Note, TimedIopReading, VisualAcuity
 from service.acuity import AcuityError, to_logmar
 from service.derive import total_energy_mj
 from service.findings import Finding
+from service.policy.model import Range
 from service.rules.base import Check, Context, error, outside_limit
 
 
@@ -16,95 +17,96 @@ def ranges(note: Note, ctx: Context) -> Iterator[Finding]:
     """Every number against its hard limit."""
     lim = ctx.policy.limits
     before, laser, result, plan = note.before, note.laser, note.result, note.plan
-    candidates: list[Finding | None] = [
-        outside_limit("before.iop.value_mmhg", before.iop.value_mmhg, lim.iop_mmhg, "IOP"),
-        outside_limit("laser.wavelength_nm", laser.wavelength_nm, lim.wavelength_nm, "wavelength"),
-        outside_limit(
+    # (location, value, limit, what): locations of list items are made only for a value
+    # that breaks its limit, since nearly every note breaks none.
+    checks: list[tuple[str, float | None, Range, str]] = [
+        ("before.iop.value_mmhg", before.iop.value_mmhg, lim.iop_mmhg, "IOP"),
+        ("laser.wavelength_nm", laser.wavelength_nm, lim.wavelength_nm, "wavelength"),
+        (
             "before.iol.optic_diameter_mm",
             before.iol.optic_diameter_mm,
             lim.iol_optic_mm,
             "IOL optic diameter",
         ),
-        outside_limit(
+        (
             "before.risk_factors.axial_length_mm",
             before.risk_factors.axial_length_mm,
             lim.axial_length_mm,
             "axial length",
         ),
-        outside_limit(
+        (
             "laser.contact_lens.cone_angle_deg",
             laser.contact_lens.cone_angle_deg,
             lim.cone_angle_deg,
             "cone angle",
         ),
-        outside_limit(
+        (
             "plan.iop_recheck_minutes",
             plan.iop_recheck_minutes,
             lim.iop_recheck_minutes,
             "IOP recheck interval",
         ),
-        outside_limit("plan.review_days", plan.review_days, lim.review_days, "review interval"),
+        ("plan.review_days", plan.review_days, lim.review_days, "review interval"),
     ]
     if laser.focus is not None:
-        candidates.append(
-            outside_limit(
+        checks.append(
+            (
                 "laser.focus.distance_mm",
                 laser.focus.distance_mm,
                 lim.focus_distance_mm,
                 "focus distance",
             )
         )
+    for location, value, limit, what in checks:
+        found = outside_limit(location, value, limit, what)
+        if found is not None:
+            yield found
     for i, s in enumerate(laser.series):
-        where = f"laser.series[{i}]"
-        candidates.append(
-            outside_limit(f"{where}.energy_mj", s.energy_mj, lim.pulse_energy_mj, "pulse energy")
-        )
-        candidates.append(
-            outside_limit(f"{where}.pulses", s.pulses, lim.pulses_per_series, "pulse count")
-        )
+        if not lim.pulse_energy_mj.contains(s.energy_mj):
+            yield _outside(
+                f"laser.series[{i}].energy_mj", s.energy_mj, lim.pulse_energy_mj, "pulse energy"
+            )
+        if not lim.pulses_per_series.contains(s.pulses):
+            yield _outside(
+                f"laser.series[{i}].pulses", s.pulses, lim.pulses_per_series, "pulse count"
+            )
     if result.opening is not None:
-        candidates.append(
-            outside_limit(
-                "result.opening.horizontal_mm",
-                result.opening.horizontal_mm,
-                lim.opening_mm,
-                "opening diameter",
+        for side, value in (
+            ("horizontal_mm", result.opening.horizontal_mm),
+            ("vertical_mm", result.opening.vertical_mm),
+        ):
+            found = outside_limit(
+                f"result.opening.{side}", value, lim.opening_mm, "opening diameter"
             )
-        )
-        candidates.append(
-            outside_limit(
-                "result.opening.vertical_mm",
-                result.opening.vertical_mm,
-                lim.opening_mm,
-                "opening diameter",
-            )
-        )
+            if found is not None:
+                yield found
     for i, r in enumerate(result.iop_after):
-        candidates.append(
-            outside_limit(f"result.iop_after[{i}].value_mmhg", r.value_mmhg, lim.iop_mmhg, "IOP")
-        )
-    strengths = [
-        (f"plan.prophylaxis[{i}]", d.strength_percent) for i, d in enumerate(plan.prophylaxis)
-    ] + [(f"plan.take_home[{i}]", d.strength_percent) for i, d in enumerate(plan.take_home)]
-    for where, strength in strengths:
-        candidates.append(
-            outside_limit(
-                f"{where}.strength_percent", strength, lim.drop_strength_percent, "drop strength"
-            )
-        )
+        if not lim.iop_mmhg.contains(r.value_mmhg):
+            yield _outside(f"result.iop_after[{i}].value_mmhg", r.value_mmhg, lim.iop_mmhg, "IOP")
+    strengths = lim.drop_strength_percent
+    drops = [("prophylaxis", i, d.strength_percent) for i, d in enumerate(plan.prophylaxis)]
+    drops += [("take_home", i, d.strength_percent) for i, d in enumerate(plan.take_home)]
+    for group, i, strength in drops:
+        if strength is not None and not strengths.contains(strength):
+            where = f"plan.{group}[{i}].strength_percent"
+            yield _outside(where, strength, strengths, "drop strength")
     for i, h in enumerate(plan.take_home):
-        candidates.append(
-            outside_limit(
+        if not lim.drop_times_per_day.contains(h.times_per_day):
+            yield _outside(
                 f"plan.take_home[{i}].times_per_day",
                 h.times_per_day,
                 lim.drop_times_per_day,
                 "doses per day",
             )
-        )
-        candidates.append(
-            outside_limit(f"plan.take_home[{i}].days", h.days, lim.drop_days, "course length")
-        )
-    yield from (c for c in candidates if c is not None)
+        if not lim.drop_days.contains(h.days):
+            yield _outside(f"plan.take_home[{i}].days", h.days, lim.drop_days, "course length")
+
+
+def _outside(location: str, value: float, limit: Range, what: str) -> Finding:
+    """The finding for a value already known to be outside its limit."""
+    found = outside_limit(location, value, limit, what)
+    assert found is not None  # the caller saw the value outside the limit
+    return found
 
 
 def _acuity(location: str, acuity: VisualAcuity | None, ctx: Context) -> Iterator[Finding]:
