@@ -20,8 +20,7 @@ from service.assess import Assessor
 from service.config import Settings, effective_policy
 from service.delivery import DeliveryWorker
 from service.notes import Clock, NoteService
-from service.store.database import make_engine, upgrade
-from service.store.ledger import Ledger
+from service.store.database import make_engine, open_ledger, upgrade
 
 DESCRIPTION = (
     "Structured, checked records of Nd:YAG laser posterior capsulotomy sessions, emitted as "
@@ -43,7 +42,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     if settings.migrate_on_start:
         upgrade(engine)
     receiver = settings.receiver()
-    ledger = Ledger(settings.database_url)
+    ledger = open_ledger(settings.database_url)
 
     @asynccontextmanager
     async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
@@ -52,7 +51,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         # collection, which otherwise costs about a tenth of each request's time.
         gc.collect()
         gc.freeze()
-        ledger.start_checkpoints()
+        await ledger.start()
         # Delivery runs beside the service when forwarding is on; claims in the database keep
         # several processes from sending one entry twice.
         stop = threading.Event()
@@ -66,7 +65,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         if thread is not None and worker is not None:
             thread.join(timeout=10)
             worker.close()
-        ledger.close()
+        await ledger.aclose()
 
     # No /docs or /redoc: both pages load their scripts from a CDN, which the CSP (and many
     # hospital networks) refuse; the OpenAPI document itself is at /openapi.json.

@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import asyncio
 import json
-from collections.abc import Iterator
+from collections.abc import Callable, Coroutine, Iterator
 from datetime import UTC, datetime
 from itertools import count
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeVar
 
 import pytest
 from fastapi.testclient import TestClient
@@ -16,8 +17,10 @@ from sqlmodel import Session
 from service.app import create_app
 from service.assess import Assessor
 from service.config import Settings
+from service.notes import NoteService, Principal, StoredNote
 from service.policy import Policy, load_policy
 from service.store import repository
+from service.store.database import make_engine, open_ledger, upgrade
 from tests.pg_cluster import PgCluster
 from tests.pg_fixtures import postgres_cluster  # noqa: F401
 
@@ -27,6 +30,7 @@ VALID = sorted((EXAMPLES / "notes").glob("*.json"))
 INVALID = sorted((EXAMPLES / "invalid").glob("*.json"))
 # The examples are set in late November 2026; checks run as if on this day.
 NOW = datetime(2026, 12, 1, 12, 0, tzinfo=UTC)
+T = TypeVar("T")
 
 
 @pytest.fixture(scope="session")
@@ -89,3 +93,45 @@ def api(database_url: str) -> Iterator[Api]:
     with TestClient(app) as client:
         yield Api(client, tokens)
     app.state.engine.dispose()
+
+
+class SyncNotes:
+    """A NoteService called from plain test code: every call runs in one event loop of its
+    own (a PostgreSQL ledger's pool belongs to the loop that opened it)."""
+
+    def __init__(self, service: NoteService) -> None:
+        self.service = service
+        self._runner = asyncio.Runner()
+
+    def run(self, call: Coroutine[Any, Any, T]) -> T:
+        """Await one call."""
+        return self._runner.run(call)
+
+    def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredNote]:
+        return self.run(self.service.submit(payload, who))
+
+    def amend(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
+        return self.run(self.service.amend(key, body, who, if_match))
+
+    def void(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
+        return self.run(self.service.void(key, body, who, if_match))
+
+    def get(self, key: str, version: int | None = None) -> StoredNote:
+        return self.run(self.service.get(key, version))
+
+    def versions(self, key: str) -> list[dict[str, Any]]:
+        return self.run(self.service.versions(key))
+
+    def close(self) -> None:
+        """Close the ledger (in its loop), the loop and the engine."""
+        self.run(self.service.ledger.aclose())
+        self._runner.close()
+        self.service.engine.dispose()
+
+
+def sync_notes(url: str, clock: Callable[[], datetime] = lambda: NOW, **kw: Any) -> SyncNotes:
+    """A migrated database at url and a NoteService over it, called synchronously."""
+    engine = make_engine(url)
+    upgrade(engine)
+    service = NoteService(engine, open_ledger(url), Assessor(load_policy()), clock, **kw)
+    return SyncNotes(service)

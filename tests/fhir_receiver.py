@@ -231,9 +231,7 @@ class Dropper:
 
     def _serve(self, ready: threading.Event) -> None:
         asyncio.set_event_loop(self.loop)
-        server = self.loop.run_until_complete(
-            asyncio.start_server(self._handle, "127.0.0.1", 0)
-        )
+        server = self.loop.run_until_complete(asyncio.start_server(self._handle, "127.0.0.1", 0))
         self.port = server.sockets[0].getsockname()[1]
         ready.set()
         self.loop.run_forever()

@@ -219,11 +219,11 @@ def test_database_down_answers_503_with_retry_after(api: Api) -> None:
     app.state.engine.dispose()
     from sqlalchemy import create_engine
 
-    from service.store.ledger import Ledger
+    from service.store.database import open_ledger
 
     nowhere = "postgresql+psycopg://nobody@127.0.0.1:1/none"
     dead = create_engine(nowhere, pool_pre_ping=False)
-    dead_ledger = Ledger(nowhere)
+    dead_ledger = open_ledger(nowhere)
     app.state.engine = dead
     app.state.notes.engine = dead
     app.state.ledger = app.state.notes.ledger = dead_ledger
@@ -239,7 +239,7 @@ def test_database_down_answers_503_with_retry_after(api: Api) -> None:
         assert ready.headers["retry-after"]
     finally:
         dead.dispose()
-        dead_ledger.close()
+        api.client.portal.call(dead_ledger.aclose)  # in the app's loop, which opened it
 
 
 def test_a_real_server_logs_no_traceback_for_an_unexpected_error(

@@ -3,7 +3,6 @@ however the receiver fails, on both databases."""
 
 from __future__ import annotations
 
-import asyncio
 import json
 import threading
 from collections import Counter
@@ -16,14 +15,10 @@ import pytest
 from sqlalchemy import text
 from sqlmodel import Session
 
-from service.assess import Assessor
 from service.delivery import DeliveryWorker, Receiver
-from service.notes import NoteService, Principal
-from service.policy import load_policy
+from service.notes import Principal
 from service.store import outbox
-from service.store.database import make_engine, upgrade
-from service.store.ledger import Ledger
-from tests.conftest import NOW, routine
+from tests.conftest import NOW, SyncNotes, routine, sync_notes
 from tests.fhir_receiver import Dropper, Store, running
 
 WHO = Principal("delivery test", "submitter")
@@ -40,15 +35,11 @@ class Clock:
 
 
 @pytest.fixture
-def setup(database_url: str) -> Iterator[tuple[NoteService, Any, Clock]]:
-    engine = make_engine(database_url)
-    upgrade(engine)
+def setup(database_url: str) -> Iterator[tuple[SyncNotes, Any, Clock]]:
     clock = Clock()
-    ledger = Ledger(database_url)
-    service = NoteService(engine, ledger, Assessor(load_policy()), clock, forward=True)
-    yield service, engine, clock
-    ledger.close()
-    engine.dispose()
+    service = sync_notes(database_url, clock, forward=True)
+    yield service, service.service.engine, clock
+    service.close()
 
 
 def notes(n: int) -> list[bytes]:
@@ -93,7 +84,7 @@ def worker_for(engine: Any, url: str, clock: Clock, timeout_s: float = 1.0) -> D
 def test_every_bundle_arrives_exactly_once_despite_failures(setup: Any) -> None:
     service, engine, clock = setup
     for body in notes(6):
-        asyncio.run(service.submit(body, WHO))
+        service.submit(body, WHO)
     receiver = Store()
     receiver.faults = ["500-before", "500-after", "late", "429", "500-after", "late"]
     with running(receiver, late_s=2.0) as url:
@@ -112,7 +103,7 @@ def test_dropped_connections_deliver_every_bundle_exactly_once(setup: Any) -> No
     # conditional create: a match answers 200 and creates nothing).
     service, engine, clock = setup
     for body in notes(4):
-        asyncio.run(service.submit(body, WHO))
+        service.submit(body, WHO)
     receiver = Store()
     with running(receiver) as url:
         port = int(url.split(":")[2].split("/")[0])
@@ -131,7 +122,7 @@ def test_dropped_connections_deliver_every_bundle_exactly_once(setup: Any) -> No
 
 def test_a_refusal_is_parked_with_the_receivers_answer(setup: Any) -> None:
     service, engine, clock = setup
-    asyncio.run(service.submit(notes(1)[0], WHO))
+    service.submit(notes(1)[0], WHO)
     receiver = Store()
     receiver.faults = ["400"]
     with running(receiver) as url:
@@ -148,7 +139,7 @@ def test_a_refusal_is_parked_with_the_receivers_answer(setup: Any) -> None:
 
 def test_an_amendment_updates_what_the_receiver_holds(setup: Any) -> None:
     service, engine, clock = setup
-    _, stored = asyncio.run(service.submit(notes(1)[0], WHO))
+    _, stored = service.submit(notes(1)[0], WHO)
     receiver = Store()
     with running(receiver) as url:
         worker = worker_for(engine, url, clock)
@@ -156,7 +147,7 @@ def test_an_amendment_updates_what_the_receiver_holds(setup: Any) -> None:
         changed = json.loads(notes(1)[0])
         changed["result"]["opening"]["horizontal_mm"] = 4.0
         body = json.dumps({"reason": "re-measured", "note": changed}).encode()
-        asyncio.run(service.amend(stored.key, body, WHO, None))
+        service.amend(stored.key, body, WHO, None)
         drain(worker, clock, rounds=2)
         worker.client.close()
     assert states(engine) == Counter({"delivered": 2})
@@ -168,7 +159,7 @@ def test_an_amendment_updates_what_the_receiver_holds(setup: Any) -> None:
 def test_two_workers_never_deliver_one_entry_twice(setup: Any) -> None:
     service, engine, clock = setup
     for body in notes(10):
-        asyncio.run(service.submit(body, WHO))
+        service.submit(body, WHO)
     receiver = Store()
     with running(receiver) as url:
         workers = [worker_for(engine, url, clock, timeout_s=10) for _ in range(2)]
@@ -186,7 +177,7 @@ def test_two_workers_never_deliver_one_entry_twice(setup: Any) -> None:
 def test_each_note_version_has_exactly_one_outbox_entry(setup: Any) -> None:
     service, engine, _clock = setup
     for body in notes(3):
-        asyncio.run(service.submit(body, WHO))
+        service.submit(body, WHO)
     with engine.connect() as connection:
         orphans = connection.execute(
             text(
@@ -242,7 +233,7 @@ def test_operator_commands_deliver_list_retry_park(setup: Any, database_url: str
     from tests.conftest import ROOT
 
     service, _engine, _clock = setup
-    asyncio.run(service.submit(notes(1)[0], WHO))
+    service.submit(notes(1)[0], WHO)
     receiver = Store()
     receiver.faults = ["400"]
     with running(receiver) as url:

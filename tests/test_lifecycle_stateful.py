@@ -19,7 +19,7 @@ from service.errors import ConflictError, InputError, NotFoundError, Preconditio
 from service.notes import NoteService, Principal, StoredNote
 from service.policy import load_policy
 from service.store.database import make_engine, upgrade
-from service.store.ledger import Ledger
+from service.store.ledger_sqlite import SqliteLedger
 from tests.conftest import NOW, routine
 
 WHO = Principal("stateful test", "submitter")
@@ -55,7 +55,7 @@ class Lifecycle(RuleBasedStateMachine):
         self.folder = tempfile.TemporaryDirectory()
         self.engine = make_engine(f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}")
         upgrade(self.engine)
-        self.ledger = Ledger(f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}")
+        self.ledger = SqliteLedger(f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}")
         self.service = NoteService(self.engine, self.ledger, Assessor(load_policy()), lambda: NOW)
         self.model: dict[str, list[tuple[float, str]]] = {}
         self.keys: dict[str, str] = {}

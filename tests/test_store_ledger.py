@@ -29,27 +29,29 @@ from service.policy import load_policy
 from service.store import repository
 from service.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
 from service.store.database import MIGRATIONS, make_engine, upgrade
-from service.store.ledger import Ledger
+from service.store.ledger_sqlite import SqliteLedger
 from service.store.tables import FhirIndex, NoteVersion
-from tests.conftest import NOW, VALID, routine
+from tests.conftest import NOW, VALID, routine, sync_notes
 
 WHO = Principal("ledger test", "submitter")
 
 
 def service_on(url: str) -> NoteService:
+    """A NoteService on a SQLite file (these tests are SQLite's own)."""
     engine = make_engine(url)
     upgrade(engine)
-    return NoteService(engine, Ledger(url), Assessor(load_policy()), lambda: NOW)
+    return NoteService(engine, SqliteLedger(url), Assessor(load_policy()), lambda: NOW)
 
 
 def test_a_written_version_reads_back_through_the_orm(database_url: str) -> None:
-    service = service_on(database_url)
+    notes = sync_notes(database_url)
+    service = notes.service
     try:
-        _created, stored = asyncio.run(service.submit(VALID[0].read_bytes(), WHO))
+        _created, stored = notes.submit(VALID[0].read_bytes(), WHO)
         with Session(service.engine) as session:
             row = session.exec(select(NoteVersion)).one()
             index = session.exec(select(FhirIndex)).all()
-        latest = asyncio.run(service.ledger.latest(stored.key))
+        latest = notes.run(service.ledger.latest(stored.key))
         assert latest is not None
         # Times as the ORM reads what the driver wrote, and back.
         assert repository.from_db(row.recorded_at) == NOW == latest.recorded_at
@@ -60,8 +62,7 @@ def test_a_written_version_reads_back_through_the_orm(database_url: str) -> None
             ("ServiceRequest", True),
         }
     finally:
-        service.ledger.close()
-        service.engine.dispose()
+        notes.close()
 
 
 def test_a_held_write_lock_is_waited_for_without_stopping_the_loop(tmp_path: Path) -> None:
@@ -96,8 +97,13 @@ def test_a_held_write_lock_is_waited_for_without_stopping_the_loop(tmp_path: Pat
         assert ticks >= 10  # ... and the loop went on meanwhile
     finally:
         other.close()
-        service.ledger.close()
+        ledger_of(service).close()
         service.engine.dispose()
+
+
+def ledger_of(service: NoteService) -> SqliteLedger:
+    assert isinstance(service.ledger, SqliteLedger)
+    return service.ledger
 
 
 def routine_bytes() -> bytes:
@@ -107,13 +113,13 @@ def routine_bytes() -> bytes:
 def test_checkpoints_copy_the_log_into_the_database(tmp_path: Path) -> None:
     path = tmp_path / "ckpt.sqlite3"
     service = service_on(f"sqlite:///{path}")
-    service.ledger.start_checkpoints()
+    asyncio.run(service.ledger.start())
     before = path.stat().st_size
     for i in range(30):
         data = routine()
         data["note_id"]["value"] = f"LN-CKPT-{i}"
         asyncio.run(service.submit(json.dumps(data).encode(), WHO))
-    service.ledger.close()  # stops the checkpoints, with a last one
+    ledger_of(service).close()  # stops the checkpoints, with a last one
     service.engine.dispose()
     assert path.stat().st_size > before  # pages reached the database file
     with sqlite3.connect(path) as connection:

@@ -174,13 +174,13 @@ def _load_demo(settings: Settings, engine: Engine) -> None:
         )
 
     async def load() -> None:
-        for path in demo:
-            await notes.submit(path.read_bytes(), who)
+        try:
+            for path in demo:
+                await notes.submit(path.read_bytes(), who)
+        finally:
+            await notes.ledger.aclose()
 
-    try:
-        asyncio.run(load())
-    finally:
-        notes.ledger.close()
+    asyncio.run(load())
     with Session(engine) as session:
         token, _row = repository.new_token(session, "clinician", "demo", datetime.now(UTC))
         session.commit()

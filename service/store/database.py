@@ -11,6 +11,9 @@ from sqlalchemy import Engine, create_engine, event, text
 from sqlalchemy.engine import make_url
 
 from service.errors import UnavailableError
+from service.store.ledger import Ledger
+from service.store.ledger_pg import PostgresLedger
+from service.store.ledger_sqlite import SqliteLedger
 
 MIGRATIONS = Path(__file__).parent / "migrations"
 # How long SQLite waits for another writer before giving up (ms): writers queue, clients
@@ -28,6 +31,13 @@ def make_engine(url: str) -> Engine:
         event.listen(engine, "connect", _sqlite_pragmas)
         return engine
     return create_engine(url, pool_pre_ping=True, pool_size=5, max_overflow=10)
+
+
+def open_ledger(url: str) -> Ledger:
+    """The request path's store for the URL (service.store.ledger)."""
+    if make_url(url).get_backend_name() == "sqlite":
+        return SqliteLedger(url)
+    return PostgresLedger(url)
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:

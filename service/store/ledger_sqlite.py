@@ -1,0 +1,304 @@
+"""The ledger on SQLite: statements on the event loop, checkpoints in a thread of their own.
+
+SQLite statements take microseconds, so they run on the loop itself, on one connection per
+process: no thread hop, no lock hand-over. Writers of several processes take turns on
+SQLite's write lock; a writer that finds it taken does not sleep in SQLite's busy handler
+(which would stop the loop for a millisecond or more) but awaits a short back-off and
+tries again, so the loop keeps serving meanwhile. BEGIN IMMEDIATE takes the lock before
+anything is written, so a busy database is met at the start and the whole call retried.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import logging
+import random
+import sqlite3
+import threading
+import time
+from collections.abc import Callable, Sequence
+from datetime import UTC, datetime
+from typing import Any, TypeVar
+
+from sqlalchemy.dialects import sqlite as sqlite_dialect
+from sqlalchemy.engine import make_url
+
+from service.errors import UnavailableError
+from service.store.ledger import (
+    VERSION_COLUMNS,
+    DuplicateVersionError,
+    EarlierSession,
+    Ledger,
+    NewVersion,
+    Sql,
+    TokenRow,
+    VersionRow,
+    compiled,
+    earlier_from_rows,
+    token_row,
+    version_row,
+)
+
+log = logging.getLogger("capnote.store")
+T = TypeVar("T")
+
+# How long a writer keeps trying for the write lock before answering 503.
+LOCK_WAIT_S = 15.0
+
+
+class SqliteLedger(Ledger):
+    """The ledger on one SQLite file (see the module docstring)."""
+
+    def __init__(self, url: str) -> None:
+        self._path = make_url(url).database or ":memory:"
+        self._sql = compiled(sqlite_dialect.dialect(paramstyle="named"))
+        self._connection: sqlite3.Connection | None = None
+        self._checkpointer: Checkpointer | None = None
+        # A sqlite3 connection must not be used by two threads at once: calls run on the
+        # loop, but tests and the command line may call from other threads.
+        self._lock = threading.Lock()
+
+    # -- running calls ------------------------------------------------------------------------
+
+    def _open(self) -> sqlite3.Connection:
+        if self._connection is None:
+            connection = sqlite3.connect(
+                self._path, isolation_level=None, check_same_thread=False, timeout=0
+            )
+            for pragma in (
+                "journal_mode=WAL",
+                "synchronous=NORMAL",
+                "foreign_keys=ON",
+                # A busy lock answers at once: the loop waits by awaiting, not sleeping.
+                "busy_timeout=0",
+            ):
+                connection.execute(f"PRAGMA {pragma}")
+            if self._checkpointer is not None:
+                connection.execute("PRAGMA wal_autocheckpoint=0")
+            self._connection = connection
+        return self._connection
+
+    async def _run(self, work: Callable[[sqlite3.Connection], T]) -> T:
+        deadline = time.monotonic() + LOCK_WAIT_S
+        delay = 0.0002
+        while True:
+            with self._lock:
+                connection = self._open()
+                try:
+                    return work(connection)
+                except sqlite3.OperationalError as exc:
+                    if connection.in_transaction:
+                        connection.rollback()
+                    if not _locked(exc):
+                        raise UnavailableError("the database cannot be used right now") from exc
+            if time.monotonic() > deadline:
+                raise UnavailableError("the database stayed locked; retry after a few seconds")
+            # Another process holds the write lock for well under a millisecond: wait a little,
+            # with jitter so that two waiting processes do not retry in step.
+            await asyncio.sleep(delay * (0.5 + random.random()))  # noqa: S311 (not security)
+            delay = min(delay * 2, 0.005)
+
+    # -- lifetime -----------------------------------------------------------------------------
+
+    async def start(self) -> None:
+        """Move the WAL checkpoints to a thread of their own."""
+        if self._checkpointer is not None:
+            return
+        self._checkpointer = Checkpointer(self._path)
+        with self._lock:
+            if self._connection is not None:
+                self._connection.execute("PRAGMA wal_autocheckpoint=0")
+        self._checkpointer.start()
+
+    async def aclose(self) -> None:
+        """Stop the checkpoints and close the connection."""
+        self.close()
+
+    def close(self) -> None:
+        """aclose() for callers without a loop (the command line, tests)."""
+        if self._checkpointer is not None:
+            self._checkpointer.stop()
+            self._checkpointer = None
+        with self._lock:
+            if self._connection is not None:
+                self._connection.close()
+                self._connection = None
+
+    # -- the operations -----------------------------------------------------------------------
+
+    async def token(self, digest: str) -> TokenRow | None:
+        """The live token with this SHA-256 digest, or None."""
+        sql = self._sql["token"]
+
+        def work(connection: sqlite3.Connection) -> TokenRow | None:
+            rows = _all(connection, sql, {"digest": digest})
+            return token_row(rows[0] if rows else None, digest)
+
+        return await self._run(work)
+
+    async def before_write(
+        self, key: str, patient: tuple[str, str], eye: str, before: datetime
+    ) -> tuple[list[str], list[EarlierSession]]:
+        """The note's stored digests and the eye's earlier sessions (see Ledger)."""
+        hashes_sql, earlier_sql = self._sql["hashes"], self._sql["earlier"]
+        params = {
+            "patient_system": patient[0],
+            "patient_value": patient[1],
+            "eye": eye,
+            "before": _moment(before),
+        }
+
+        def work(connection: sqlite3.Connection) -> tuple[list[str], list[EarlierSession]]:
+            hashes = [digest for (digest,) in _all(connection, hashes_sql, {"key": key})]
+            return hashes, earlier_from_rows(key, _all(connection, earlier_sql, params))
+
+        return await self._run(work)
+
+    async def latest(self, key: str) -> VersionRow | None:
+        """The newest version of a note, or None."""
+        rows = await self._versions("latest", {"key": key})
+        return rows[0] if rows else None
+
+    async def version(self, key: str, version: int) -> VersionRow | None:
+        """One version of a note, or None."""
+        rows = await self._versions("version", {"key": key, "version": version})
+        return rows[0] if rows else None
+
+    async def versions(self, key: str) -> list[VersionRow]:
+        """Every version of a note, oldest first."""
+        return await self._versions("versions", {"key": key})
+
+    async def _versions(self, name: str, params: dict[str, Any]) -> list[VersionRow]:
+        sql = self._sql[name]
+        return await self._run(lambda c: [version_row(r) for r in _all(c, sql, params)])
+
+    async def write_many(self, versions: Sequence[NewVersion], *, forward: bool) -> None:
+        """Store the versions in one transaction (see Ledger)."""
+        steps = [step for v in versions for step in self._steps(v, forward=forward)]
+
+        def work(connection: sqlite3.Connection) -> None:
+            # IMMEDIATE: the write lock is taken here or not at all, so a busy database is
+            # met before anything is written and the whole call can be retried.
+            connection.execute("BEGIN IMMEDIATE")
+            try:
+                for sql, params in steps:
+                    if isinstance(params, list):
+                        connection.executemany(sql.text, [sql.params(p) for p in params])
+                    else:
+                        connection.execute(sql.text, sql.params(params))
+                connection.execute("COMMIT")
+            except sqlite3.IntegrityError as exc:
+                connection.rollback()
+                raise DuplicateVersionError from exc
+            except BaseException:
+                if connection.in_transaction:
+                    connection.rollback()
+                raise
+
+        await self._run(work)
+
+    def _steps(self, new: NewVersion, *, forward: bool) -> list[tuple[Sql, Any]]:
+        """The statements (and their parameters) that store one version."""
+        row, sql = new.row, self._sql
+        version = {name: getattr(row, name) for name in VERSION_COLUMNS}
+        version["started_at"] = _moment(row.started_at)
+        version["recorded_at"] = _moment(row.recorded_at)
+        steps: list[tuple[Sql, Any]] = [(sql["add_version"], version)]  # the constraint first
+        if row.version > 1:
+            steps.append((sql["retire"], {"key": row.note_key}))
+        if new.index:
+            rows = [
+                {
+                    "note_key": row.note_key,
+                    "role": i.role,
+                    "version": row.version,
+                    "resource_type": i.resource_type,
+                    "status": i.status,
+                    "date": None if i.date is None else _moment(i.date),
+                }
+                for i in new.index
+            ]
+            steps.append((sql["add_index"], rows))
+        audit = new.audit
+        audit_params = {
+            "at": _moment(audit.at),
+            "actor": audit.actor,
+            "role": audit.role,
+            "action": audit.action,
+            "note_key": row.note_key,
+            "version": row.version,
+            "remote": audit.remote,
+        }
+        steps.append((sql["add_audit"], audit_params))
+        if forward:
+            at = _moment(row.recorded_at)
+            steps.append(
+                (sql["add_outbox"], {"note_key": row.note_key, "version": row.version, "at": at})
+            )
+        return steps
+
+
+class Checkpointer:
+    """Copies SQLite's write-ahead log into the database file from a thread of its own.
+
+    With automatic checkpoints, the commit that crosses the threshold copies every page and
+    syncs the file, stalling its request (and, on the event loop, every other) for
+    milliseconds. Here a passive checkpoint, which never blocks writers, runs a few times a
+    second; a page written many times in between is copied once. Under steady writing a
+    passive checkpoint never catches the log's end, so the log would grow without bound:
+    once it holds RESTART_FRAMES, a restarting checkpoint takes the write lock for the
+    little that is left (writers await it: see SqliteLedger._run) and the log starts over.
+    """
+
+    INTERVAL_S = 0.2
+    RESTART_FRAMES = 4000
+
+    def __init__(self, path: str) -> None:
+        self.path = path
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._loop, name="capnote-checkpoint", daemon=True)
+
+    def start(self) -> None:
+        """Begin checkpointing."""
+        self._thread.start()
+
+    def stop(self) -> None:
+        """Checkpoint once more and end the thread."""
+        self._stop.set()
+        self._thread.join(timeout=30)
+
+    def _loop(self) -> None:
+        # The busy timeout lets a restarting checkpoint wait for the writer of the moment.
+        connection = sqlite3.connect(self.path, isolation_level=None, timeout=2)
+        try:
+            while not self._stop.wait(self.INTERVAL_S):
+                self._checkpoint(connection)
+            self._checkpoint(connection)
+        finally:
+            connection.close()
+
+    def _checkpoint(self, connection: sqlite3.Connection) -> None:
+        try:
+            # (busy, frames in the log, frames copied); fetched, so no statement stays open
+            # (an open one would hold a read mark and keep the log from starting over).
+            _busy, frames, _copied = connection.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()
+            if frames >= self.RESTART_FRAMES:
+                connection.execute("PRAGMA wal_checkpoint(RESTART)").fetchone()
+        except sqlite3.Error as exc:  # a checkpoint that fails is retried by the next one
+            log.warning("WAL checkpoint skipped: %s", type(exc).__name__)
+
+
+def _moment(moment: datetime) -> str:
+    """A time as SQLAlchemy keeps it in SQLite (UTC, text), so the ORM reads it back."""
+    return moment.astimezone(UTC).strftime("%Y-%m-%d %H:%M:%S.%f")
+
+
+def _locked(exc: sqlite3.OperationalError) -> bool:
+    text = str(exc)
+    return "locked" in text or "busy" in text
+
+
+def _all(connection: sqlite3.Connection, sql: Sql, params: dict[str, Any]) -> list[Any]:
+    """Every row of a query. Every row is fetched: a statement left unfinished keeps its read
+    snapshot, which stops checkpoints there and keeps the log from ever starting over."""
+    return connection.execute(sql.text, sql.params(params)).fetchall()
