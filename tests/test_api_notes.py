@@ -6,7 +6,14 @@ import json
 from typing import Any
 
 import pytest
+from fastapi.testclient import TestClient
+from pydantic import ValidationError
+from sqlmodel import Session
 
+from service.app import create_app
+from service.config import Settings
+from service.fhir.bundle import OutputCheck
+from service.store import repository
 from tests.conftest import EXAMPLES, INVALID, NOW, VALID, Api, routine
 from tests.fhir_r4_check import r4_problems
 
@@ -405,3 +412,28 @@ def test_a_revoked_token_is_401(api: Api) -> None:
         session.commit()
     r = api.client.get("/notes/x", headers={"authorization": f"Bearer {token}"})
     assert r.status_code == 401
+
+
+def test_the_r4b_output_check_setting_serves_the_same_notes(database_url: str) -> None:
+    # CAPNOTE_OUTPUT_CHECK=r4b: every Bundle also through the fhir.resources R4B models
+    # before it is stored; valid notes are stored as with the default check.
+    app = create_app(
+        Settings(database_url=database_url, output_check=OutputCheck.R4B), clock=lambda: NOW
+    )
+    with Session(app.state.engine) as session:
+        token, _ = repository.new_token(session, "submitter", "r4b", NOW)
+        session.commit()
+    with TestClient(app) as client:
+        r = client.post(
+            "/notes",
+            content=VALID[0].read_bytes(),
+            headers={"authorization": f"Bearer {token}", "content-type": "application/json"},
+        )
+    app.state.engine.dispose()
+    assert r.status_code == 201
+    assert r.json()["bundle"]["type"] == "transaction"
+
+
+def test_an_unknown_output_check_is_refused() -> None:
+    with pytest.raises(ValidationError):
+        Settings(output_check="everything")  # type: ignore[arg-type]

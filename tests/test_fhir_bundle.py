@@ -15,7 +15,9 @@ from ucumvert import get_ucum_parser
 
 from schemas.note import Note
 from service.assess import Assessment, Assessor
+from service.errors import EmissionError
 from service.fhir import codes
+from service.fhir.bundle import OutputCheck, check_output, entries
 from service.fhir.codes import CANONICAL, LOINC, SNOMED, UCUM
 from service.fhir.common import stable_uuid
 from tests.conftest import NOW, VALID, routine
@@ -272,3 +274,44 @@ def test_emitting_leaves_the_shared_codings_as_they_were(assessor: Assessor) -> 
         assessed(assessor, path)
     assert before == codes._OWN
     assert assessed(assessor, routine()).bundle == first
+
+
+def test_a_status_outside_its_value_set_stops_the_bundle(assessor: Assessor) -> None:
+    # FHIR R4 Observation.status binds required to observation-status; fhir.resources would
+    # let "done" through (design.md), so the emitter's own check must stop it.
+    result = assessed(assessor, routine())
+    assert result.bundle is not None
+    items = entries(*_inputs(assessor))
+    items[1].resource["status"] = "done"
+    with pytest.raises(EmissionError, match=r"Observation.status = 'done'.*observation-status"):
+        check_output(result.bundle, items, OutputCheck.BINDINGS)
+
+
+def test_the_r4b_check_also_refuses_a_malformed_resource(assessor: Assessor) -> None:
+    # fhir.resources R4B: valueQuantity must be a Quantity, not a string.
+    items = entries(*_inputs(assessor))
+    request = {"method": "POST", "url": "Observation"}
+    bundle = {
+        "resourceType": "Bundle",
+        "type": "transaction",
+        "entry": [
+            {
+                "fullUrl": e.full_url,
+                "resource": e.resource,
+                "request": request,
+            }
+            for e in items
+        ],
+    }
+    check_output(bundle, items, OutputCheck.R4B)  # as emitted: passes
+    items[1].resource["valueQuantity"] = "high"
+    check_output(bundle, items, OutputCheck.BINDINGS)  # the cheap check does not look there
+    with pytest.raises(EmissionError, match="valueQuantity"):
+        check_output(bundle, items, OutputCheck.R4B)
+
+
+def _inputs(assessor: Assessor) -> tuple[Any, Any, list[Any]]:
+    result = assessed(assessor, routine())
+    assert result.note is not None
+    assert result.derived is not None
+    return result.note, result.derived, list(result.due)

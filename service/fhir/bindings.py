@@ -181,3 +181,15 @@ def binding_problems(resource: dict[str, Any]) -> list[tuple[str, str, str]]:
             if not isinstance(value, str) or value not in allowed:
                 problems.append((f"{kind}{where}", str(value), value_set))
     return problems
+
+
+def status_problem(resource: dict[str, Any]) -> tuple[str, str, str] | None:
+    """binding_problems for the one bound code of an emitted resource that follows the
+    note's state, its status; None when it is in its value set. (The other bound codes the
+    builders write are literals, checked against the core package by the tests.)"""
+    kind = resource["resourceType"]
+    allowed, value_set = REQUIRED[(kind, "status")]
+    status = resource.get("status")
+    if isinstance(status, str) and status in allowed:
+        return None
+    return (f"{kind}.status", str(status), value_set)

@@ -11,6 +11,7 @@ import re
 import uuid
 from dataclasses import dataclass
 from datetime import datetime
+from functools import lru_cache
 from typing import Any
 from urllib.parse import quote
 
@@ -72,6 +73,11 @@ def _search_part(text: str) -> str:
     """One part of a token search: FHIR-escaped, then percent-encoded."""
     if _UNCHANGED.fullmatch(text):  # most identifiers and every UUID: nothing to do
         return text
+    return _encoded(text)
+
+
+@lru_cache(maxsize=256)  # a sender's identifier system is the same on every note
+def _encoded(text: str) -> str:
     return quote(search_escape(text), safe="")
 
 

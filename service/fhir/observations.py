@@ -9,7 +9,7 @@ from typing import Any
 
 from schemas.note import IopReading, VisualAcuity
 from service.acuity import QUALITATIVE
-from service.derive import Derived, acuity_logmar
+from service.derive import Derived
 from service.fhir import codes
 from service.fhir.codes import LOINC, OBS_CATEGORY, SNOMED, coding, concept, own, quantity
 from service.fhir.common import Context, Entry, keyed, keyed_entry, when
@@ -85,8 +85,10 @@ class ObservationMaker:
             method=concept(text=_METHOD[reading.method]),
         )
 
-    def acuity(self, role: str, entered: VisualAcuity, effective: str) -> Entry:
-        """Visual acuity as entered, with its logMAR as a component."""
+    def acuity(
+        self, role: str, entered: VisualAcuity, logmar: float | None, effective: str
+    ) -> Entry:
+        """Visual acuity as entered, with its logMAR (derived already) as a component."""
         eye = self.ctx.note.eye
         snellen_bcva = entered.correction == "best-corrected" and entered.notation.startswith(
             "snellen"
@@ -98,7 +100,6 @@ class ObservationMaker:
             else concept(own("visual-acuity"), text=label)
         )
         shown = QUALITATIVE.get(entered.value.upper(), entered.value)
-        logmar = acuity_logmar(entered)
         extra: dict[str, Any] = {}
         if logmar is not None:
             extra["component"] = [part("logmar", quantity(logmar, "logMAR", "{logMAR}"))]
@@ -118,9 +119,11 @@ def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry
     after = [make.iop(f"iop-after-{i}", r, finish) for i, r in enumerate(note.result.iop_after)]
     out += after
     if note.before.visual_acuity is not None:
-        out.append(make.acuity("acuity-before", note.before.visual_acuity, start))
+        logmar = derived.acuity.before_logmar
+        out.append(make.acuity("acuity-before", note.before.visual_acuity, logmar, start))
     if note.result.visual_acuity_after is not None:
-        out.append(make.acuity("acuity-after", note.result.visual_acuity_after, finish))
+        logmar = derived.acuity.after_logmar
+        out.append(make.acuity("acuity-after", note.result.visual_acuity_after, logmar, finish))
 
     series = [
         make.make(
