@@ -79,6 +79,7 @@ class Plan:
 
     seconds: float  # per load run
     max_requests: int  # per load run, whichever bound comes first (bench/loadgen.py only)
+    rounds: int  # of the ceiling and capnote measured in turn, each keeping its best
     connections: tuple[int, ...]
     store_sizes: tuple[int, ...]
     read_seconds: float
@@ -90,6 +91,7 @@ class Plan:
 FULL = Plan(
     seconds=6.0,
     max_requests=40_000,
+    rounds=2,
     connections=(1, 8, 32),
     store_sizes=(1_000, 10_000, 100_000),
     read_seconds=4.0,
@@ -100,6 +102,7 @@ FULL = Plan(
 SMOKE = Plan(
     seconds=0.4,
     max_requests=1_000,
+    rounds=1,
     connections=(1, 8, 32),
     store_sizes=(100, 500),
     read_seconds=0.4,
@@ -135,21 +138,24 @@ def ratio(mine: float, theirs: float) -> float:
     return mine / theirs if theirs else float("inf")
 
 
+def _keep_best(runs: dict[int, dict[str, Any]], conns: int, r: dict[str, Any]) -> None:
+    """Keep the run with more requests/s for this connection count."""
+    if conns not in runs or r["rps"] > runs[conns]["rps"]:
+        runs[conns] = r
+
+
 def part_post(plan: Plan, report: Report, work: Path) -> None:
-    """POST /notes on both engines and worker counts, the ceiling and the obvious app."""
+    """POST /notes on both engines and worker counts, the ceiling and the obvious app.
+
+    The ceiling and capnote are measured in turn, round after round, and each keeps its
+    best run: a machine whose speed drifts (other work on the host) then moves both alike
+    rather than the one measured in a slow minute.
+    """
     print("part 1: POST /notes")
     rps: dict[str, dict[int, dict[str, Any]]] = {}
     plain = {"Content-Type": "application/json"}
     ceiling_env = {"CAPNOTE_DATABASE_URL": f"sqlite:///{work / 'ceiling.sqlite3'}"}
     token(ceiling_env["CAPNOTE_DATABASE_URL"], "submitter")  # creates and migrates it
-    for workers in (1, 2):
-        with app_server("bench.ceiling_app:create", work, workers, ceiling_env) as port:
-            key = f"ceiling {workers}w"
-            rps[key] = {}
-            for conns in plan.connections:
-                r = load(post_job(port, "/bench/echo", conns, plan, plain, f"c{workers}{conns}-"))
-                rps[key][conns] = r
-                report.load_row("POST raw body (ceiling)", f"{workers} worker(s)", conns, r, "")
     engines: list[tuple[str, str]] = [("SQLite", f"sqlite:///{work / 'post.sqlite3'}")]
     cluster = _postgres(work)
     if cluster is not None:
@@ -159,30 +165,53 @@ def part_post(plan: Plan, report: Report, work: Path) -> None:
             "PostgreSQL rows missing: no server binaries (apt-get install postgresql)"
         )
     try:
-        for engine_name, url in engines:
-            tok = token(url, "submitter")
+        tokens = {name: token(url, "submitter") for name, url in engines}
+        for round_no in range(plan.rounds):
             for workers in (1, 2):
-                key = f"{engine_name} {workers}w"
-                rps[key] = {}
-                with capnote_server(url, work, workers) as port:
+                with app_server("bench.ceiling_app:create", work, workers, ceiling_env) as port:
+                    runs = rps.setdefault(f"ceiling {workers}w", {})
                     for conns in plan.connections:
-                        tag = f"{engine_name[0]}{workers}{conns}-"
-                        r = load(post_job(port, "/notes", conns, plan, auth(tok), tag))
-                        rps[key][conns] = r
-                        ceiling = rps[f"ceiling {workers}w"][conns]["rps"]
-                        report.load_row(
-                            "POST /notes",
-                            f"{engine_name}, {workers} worker(s)",
+                        tag = f"c{round_no}{workers}{conns}-"
+                        _keep_best(
+                            runs,
                             conns,
-                            r,
-                            f"{ratio(r['rps'], ceiling):.2f} of ceiling",
+                            load(post_job(port, "/bench/echo", conns, plan, plain, tag)),
                         )
-            if engine_name == "SQLite":
-                rps["r4b"] = _r4b_check(plan, report, work, url, tok, rps["SQLite 1w"])
-                _shipped_two_workers(plan, report, work, url, tok)
+                for engine_name, url in engines:
+                    runs = rps.setdefault(f"{engine_name} {workers}w", {})
+                    with capnote_server(url, work, workers) as port:
+                        for conns in plan.connections:
+                            tag = f"{engine_name[0]}{round_no}{workers}{conns}-"
+                            job = post_job(
+                                port, "/notes", conns, plan, auth(tokens[engine_name]), tag
+                            )
+                            _keep_best(runs, conns, load(job))
+        for workers in (1, 2):
+            for conns in plan.connections:
+                r = rps[f"ceiling {workers}w"][conns]
+                report.load_row("POST raw body (ceiling)", f"{workers} worker(s)", conns, r, "")
+        for engine_name, _url in engines:
+            for workers in (1, 2):
+                for conns in plan.connections:
+                    r = rps[f"{engine_name} {workers}w"][conns]
+                    ceiling = rps[f"ceiling {workers}w"][conns]["rps"]
+                    report.load_row(
+                        "POST /notes",
+                        f"{engine_name}, {workers} worker(s)",
+                        conns,
+                        r,
+                        f"{ratio(r['rps'], ceiling):.2f} of ceiling",
+                    )
+        sqlite_url = engines[0][1]
+        rps["r4b"] = _r4b_check(plan, report, work, sqlite_url, tokens["SQLite"], rps["SQLite 1w"])
+        _shipped_two_workers(plan, report, work, sqlite_url, tokens["SQLite"])
     finally:
         if cluster is not None:
             cluster.stop()
+    report.notes.append(
+        f"POST rows of the ceiling and capnote: the best of {plan.rounds} round(s), measured "
+        "in turn (ceiling, SQLite, PostgreSQL, for 1 then 2 workers, round after round)."
+    )
     obvious_db = f"sqlite:///{work / 'obvious.sqlite3'}"
     with app_server("bench.obvious_app:create", work, 1, {"BENCH_OBVIOUS_DB": obvious_db}) as port:
         rps["obvious"] = {}

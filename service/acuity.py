@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import math
 import re
+from functools import lru_cache
 
 from schemas.note import AcuityNotation, VisualAcuity
 
@@ -41,7 +42,13 @@ def expected_form(notation: AcuityNotation) -> str:
 
 def to_logmar(acuity: VisualAcuity) -> float | None:
     """logMAR for the entered value, or None for qualitative vision (CF, HM, LP, NLP)."""
-    notation, text = acuity.notation, acuity.value
+    return _logmar(acuity.notation, acuity.value)
+
+
+# The checks and the derived values both read each entry, and charts have few lines: the
+# same few dozen values recur on every note.
+@lru_cache(maxsize=4096)
+def _logmar(notation: AcuityNotation, text: str) -> float | None:
     if notation == "qualitative":
         if text.upper() not in QUALITATIVE:
             raise AcuityError(expected_form(notation))

@@ -58,9 +58,8 @@ def ranges(note: Note, ctx: Context) -> Iterator[Finding]:
             )
         )
     for location, value, limit, what in checks:
-        found = outside_limit(location, value, limit, what)
-        if found is not None:
-            yield found
+        if value is not None and not limit.contains(value):
+            yield _outside(location, value, limit, what)
     for i, s in enumerate(laser.series):
         if not lim.pulse_energy_mj.contains(s.energy_mj):
             yield _outside(
@@ -144,15 +143,17 @@ EARLIEST_SURGERY = date(1940, 1, 1)  # before the first intraocular lenses (from
 
 def too_early(note: Note) -> Iterator[Finding]:
     """Every time and date no earlier than the procedure could have been."""
-    stamped = [
+    stamped: list[tuple[str, datetime | None]] = [
         ("started_at", note.started_at),
         ("ended_at", note.ended_at),
         ("consent.recorded_at", note.consent.recorded_at),
         ("before.iop.measured_at", note.before.iop.measured_at),
     ]
+    # List items' locations are made only for a time that is too early (as in ranges).
     stamped += [
         (f"result.iop_after[{i}].measured_at", r.measured_at)
         for i, r in enumerate(note.result.iop_after)
+        if r.measured_at < EARLIEST
     ]
     for where, moment in stamped:
         if moment is not None and moment < EARLIEST:
