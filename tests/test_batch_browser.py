@@ -14,12 +14,9 @@ from tests.batch_helpers import NOW, by_code, capnote, note, text_findings, text
 from tests.web_helpers import (
     ARTIFACTS,
     AXE,
-    CHROMIUM,
-    CHROMIUM_ARGS,
-    browser_env,
     in_ci,
+    launched_chromium,
     missing,
-    playwright_or_skip,
 )
 
 try:
@@ -38,13 +35,7 @@ VIEW = {"width": 1400, "height": 900}
 
 @pytest.fixture(scope="module")
 def browser() -> Iterator[Browser]:
-    factory = playwright_or_skip()
-    with factory() as playwright:
-        launched = playwright.chromium.launch(
-            executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS, env=browser_env()
-        )
-        yield launched
-        launched.close()
+    yield from launched_chromium()
 
 
 @pytest.fixture(scope="module")

@@ -24,15 +24,12 @@ from tests.conftest import EXAMPLES, VALID, load
 from tests.web_helpers import (
     ARTIFACTS,
     AXE,
-    CHROMIUM,
-    CHROMIUM_ARGS,
-    browser_env,
     build_app,
     in_ci,
+    launched_chromium,
     live_server,
     missing,
     new_token,
-    playwright_or_skip,
 )
 
 try:
@@ -54,13 +51,7 @@ CAUTION = (
 
 @pytest.fixture(scope="module")
 def browser() -> Iterator[Browser]:
-    factory = playwright_or_skip()
-    with factory() as playwright:
-        launched = playwright.chromium.launch(
-            executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS, env=browser_env()
-        )
-        yield launched
-        launched.close()
+    yield from launched_chromium()
 
 
 @dataclass

@@ -113,3 +113,15 @@ def playwright_or_skip() -> Any:
 def browser_env() -> dict[str, str]:
     """Chromium's own environment: British English, whatever the machine's locale."""
     return {**os.environ, "LANG": "en_GB.UTF-8", "LANGUAGE": "en_GB"}
+
+
+def launched_chromium() -> Iterator[Any]:
+    """Debian's Chromium under Playwright, headless, as every browser test starts it; a
+    generator for a module-scoped fixture (``yield from launched_chromium()``)."""
+    factory = playwright_or_skip()
+    with factory() as playwright:
+        browser = playwright.chromium.launch(
+            executable_path=str(CHROMIUM), headless=True, args=CHROMIUM_ARGS, env=browser_env()
+        )
+        yield browser
+        browser.close()

@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Iterator
 from datetime import UTC, date, datetime, timedelta
 
-from schemas.note import Note, TimedIopReading, VisualAcuity
+from schemas.note import Note, VisualAcuity
 from service.acuity import AcuityError, to_logmar
 from service.derive import total_energy_mj
 from service.findings import Finding
@@ -203,14 +203,11 @@ def times(note: Note, ctx: Context) -> Iterator[Finding]:
             value=note.ended_at.isoformat(),
             allowed=f">= {note.started_at.isoformat()}",
         )
-    readings: list[tuple[str, TimedIopReading]] = [
-        (f"result.iop_after[{i}]", r) for i, r in enumerate(note.result.iop_after)
-    ]
-    for where, reading in readings:
+    for i, reading in enumerate(note.result.iop_after):
         if reading.measured_at < note.started_at:
             yield error(
                 "reading-before-session",
-                f"{where}.measured_at",
+                f"result.iop_after[{i}].measured_at",
                 "a post-laser IOP reading is timed before the session started",
                 "post-laser readings come after started_at",
                 value=reading.measured_at.isoformat(),
@@ -219,7 +216,7 @@ def times(note: Note, ctx: Context) -> Iterator[Finding]:
         elif reading.measured_at > latest_allowed:
             yield error(
                 "time-in-future",
-                f"{where}.measured_at",
+                f"result.iop_after[{i}].measured_at",
                 "an IOP reading lies in the future",
                 "readings are recorded after they are taken",
                 value=reading.measured_at.isoformat(),

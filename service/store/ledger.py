@@ -256,17 +256,23 @@ class Ledger(ABC):
         _hashes, earlier = await self.before_write(key, patient, eye, before)
         return earlier
 
-    @abstractmethod
     async def latest(self, key: str) -> VersionRow | None:
         """The newest version of a note, or None."""
+        rows = await self._versions("latest", {"key": key})
+        return rows[0] if rows else None
 
-    @abstractmethod
     async def version(self, key: str, version: int) -> VersionRow | None:
         """One version of a note, or None."""
+        rows = await self._versions("version", {"key": key, "version": version})
+        return rows[0] if rows else None
 
-    @abstractmethod
     async def versions(self, key: str) -> list[VersionRow]:
         """Every version of a note, oldest first."""
+        return await self._versions("versions", {"key": key})
+
+    @abstractmethod
+    async def _versions(self, statement: str, params: dict[str, Any]) -> list[VersionRow]:
+        """The rows of one of the version statements ("latest", "version", "versions")."""
 
     @abstractmethod
     async def write_many(self, versions: Sequence[NewVersion], *, forward: bool) -> None:

@@ -173,22 +173,8 @@ class PostgresLedger(Ledger):
         hashes = [row[1] for row in rows if row[0] == "hash"]
         return hashes, earlier_from_rows(key, [row[1:] for row in rows if row[0] == "earlier"])
 
-    async def latest(self, key: str) -> VersionRow | None:
-        """The newest version of a note, or None."""
-        rows = await self._versions("latest", {"key": key})
-        return rows[0] if rows else None
-
-    async def version(self, key: str, version: int) -> VersionRow | None:
-        """One version of a note, or None."""
-        rows = await self._versions("version", {"key": key, "version": version})
-        return rows[0] if rows else None
-
-    async def versions(self, key: str) -> list[VersionRow]:
-        """Every version of a note, oldest first."""
-        return await self._versions("versions", {"key": key})
-
-    async def _versions(self, name: str, params: dict[str, Any]) -> list[VersionRow]:
-        sql = self._sql[name]
+    async def _versions(self, statement: str, params: dict[str, Any]) -> list[VersionRow]:
+        sql = self._sql[statement]
         return [version_row(r) for r in await self._rows(sql.text, sql.params(params))]
 
     async def write_many(self, versions: Sequence[NewVersion], *, forward: bool) -> None:

@@ -17,6 +17,7 @@ from sqlalchemy import func
 from sqlalchemy import select as core_select
 from sqlmodel import Session, col, select
 
+from service.store import ledger
 from service.store.ledger import VersionRow
 from service.store.tables import ApiToken, AuditEntry, FhirIndex, NoteVersion
 
@@ -42,26 +43,7 @@ def note_exists(session: Session, note_key: str) -> bool:
 
 def version_row(row: NoteVersion) -> VersionRow:
     """An ORM row as the ledger's VersionRow (one shape for a stored version everywhere)."""
-    return VersionRow(
-        note_key=row.note_key,
-        version=row.version,
-        sender_system=row.sender_system,
-        sender_value=row.sender_value,
-        patient_system=row.patient_system,
-        patient_value=row.patient_value,
-        eye=row.eye,
-        started_at=from_db(row.started_at),
-        status=row.status,
-        total_energy_mj=row.total_energy_mj,
-        content_hash=row.content_hash,
-        note_json=row.note_json,
-        result_json=row.result_json,
-        bundle=bytes(row.bundle),
-        roles=row.roles,
-        reason=row.reason,
-        recorded_at=from_db(row.recorded_at),
-        recorded_by=row.recorded_by,
-    )
+    return ledger.version_row([getattr(row, name) for name in ledger.VERSION_COLUMNS])
 
 
 def latest_per_note(
