@@ -133,10 +133,19 @@ def highest_pulse_energy_mj(laser: LaserSettings) -> float:
     return max(s.energy_mj for s in laser.series)
 
 
+def band_index(total_mj: float, bands: Bands) -> int:
+    """The band a total energy falls in, from 1; a value on a cut point belongs to the lower."""
+    index = 1
+    for cut in bands.values:
+        if total_mj > cut:
+            index += 1
+    return index
+
+
 def energy_band(total_mj: float, bands: Bands) -> EnergyBand:
     """The band for a total energy; a value on a cut point belongs to the lower band."""
     cuts = bands.values
-    index = sum(1 for cut in cuts if total_mj > cut) + 1
+    index = band_index(total_mj, bands)
     if index == 1:
         label = f"<= {cuts[0]:g} {bands.unit}"
     elif index > len(cuts):
@@ -188,6 +197,11 @@ def spike_grade(rise_mmhg: float, thresholds: Thresholds) -> SpikeGrade:
     return "mild" if rise_mmhg > 0 else "none"
 
 
+def iop_rise(before: IopReading, reading: IopReading) -> float:
+    """How far a post-laser reading lies above the pre-laser one (negative below), in mmHg."""
+    return round(reading.value_mmhg - before.value_mmhg, 1)
+
+
 def iop_course(
     before: IopReading, after: Sequence[IopReading], reference: datetime, thresholds: Thresholds
 ) -> IopCourse:
@@ -202,7 +216,7 @@ def iop_course(
                 else None
             ),
             value_mmhg=r.value_mmhg,
-            change_mmhg=round(r.value_mmhg - before.value_mmhg, 1),
+            change_mmhg=iop_rise(before, r),
         )
         for i, r in enumerate(after)
     )

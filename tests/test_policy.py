@@ -12,6 +12,7 @@ from service.config import Settings, effective_policy
 from service.errors import PolicyError
 from service.policy import load_policy
 from service.policy.loader import default_policy_data
+from service.policy.model import Range
 
 
 def sourced_tables(node: Any, path: str = "") -> list[tuple[str, dict[str, Any]]]:
@@ -97,3 +98,24 @@ def test_unknown_calendar_is_a_policy_error(update: dict[str, str], words: str) 
     cal = load_policy().calendar.model_copy(update=update)
     with pytest.raises(PolicyError, match=words):
         PolicyCalendar.from_policy(cal)
+
+
+@pytest.mark.parametrize(
+    ("bounds", "inside", "outside"),
+    [
+        ({"min": 0, "max": 80}, [0, 40, 80], [-0.1, 80.1, float("nan")]),
+        ({"above": 0}, [0.001, 1e9], [0, -1, float("nan")]),  # "more than 0": 0 itself is out
+        ({"min": 1, "above": 1, "max": 2}, [1.5, 2], [1, 2.5]),
+        ({}, [-1e9, 0, 1e9], [float("nan")]),  # open at both ends, yet NaN is no number
+    ],
+)
+def test_a_range_holds_its_bounds_and_nothing_else(
+    bounds: dict[str, float], inside: list[float], outside: list[float]
+) -> None:
+    allowed = Range(unit="mm", source="test", **bounds)
+    assert [allowed.contains(v) for v in inside] == [True] * len(inside)
+    assert [allowed.contains(v) for v in outside] == [False] * len(outside)
+    # The bounds are worked out once; the model stays equal to one built afresh and dumps
+    # only its fields.
+    assert allowed == Range(unit="mm", source="test", **bounds)
+    assert set(allowed.model_dump()) == {"min", "above", "max", "unit", "source"}

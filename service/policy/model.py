@@ -5,7 +5,9 @@ Every value carries its source so that a finding can say where its threshold cam
 
 from __future__ import annotations
 
+import math
 from datetime import date, time
+from functools import cached_property
 from typing import Literal
 
 from pydantic import BaseModel, ConfigDict, Field, model_validator
@@ -38,13 +40,20 @@ class Range(PolicyPart):
     unit: str
     source: str
 
+    @cached_property
+    def bounds(self) -> tuple[float, float, float]:
+        """(lowest allowed, exclusive lower bound, highest allowed), open ends infinite: the
+        checks compare every number of every note against these, so they are worked out once."""
+        return (
+            -math.inf if self.min is None else self.min,
+            -math.inf if self.above is None else self.above,
+            math.inf if self.max is None else self.max,
+        )
+
     def contains(self, value: float) -> bool:
         """True when value lies inside the range."""
-        if self.min is not None and value < self.min:
-            return False
-        if self.above is not None and value <= self.above:
-            return False
-        return not (self.max is not None and value > self.max)
+        low, above, high = self.bounds
+        return low <= value <= high and value > above
 
     def describe(self) -> str:
         """The range in words, with its unit, for findings."""

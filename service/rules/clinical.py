@@ -9,9 +9,9 @@ from collections.abc import Iterable, Iterator
 
 from schemas.note import Note
 from service.derive import (
+    band_index,
     energy_band,
-    iop_course,
-    session_reference,
+    iop_rise,
     spike_grade,
     total_energy_mj,
 )
@@ -35,8 +35,8 @@ def energy(note: Note, ctx: Context) -> Iterator[Finding]:
                 source=usual.source,
             )
     total = total_energy_mj(note.laser)
-    band = energy_band(total, t.total_energy_bands_mj)
-    if band.index > 1:
+    if band_index(total, t.total_energy_bands_mj) > 1:
+        band = energy_band(total, t.total_energy_bands_mj)  # its label, only when shown
         yield warning(
             "total-energy-band",
             "laser.series",
@@ -87,28 +87,29 @@ def iop(note: Note, ctx: Context) -> Iterator[Finding]:
             source=ctx.policy.schedule.iop_recheck.source,
         )
         return
-    course = iop_course(note.before.iop, note.result.iop_after, session_reference(note), t)
-    for change in course.changes:
-        where = f"result.iop_after[{change.reading_index}].value_mmhg"
-        grade = spike_grade(change.change_mmhg, t)
+    before = note.before.iop
+    # Only the rise of each reading is needed here, not the whole course that derive() builds.
+    for i, reading in enumerate(note.result.iop_after):
+        rise = iop_rise(before, reading)
+        grade = spike_grade(rise, t)
         if grade in ("moderate", "severe"):
             threshold = t.iop_rise_severe_mmhg if grade == "severe" else t.iop_rise_moderate_mmhg
             yield warning(
                 f"iop-rise-{grade}",
-                where,
-                f"IOP rose {change.change_mmhg:g} mmHg above the pre-laser value ({grade})",
+                f"result.iop_after[{i}].value_mmhg",
+                f"IOP rose {rise:g} mmHg above the pre-laser value ({grade})",
                 f"a rise of {threshold.value:g} mmHg or more is a {grade} spike",
-                value=change.value_mmhg,
+                value=reading.value_mmhg,
                 allowed=f"rise < {t.iop_rise_moderate_mmhg.value:g} mmHg",
                 source=threshold.source,
             )
-        if change.value_mmhg >= t.iop_high_mmhg.value:
+        if reading.value_mmhg >= t.iop_high_mmhg.value:
             yield warning(
                 "iop-high",
-                where,
-                f"IOP of {change.value_mmhg:g} mmHg after the laser",
+                f"result.iop_after[{i}].value_mmhg",
+                f"IOP of {reading.value_mmhg:g} mmHg after the laser",
                 f"an IOP of {t.iop_high_mmhg.value:g} mmHg or more is checked again next day",
-                value=change.value_mmhg,
+                value=reading.value_mmhg,
                 allowed=f"< {t.iop_high_mmhg.value:g} mmHg",
                 source=t.iop_high_mmhg.source,
             )

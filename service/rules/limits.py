@@ -2,93 +2,122 @@
 
 from __future__ import annotations
 
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from datetime import UTC, date, datetime, timedelta
+from operator import attrgetter
 
-from schemas.note import Note, VisualAcuity
+from schemas.note import ClinicDrop, HomeDrop, Note, VisualAcuity
 from service.acuity import AcuityError, to_logmar
 from service.derive import total_energy_mj
 from service.findings import Finding
-from service.policy.model import Range
+from service.policy.model import Limits, Range
 from service.rules.base import Check, Context, error, outside_limit
+
+
+def _focus_distance(note: Note) -> float | None:
+    return note.laser.focus.distance_mm if note.laser.focus is not None else None
+
+
+def _opening(side: str) -> Callable[[Note], float | None]:
+    def read(note: Note) -> float | None:
+        opening = note.result.opening
+        return None if opening is None else getattr(opening, side)
+
+    return read
+
+
+# Every single number of a note: (location, how to read it, its limit, what it is). A table,
+# so a new limit is one line and every note is checked with a few comparisons.
+_SINGLE: tuple[tuple[str, Callable[[Note], float | None], Callable[[Limits], Range], str], ...] = (
+    ("before.iop.value_mmhg", attrgetter("before.iop.value_mmhg"), attrgetter("iop_mmhg"), "IOP"),
+    (
+        "laser.wavelength_nm",
+        attrgetter("laser.wavelength_nm"),
+        attrgetter("wavelength_nm"),
+        "wavelength",
+    ),
+    (
+        "before.iol.optic_diameter_mm",
+        attrgetter("before.iol.optic_diameter_mm"),
+        attrgetter("iol_optic_mm"),
+        "IOL optic diameter",
+    ),
+    (
+        "before.risk_factors.axial_length_mm",
+        attrgetter("before.risk_factors.axial_length_mm"),
+        attrgetter("axial_length_mm"),
+        "axial length",
+    ),
+    (
+        "laser.contact_lens.cone_angle_deg",
+        attrgetter("laser.contact_lens.cone_angle_deg"),
+        attrgetter("cone_angle_deg"),
+        "cone angle",
+    ),
+    (
+        "plan.iop_recheck_minutes",
+        attrgetter("plan.iop_recheck_minutes"),
+        attrgetter("iop_recheck_minutes"),
+        "IOP recheck interval",
+    ),
+    (
+        "plan.review_days",
+        attrgetter("plan.review_days"),
+        attrgetter("review_days"),
+        "review interval",
+    ),
+    ("laser.focus.distance_mm", _focus_distance, attrgetter("focus_distance_mm"), "focus distance"),
+    (
+        "result.opening.horizontal_mm",
+        _opening("horizontal_mm"),
+        attrgetter("opening_mm"),
+        "opening diameter",
+    ),
+    (
+        "result.opening.vertical_mm",
+        _opening("vertical_mm"),
+        attrgetter("opening_mm"),
+        "opening diameter",
+    ),
+)
 
 
 def ranges(note: Note, ctx: Context) -> Iterator[Finding]:
     """Every number against its hard limit."""
     lim = ctx.policy.limits
-    before, laser, result, plan = note.before, note.laser, note.result, note.plan
-    # (location, value, limit, what): locations of list items are made only for a value
-    # that breaks its limit, since nearly every note breaks none.
-    checks: list[tuple[str, float | None, Range, str]] = [
-        ("before.iop.value_mmhg", before.iop.value_mmhg, lim.iop_mmhg, "IOP"),
-        ("laser.wavelength_nm", laser.wavelength_nm, lim.wavelength_nm, "wavelength"),
-        (
-            "before.iol.optic_diameter_mm",
-            before.iol.optic_diameter_mm,
-            lim.iol_optic_mm,
-            "IOL optic diameter",
-        ),
-        (
-            "before.risk_factors.axial_length_mm",
-            before.risk_factors.axial_length_mm,
-            lim.axial_length_mm,
-            "axial length",
-        ),
-        (
-            "laser.contact_lens.cone_angle_deg",
-            laser.contact_lens.cone_angle_deg,
-            lim.cone_angle_deg,
-            "cone angle",
-        ),
-        (
-            "plan.iop_recheck_minutes",
-            plan.iop_recheck_minutes,
-            lim.iop_recheck_minutes,
-            "IOP recheck interval",
-        ),
-        ("plan.review_days", plan.review_days, lim.review_days, "review interval"),
-    ]
-    if laser.focus is not None:
-        checks.append(
-            (
-                "laser.focus.distance_mm",
-                laser.focus.distance_mm,
-                lim.focus_distance_mm,
-                "focus distance",
-            )
-        )
-    for location, value, limit, what in checks:
-        if value is not None and not limit.contains(value):
-            yield _outside(location, value, limit, what)
-    for i, s in enumerate(laser.series):
-        if not lim.pulse_energy_mj.contains(s.energy_mj):
-            yield _outside(
-                f"laser.series[{i}].energy_mj", s.energy_mj, lim.pulse_energy_mj, "pulse energy"
-            )
-        if not lim.pulses_per_series.contains(s.pulses):
-            yield _outside(
-                f"laser.series[{i}].pulses", s.pulses, lim.pulses_per_series, "pulse count"
-            )
-    if result.opening is not None:
-        for side, value in (
-            ("horizontal_mm", result.opening.horizontal_mm),
-            ("vertical_mm", result.opening.vertical_mm),
-        ):
-            found = outside_limit(
-                f"result.opening.{side}", value, lim.opening_mm, "opening diameter"
-            )
-            if found is not None:
-                yield found
-    for i, r in enumerate(result.iop_after):
+    for location, read, limit_of, what in _SINGLE:
+        value = read(note)
+        if value is not None:
+            limit = limit_of(lim)
+            low, above, high = limit.bounds
+            if not (low <= value <= high and value > above):
+                yield _outside(location, value, limit, what)
+    yield from _listed(note, lim)
+
+
+def _listed(note: Note, lim: Limits) -> Iterator[Finding]:
+    """The numbers of list items; a location is made only for a value that breaks its limit,
+    since nearly every note breaks none."""
+    energy, pulses = lim.pulse_energy_mj, lim.pulses_per_series
+    for i, s in enumerate(note.laser.series):
+        if not energy.contains(s.energy_mj):
+            yield _outside(f"laser.series[{i}].energy_mj", s.energy_mj, energy, "pulse energy")
+        if not pulses.contains(s.pulses):
+            yield _outside(f"laser.series[{i}].pulses", s.pulses, pulses, "pulse count")
+    for i, r in enumerate(note.result.iop_after):
         if not lim.iop_mmhg.contains(r.value_mmhg):
             yield _outside(f"result.iop_after[{i}].value_mmhg", r.value_mmhg, lim.iop_mmhg, "IOP")
+    plan = note.plan
     strengths = lim.drop_strength_percent
-    drops = [("prophylaxis", i, d.strength_percent) for i, d in enumerate(plan.prophylaxis)]
-    drops += [("take_home", i, d.strength_percent) for i, d in enumerate(plan.take_home)]
-    for group, i, strength in drops:
-        if strength is not None and not strengths.contains(strength):
-            where = f"plan.{group}[{i}].strength_percent"
-            yield _outside(where, strength, strengths, "drop strength")
+    drops: tuple[tuple[str, Sequence[ClinicDrop | HomeDrop]], ...] = (
+        ("prophylaxis", plan.prophylaxis),
+        ("take_home", plan.take_home),
+    )
+    for group, given in drops:
+        for i, d in enumerate(given):
+            if d.strength_percent is not None and not strengths.contains(d.strength_percent):
+                where = f"plan.{group}[{i}].strength_percent"
+                yield _outside(where, d.strength_percent, strengths, "drop strength")
     for i, h in enumerate(plan.take_home):
         if not lim.drop_times_per_day.contains(h.times_per_day):
             yield _outside(
@@ -141,30 +170,36 @@ EARLIEST = datetime(1980, 1, 1, tzinfo=UTC)
 EARLIEST_SURGERY = date(1940, 1, 1)  # before the first intraocular lenses (from memory)
 
 
+_STAMPS: tuple[tuple[str, Callable[[Note], datetime | None]], ...] = tuple(
+    (where, attrgetter(where))
+    for where in ("started_at", "ended_at", "consent.recorded_at", "before.iop.measured_at")
+)
+
+
+def _too_early(where: str, moment: datetime) -> Finding:
+    return error(
+        "time-too-early",
+        where,
+        f"{where} lies before 1980",
+        "Nd:YAG capsulotomy records start in 1980 (from memory)",
+        value=moment.isoformat(),
+        allowed=">= 1980-01-01",
+    )
+
+
 def too_early(note: Note) -> Iterator[Finding]:
     """Every time and date no earlier than the procedure could have been."""
-    stamped: list[tuple[str, datetime | None]] = [
-        ("started_at", note.started_at),
-        ("ended_at", note.ended_at),
-        ("consent.recorded_at", note.consent.recorded_at),
-        ("before.iop.measured_at", note.before.iop.measured_at),
-    ]
-    # List items' locations are made only for a time that is too early (as in ranges).
-    stamped += [
-        (f"result.iop_after[{i}].measured_at", r.measured_at)
-        for i, r in enumerate(note.result.iop_after)
-        if r.measured_at < EARLIEST
-    ]
-    for where, moment in stamped:
-        if moment is not None and moment < EARLIEST:
-            yield error(
-                "time-too-early",
-                where,
-                f"{where} lies before 1980",
-                "Nd:YAG capsulotomy records start in 1980 (from memory)",
-                value=moment.isoformat(),
-                allowed=">= 1980-01-01",
-            )
+    for where, read in _STAMPS:
+        moment = read(note)
+        # The year first: comparing datetimes of different tzinfo objects costs a microsecond
+        # each, and only a year up to 1980 can lie before EARLIEST whatever the offset.
+        if moment is not None and moment.year <= EARLIEST.year and moment < EARLIEST:
+            yield _too_early(where, moment)
+    for i, r in enumerate(note.result.iop_after):
+        if (
+            r.measured_at.year <= EARLIEST.year and r.measured_at < EARLIEST
+        ):  # the location is made only for a time that is too early
+            yield _too_early(f"result.iop_after[{i}].measured_at", r.measured_at)
     surgery = note.before.cataract_surgery_date
     if surgery is not None and surgery < EARLIEST_SURGERY:
         yield error(
@@ -181,7 +216,9 @@ def times(note: Note, ctx: Context) -> Iterator[Finding]:
     """Times must be in order, not too early and not in the future."""
     yield from too_early(note)
     tolerance = timedelta(minutes=ctx.policy.limits.future_tolerance_minutes.value)
-    latest_allowed = ctx.now + tolerance
+    # The same instant in the note's own zone: comparing datetimes that share a tzinfo object
+    # skips two utcoffset() calls each time.
+    latest_allowed = (ctx.now + tolerance).astimezone(note.started_at.tzinfo)
     stamped = [("started_at", note.started_at), ("ended_at", note.ended_at)]
     for where, moment in stamped:
         if moment is not None and moment > latest_allowed:
