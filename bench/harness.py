@@ -11,6 +11,7 @@ import platform
 import socket
 import subprocess
 import sys
+import tempfile
 import time
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
@@ -30,6 +31,7 @@ from service.store.database import make_engine, upgrade  # noqa: E402
 
 PYTHON = sys.executable
 CAPNOTE = [PYTHON, "-c", "from service.cli import main; main()"]
+CAPNOTE_ENTRY = "service.cli:main"  # for timed(): the same command, run through bench/peak.py
 TEMPLATE = ROOT / "examples" / "notes" / "right-routine.json"
 # The demo notes are set in late November 2026; every check runs as if on this day.
 NOW = datetime(2026, 12, 1, 12, 0, tzinfo=UTC)
@@ -68,6 +70,34 @@ def machine_slug(info: dict[str, str]) -> str:
     """A file-name-safe machine description: `2core-amd-epyc`."""
     words = "".join(c if c.isalnum() else "-" for c in info["cpu"].lower()).split("-")
     return f"{info['cores']}core-" + "-".join(w for w in words if w)[:40]
+
+
+@dataclass(frozen=True)
+class Timed:
+    """One command's wall time, its own peak memory and its exit code."""
+
+    wall: float
+    peak_mib: int
+    code: int
+
+
+def timed(target: str, *args: str) -> Timed:
+    """Run a script (`path.py`) or an entry point (`module:function`) in a new process.
+
+    The peak is the command's own (bench/peak.py explains why rusage cannot give it). An
+    exit code other than 0 or 1 (1: findings with errors) is a failure of the benchmark.
+    """
+    with tempfile.TemporaryDirectory(prefix="capnote-peak-") as tmp:
+        out = Path(tmp) / "peak"
+        argv = [PYTHON, str(ROOT / "bench" / "peak.py"), str(out), target, *args]
+        began = time.perf_counter()
+        proc = subprocess.run(  # noqa: S603 (argv built here from constants)
+            argv, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, check=False
+        )
+        wall = time.perf_counter() - began
+        if proc.returncode not in (0, 1):
+            raise RuntimeError(f"{argv} exited {proc.returncode}: {proc.stderr.decode()[-2000:]}")
+        return Timed(wall, int(out.read_text()) // 1024, proc.returncode)
 
 
 # --- processes -------------------------------------------------------------------------------
@@ -174,6 +204,21 @@ def note_template() -> str:
     note["note_id"]["value"] = f"LN-{MARK}"
     note["patient"]["value"] = f"PT-{MARK}"
     return json.dumps(note)
+
+
+def write_ndjson(path: Path, lines: int) -> None:
+    """Distinct notes; every 10th has a warning (an IOP rise) and every 25th an error."""
+    template = note_template()
+    base = json.loads(template)
+    warn = json.loads(template)
+    warn["result"]["iop_after"][0]["value_mmhg"] = 22
+    bad = json.loads(template)
+    bad["before"]["iop"]["value_mmhg"] = 95
+    texts = [json.dumps(base), json.dumps(warn), json.dumps(bad)]
+    with path.open("w") as out:
+        for i in range(1, lines + 1):
+            kind = 2 if i % 25 == 0 else 1 if i % 10 == 0 else 0
+            out.write(texts[kind].replace(MARK, f"{i:07d}") + "\n")
 
 
 def token(url: str, role: str) -> str:

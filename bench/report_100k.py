@@ -12,49 +12,16 @@ cores); run it by hand:
 from __future__ import annotations
 
 import argparse
-import json
-import os
-import subprocess
 import sys
 import tempfile
 import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
-PYTHON = sys.executable
-CAPNOTE = [PYTHON, "-c", "from service.cli import main; main()"]
-NOW = "2026-12-01T12:00:00+00:00"
-MARK = "BENCHMARK-MARK"
+if str(ROOT) not in sys.path:  # run as `python bench/report_100k.py`
+    sys.path.insert(0, str(ROOT))
 
-
-def write_ndjson(path: Path, lines: int) -> None:
-    """Distinct notes from the routine example; the identifiers are invented, as it is."""
-    base = json.loads((ROOT / "examples" / "notes" / "right-routine.json").read_text())
-    base["note_id"]["value"] = f"LN-{MARK}"
-    base["patient"]["value"] = f"PX{MARK}"
-    warn = json.loads(json.dumps(base))
-    warn["result"]["iop_after"][0]["value_mmhg"] = 22
-    bad = json.loads(json.dumps(base))
-    bad["before"]["iop"]["value_mmhg"] = 95
-    texts = [json.dumps(base), json.dumps(warn), json.dumps(bad)]
-    with path.open("w") as out:
-        for i in range(1, lines + 1):
-            kind = 2 if i % 25 == 0 else 1 if i % 10 == 0 else 0
-            out.write(texts[kind].replace(MARK, f"{i:07d}") + "\n")
-
-
-def timed(argv: list[str]) -> tuple[float, int, int]:
-    """Wall seconds, peak RSS (MiB) and exit code of one process, from the kernel's rusage."""
-    began = time.perf_counter()
-    with subprocess.Popen(  # noqa: S603 (argv built here from constants)
-        argv, cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE
-    ) as proc:
-        _pid, status, usage = os.wait4(proc.pid, 0)
-        proc.returncode = os.waitstatus_to_exitcode(status)
-        err = proc.stderr.read() if proc.stderr else b""
-    if proc.returncode not in (0, 1):
-        raise RuntimeError(f"{argv} exited {proc.returncode}: {err.decode()[-2000:]}")
-    return time.perf_counter() - began, int(usage.ru_maxrss) // 1024, proc.returncode
+from bench.harness import CAPNOTE_ENTRY, NOW_TEXT, timed, write_ndjson  # noqa: E402
 
 
 def open_in_browser(report: Path) -> float:
@@ -90,14 +57,17 @@ def main() -> None:
         write_ndjson(source, options.lines)
         size = source.stat().st_size / 2**20
         print(f"{options.lines:,} lines, {size:.0f} MiB of NDJSON")
-        base = [*CAPNOTE, "check", str(source), "--now", NOW]
-        wall, peak, code = timed(base)
-        print(f"  no report: {wall:.1f} s, peak {peak} MiB, exit {code}")
+        base = (CAPNOTE_ENTRY, "check", str(source), "--now", NOW_TEXT)
+        run = timed(*base)
+        print(f"  no report: {run.wall:.1f} s, peak {run.peak_mib} MiB, exit {run.code}")
         for fmt in ("html", "csv"):
             report = work / f"report.{fmt}"
-            wall, peak, code = timed([*base, "--report", str(report)])
+            run = timed(*base, "--report", str(report))
             mib = report.stat().st_size / 2**20
-            print(f"  {fmt} report: {wall:.1f} s, peak {peak} MiB, exit {code}, {mib:.1f} MiB")
+            print(
+                f"  {fmt} report: {run.wall:.1f} s, peak {run.peak_mib} MiB, exit {run.code}, "
+                f"{mib:.1f} MiB"
+            )
         if options.browser:
             shown = open_in_browser(work / "report.html")
             print(f"  Chromium shows the HTML report in {shown:.1f} s")
