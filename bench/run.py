@@ -23,8 +23,10 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import contextlib
 import json
 import os
+import sqlite3
 import sys
 import tempfile
 import time
@@ -349,10 +351,50 @@ def _no_sync(dbapi_connection: Any, _record: Any) -> None:
     cursor.close()
 
 
+_READS = {
+    "check": "POST /notes/check",
+    "read": "GET /fhir/Procedure/{id}",
+    "search": "GET /fhir/Procedure?patient:identifier=",
+}
+
+
+def _read_jobs(template: str, size: int) -> dict[str, list[tuple[str, str, str]]]:
+    """The requests of each read at one store size: 200 notes and patients spread over the
+    whole store, so that reads do not hit one page."""
+    system = json.loads(template)["patient"]["system"]
+    picks = [int(k * (size - 1) / 199) for k in range(200)]
+    check_body = template.replace(f"LN-{MARK}", "LN-CHECK").replace(
+        f"PT-{MARK}", f"PT-S{(size // 2) // 2:07d}"
+    )
+    return {
+        "check": [("POST", "/notes/check", check_body)],
+        "read": [("GET", f"/fhir/Procedure/{_key(template, i)}", "") for i in picks],
+        "search": [
+            (
+                "GET",
+                "/fhir/Procedure?patient:identifier="
+                + urllib.parse.quote(f"{system}|PT-S{i // 2:07d}", safe=""),
+                "",
+            )
+            for i in picks
+        ],
+    }
+
+
+def _snapshot(source: Path, target: Path) -> None:
+    """A consistent copy of a SQLite database, its WAL included (the backup API)."""
+    with (
+        contextlib.closing(sqlite3.connect(source)) as src,
+        contextlib.closing(sqlite3.connect(target)) as dst,
+    ):
+        src.backup(dst)
+
+
 def part_store(plan: Plan, report: Report, work: Path) -> None:
     """POST /notes/check, GET /fhir/Procedure/{id} and a patient search as the store grows."""
     print("part 2: the store grows")
-    url = f"sqlite:///{work / 'store.sqlite3'}"
+    path = work / "store.sqlite3"
+    url = f"sqlite:///{path}"
     tok = token(url, "clinician")
     engine = make_engine(url)
     # Loading is set-up, not measurement: the loader's own connections skip the fsyncs of
@@ -361,8 +403,7 @@ def part_store(plan: Plan, report: Report, work: Path) -> None:
     ledger = open_ledger(url)
     service = NoteService(engine, ledger, Assessor(load_policy()), lambda: NOW)
     template = note_template()
-    system = json.loads(template)["patient"]["system"]
-    p50: dict[str, dict[int, float]] = {"check": {}, "read": {}, "search": {}}
+    stores: dict[int, Path] = {}
     stored = 0
     for size in plan.store_sizes:
         began = time.perf_counter()
@@ -370,47 +411,11 @@ def part_store(plan: Plan, report: Report, work: Path) -> None:
         load_seconds = time.perf_counter() - began
         print(f"  stored {size:,} notes ({(size - stored) / load_seconds:,.0f}/s)")
         stored = size
-        # 200 notes and patients spread over the whole store, so reads do not hit one page.
-        picks = [int(k * (size - 1) / 199) for k in range(200)]
-        keys = [_key(template, i) for i in picks]
-        check_body = template.replace(f"LN-{MARK}", "LN-CHECK").replace(
-            f"PT-{MARK}", f"PT-S{(size // 2) // 2:07d}"
-        )
-        jobs = {
-            "check": [("POST", "/notes/check", check_body)],
-            "read": [("GET", f"/fhir/Procedure/{k}", "") for k in keys],
-            "search": [
-                (
-                    "GET",
-                    "/fhir/Procedure?patient:identifier="
-                    + urllib.parse.quote(f"{system}|PT-S{i // 2:07d}", safe=""),
-                    "",
-                )
-                for i in picks
-            ],
-        }
-        names = {
-            "check": "POST /notes/check",
-            "read": "GET /fhir/Procedure/{id}",
-            "search": "GET /fhir/Procedure?patient:identifier=",
-        }
-        with capnote_server(url, work, 1) as port:
-            for name, items in jobs.items():
-                r = load(
-                    {
-                        "host": "127.0.0.1",
-                        "port": port,
-                        "connections": 1,
-                        "requests": plan.max_requests,
-                        "seconds": plan.read_seconds,
-                        "items": items,
-                        "headers": auth(tok),
-                        "warmup": 20,
-                    }
-                )
-                p50[name][size] = r["p50_ms"]
-                report.load_row(names[name], f"{size:,} notes stored (SQLite)", 1, r, "")
-    sample = asyncio.run(service.get(keys[-1]))
+        # Each size is kept, so that all are measured in turn; the largest is the store itself.
+        stores[size] = path if size == plan.store_sizes[-1] else work / f"store-{size}.sqlite3"
+        if stores[size] != path:
+            _snapshot(path, stores[size])
+    sample = asyncio.run(service.get(_key(template, stored - 1)))
     problems = validate_resource(orjson.loads(sample.bundle_json))
     report.notes.append(
         "A stored Bundle read back after loading validates with the R4B models and the "
@@ -418,11 +423,42 @@ def part_store(plan: Plan, report: Report, work: Path) -> None:
     )
     asyncio.run(ledger.aclose())
     engine.dispose()
+    # Every size in turn, round after round, each keeping its best p50: a slow spell of the
+    # machine then falls on every size instead of on one.
+    fastest: dict[tuple[str, int], dict[str, Any]] = {}
+    jobs = {size: _read_jobs(template, size) for size in plan.store_sizes}
+    for _round in range(plan.rounds):
+        for size, copy in stores.items():
+            with capnote_server(f"sqlite:///{copy}", work, 1) as port:
+                for name, items in jobs[size].items():
+                    r = load(
+                        {
+                            "host": "127.0.0.1",
+                            "port": port,
+                            "connections": 1,
+                            "requests": plan.max_requests,
+                            "seconds": plan.read_seconds,
+                            "items": items,
+                            "headers": auth(tok),
+                            "warmup": 20,
+                        }
+                    )
+                    print(f"  {_READS[name]} | {size:,} notes | p50 {r['p50_ms']:.2f} ms")
+                    kept = fastest.get((name, size))
+                    if kept is None or r["p50_ms"] < kept["p50_ms"]:
+                        fastest[name, size] = r
+    for size in plan.store_sizes:
+        for name, label in _READS.items():
+            report.load_row(label, f"{size:,} notes stored (SQLite)", 1, fastest[name, size], "")
+    report.notes.append(
+        f"Reads at each store size: the best p50 of {plan.rounds} round(s), the sizes measured "
+        "in turn; each size is a copy of the store as it stood then."
+    )
     small, large = plan.store_sizes[0], plan.store_sizes[-1]
-    for name in ("check", "read", "search"):
-        ratio = p50[name][large] / p50[name][small]
+    for name, label in _READS.items():
+        ratio = fastest[name, large]["p50_ms"] / fastest[name, small]["p50_ms"]
         report.target(
-            f"{names[name]} p50 at {large:,} / at {small:,} notes", ratio, "<= 1.3", ratio <= 1.3
+            f"{label} p50 at {large:,} / at {small:,} notes", ratio, "<= 1.3", ratio <= 1.3
         )
 
 
