@@ -6,7 +6,7 @@
 It starts what it needs (capnote on SQLite and on a throwaway PostgreSQL cluster, the
 ceiling app, the obvious app), drives bounded load from a separate process on 127.0.0.1
 (bench/loadgen.py) and prints one Markdown table, then writes it to
-bench/results/<date>-<machine>.md (a smoke run writes to a temporary folder unless --out).
+bench/results/<date>-<HHMM>-<machine>.md (a smoke run writes to a temporary folder unless --out).
 
 Parts:
   1. POST /notes (check, derive, schedule, emit, store) at 1, 8 and 32 connections, on
@@ -33,7 +33,7 @@ import time
 import urllib.parse
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import date
+from datetime import datetime
 from pathlib import Path
 from typing import Any
 
@@ -621,6 +621,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     info = machine()
     report = Report()
     load_at_start = os.getloadavg()[0]
+    started = datetime.now()  # the machine's local time names the file
     began = time.perf_counter()
     with tempfile.TemporaryDirectory(prefix="capnote-bench-") as tmp:
         work = Path(tmp)
@@ -651,7 +652,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         f"{load_after:.1f} on {info['cores']} cores; well above 1 means other work shared them."
     )
     kind = "smoke run" if args.smoke else "full run"
-    title = f"capnote benchmark, {date.today().isoformat()}, {kind}"
+    title = f"capnote benchmark, {started:%Y-%m-%d %H:%M}, {kind}"
     text = report.markdown(info, title, time.perf_counter() - began)
     print()
     print(text)
@@ -660,7 +661,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     out_dir.mkdir(parents=True, exist_ok=True)
     suffix = "-smoke" if args.smoke else ""
-    out = out_dir / f"{date.today().isoformat()}-{machine_slug(info)}{suffix}.md"
+    # Named by the start's date and time, so that runs of one day sit side by side.
+    stamp = started.strftime("%Y-%m-%d-%H%M")
+    out = out_dir / f"{stamp}-{machine_slug(info)}{suffix}.md"
     out.write_text(text)
     print(f"written to {out}")
     return 0
