@@ -70,7 +70,7 @@ from service.assess import Assessor
 from service.fhir.bundle import OutputCheck, emit
 from service.fhir.common import Version
 from service.fhir.validate import validate_resource
-from service.notes import NoteService, Principal, note_key
+from service.notes import Change, NoteService, Principal, note_key
 from service.policy import load_policy
 from service.rules import Context, check_payload
 from service.store.database import make_engine, open_ledger
@@ -340,9 +340,10 @@ def _prepared(service: NoteService, payload: bytes, who: Principal) -> Any:
     note, findings = check_payload(payload, Context(service.assessor.policy, NOW))
     assert note is not None
     note_json = note.model_dump_json(exclude_none=True)
-    return service.prepare(
-        note_key(note), note, note_json, findings, (), Version(1), note.status, None, who, "create"
+    change = Change(
+        note_key(note), note, note_json, findings, (), Version(1), note.status, None, "create"
     )
+    return service.prepare(change, who)
 
 
 def _no_sync(dbapi_connection: Any, _record: Any) -> None:

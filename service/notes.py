@@ -55,6 +55,22 @@ class Principal:
 
 
 @dataclass(frozen=True, slots=True)
+class Change:
+    """A new version to store: the checked note, what it is emitted as, and why. key is the
+    note's (note_key), which every caller has already."""
+
+    key: str
+    note: Note
+    note_json: str
+    findings: list[Finding]
+    prior: Sequence[PriorSession]
+    emitted: Version
+    status: str
+    reason: str | None
+    action: str  # for the audit trail: create, amend or void
+
+
+@dataclass(frozen=True, slots=True)
 class StoredNote:
     """One stored note version as the API shows it.
 
@@ -174,24 +190,12 @@ class NoteService:
 
     # -- writing ---------------------------------------------------------------------------
 
-    def prepare(
-        self,
-        key: str,
-        note: Note,
-        note_json: str,
-        findings: list[Finding],
-        prior: Sequence[PriorSession],
-        emitted: Version,
-        status: str,
-        reason: str | None,
-        who: Principal,
-        action: str,
-    ) -> tuple[NewVersion, StoredNote]:
+    def prepare(self, change: Change, who: Principal) -> tuple[NewVersion, StoredNote]:
         """Everything a version stores (derived values, schedule, Bundle, search rows, audit
-        entry) and the answer that goes with it; nothing is written yet. key is the note's
-        (note_key), which every caller has already."""
+        entry) and the answer that goes with it; nothing is written yet."""
+        key, note, note_json = change.key, change.note, change.note_json
         now = self.clock()
-        result = self.assessor.complete(note, findings, prior, emitted)
+        result = self.assessor.complete(note, change.findings, change.prior, change.emitted)
         if result.bundle is None or result.derived is None:  # complete() always sets both
             raise RuntimeError("assessment of a checked note came back incomplete")
         view = assessment_view(result)
@@ -199,21 +203,21 @@ class NoteService:
         kinds = [e["resource"]["resourceType"] for e in result.bundle["entry"]]
         row = VersionRow(
             note_key=key,
-            version=emitted.number,
+            version=change.emitted.number,
             sender_system=note.note_id.system,
             sender_value=note.note_id.value,
             patient_system=note.patient.system,
             patient_value=note.patient.value,
             eye=note.eye,
             started_at=note.started_at,
-            status=status,
+            status=change.status,
             total_energy_mj=result.derived.total_energy_mj,
             content_hash=content_hash(note_json),
             note_json=note_json,
             result_json=orjson.dumps(view).decode(),
             bundle=pack_bundle(bundle_json),
             roles=pack_roles(kinds, result.roles),
-            reason=reason,
+            reason=change.reason,
             recorded_at=now,
             recorded_by=who.label,
         )
@@ -221,14 +225,14 @@ class NoteService:
             IndexRow(s.role, s.resource_type, s.status, s.date)
             for s in searchables(result.bundle, result.roles)
         )
-        audit = AuditRow(now, who.label, who.role, action, who.remote)
+        audit = AuditRow(now, who.label, who.role, change.action, who.remote)
         stored = StoredNote(
             key=key,
             version=row.version,
-            status=status,
+            status=change.status,
             recorded_at=now,
             recorded_by=who.label,
-            reason=reason,
+            reason=change.reason,
             note_json=note_json,
             result=view,
             bundle_json=bundle_json,
@@ -236,22 +240,8 @@ class NoteService:
         )
         return NewVersion(row, index, audit), stored
 
-    async def _write(
-        self,
-        key: str,
-        note: Note,
-        note_json: str,
-        findings: list[Finding],
-        prior: Sequence[PriorSession],
-        emitted: Version,
-        status: str,
-        reason: str | None,
-        who: Principal,
-        action: str,
-    ) -> StoredNote:
-        new, stored = self.prepare(
-            key, note, note_json, findings, prior, emitted, status, reason, who, action
-        )
+    async def _write(self, change: Change, who: Principal) -> StoredNote:
+        new, stored = self.prepare(change, who)
         await self.ledger.write_many([new], forward=self.forward)
         return stored
 
@@ -268,7 +258,10 @@ class NoteService:
         prior = [PriorSession(r.started_at, r.total_energy_mj) for r in earlier]
         try:
             stored = await self._write(
-                key, note, note_json, findings, prior, Version(1), note.status, None, who, "create"
+                Change(
+                    key, note, note_json, findings, prior, Version(1), note.status, None, "create"
+                ),
+                who,
             )
         except DuplicateVersionError:
             # Another request stored this note between our read and our write.
@@ -341,7 +334,10 @@ class NoteService:
         prior = await self._priors(note, key)
         try:
             return await self._write(
-                key, note, note_json, findings, prior, emitted, note.status, reason, who, "amend"
+                Change(
+                    key, note, note_json, findings, prior, emitted, note.status, reason, "amend"
+                ),
+                who,
             )
         except DuplicateVersionError as exc:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc
@@ -359,7 +355,7 @@ class NoteService:
         prior = await self._priors(note, key)
         try:
             return await self._write(
-                key, note, latest.note_json, [], prior, emitted, "void", reason, who, "void"
+                Change(key, note, latest.note_json, [], prior, emitted, "void", reason, "void"), who
             )
         except DuplicateVersionError as exc:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc
