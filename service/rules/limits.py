@@ -14,71 +14,36 @@ from service.policy.model import Limits, Range
 from service.rules.base import Check, Context, error, outside_limit
 
 
-def _focus_distance(note: Note) -> float | None:
-    return note.laser.focus.distance_mm if note.laser.focus is not None else None
+def _reader(path: str) -> Callable[[Note], float | None]:
+    """The number at a dotted path of a note, None where it or an optional part is absent."""
+    get = attrgetter(path)
 
-
-def _opening(side: str) -> Callable[[Note], float | None]:
     def read(note: Note) -> float | None:
-        opening = note.result.opening
-        return None if opening is None else getattr(opening, side)
+        try:
+            return get(note)  # type: ignore[no-any-return]
+        except AttributeError:  # an optional part (focus, opening) is not there
+            return None
 
     return read
 
 
-# Every single number of a note: (location, how to read it, its limit, what it is). A table,
-# so a new limit is one line and every note is checked with a few comparisons.
-_SINGLE: tuple[tuple[str, Callable[[Note], float | None], Callable[[Limits], Range], str], ...] = (
-    ("before.iop.value_mmhg", attrgetter("before.iop.value_mmhg"), attrgetter("iop_mmhg"), "IOP"),
-    (
-        "laser.wavelength_nm",
-        attrgetter("laser.wavelength_nm"),
-        attrgetter("wavelength_nm"),
-        "wavelength",
-    ),
-    (
-        "before.iol.optic_diameter_mm",
-        attrgetter("before.iol.optic_diameter_mm"),
-        attrgetter("iol_optic_mm"),
-        "IOL optic diameter",
-    ),
-    (
-        "before.risk_factors.axial_length_mm",
-        attrgetter("before.risk_factors.axial_length_mm"),
-        attrgetter("axial_length_mm"),
-        "axial length",
-    ),
-    (
-        "laser.contact_lens.cone_angle_deg",
-        attrgetter("laser.contact_lens.cone_angle_deg"),
-        attrgetter("cone_angle_deg"),
-        "cone angle",
-    ),
-    (
-        "plan.iop_recheck_minutes",
-        attrgetter("plan.iop_recheck_minutes"),
-        attrgetter("iop_recheck_minutes"),
-        "IOP recheck interval",
-    ),
-    (
-        "plan.review_days",
-        attrgetter("plan.review_days"),
-        attrgetter("review_days"),
-        "review interval",
-    ),
-    ("laser.focus.distance_mm", _focus_distance, attrgetter("focus_distance_mm"), "focus distance"),
-    (
-        "result.opening.horizontal_mm",
-        _opening("horizontal_mm"),
-        attrgetter("opening_mm"),
-        "opening diameter",
-    ),
-    (
-        "result.opening.vertical_mm",
-        _opening("vertical_mm"),
-        attrgetter("opening_mm"),
-        "opening diameter",
-    ),
+# Every single number of a note: (location, its limit in the policy, what it is). A table,
+# so that a new limit is one line and every note is checked with a few comparisons.
+_SINGLE_LIMITS = (
+    ("before.iop.value_mmhg", "iop_mmhg", "IOP"),
+    ("laser.wavelength_nm", "wavelength_nm", "wavelength"),
+    ("before.iol.optic_diameter_mm", "iol_optic_mm", "IOL optic diameter"),
+    ("before.risk_factors.axial_length_mm", "axial_length_mm", "axial length"),
+    ("laser.contact_lens.cone_angle_deg", "cone_angle_deg", "cone angle"),
+    ("plan.iop_recheck_minutes", "iop_recheck_minutes", "IOP recheck interval"),
+    ("plan.review_days", "review_days", "review interval"),
+    ("laser.focus.distance_mm", "focus_distance_mm", "focus distance"),
+    ("result.opening.horizontal_mm", "opening_mm", "opening diameter"),
+    ("result.opening.vertical_mm", "opening_mm", "opening diameter"),
+)
+_SINGLE = tuple(
+    (location, _reader(location), attrgetter(limit), what)
+    for location, limit, what in _SINGLE_LIMITS
 )
 
 
