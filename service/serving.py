@@ -10,6 +10,7 @@ while the others idle (measured: one worker at 83 % of a core, the other at 20 %
 
 from __future__ import annotations
 
+import importlib.util
 import logging
 import multiprocessing
 import signal
@@ -22,6 +23,9 @@ from uvicorn.config import STARTUP_FAILURE
 from uvicorn.supervisors import Multiprocess
 
 log = logging.getLogger("uvicorn.error")
+
+# uvloop is not built for Windows: asyncio's own loop serves there.
+_UVLOOP = importlib.util.find_spec("uvloop") is not None
 
 
 class TcpConfig(uvicorn.Config):
@@ -121,6 +125,10 @@ def run(factory: str, host: str, port: int, workers: int) -> None:
         workers=workers,
         log_level="info",
         access_log=False,
+        # Both are dependencies: httptools parses HTTP in C, uvloop runs the loop in C (where
+        # it is available); "auto" would quietly fall back to h11 and asyncio without them.
+        http="httptools",
+        loop="uvloop" if _UVLOOP else "asyncio",
     )
     if config.workers == 1:
         uvicorn.Server(config).run()
