@@ -6,12 +6,15 @@ Nothing else in capnote reads the environment; entry points build Settings and p
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
-from service.delivery import Receiver
 from service.fhir.bundle import OutputCheck
 from service.policy import Policy, load_policy
+
+if TYPE_CHECKING:
+    from service.delivery import Receiver
 
 
 class Settings(BaseSettings):
@@ -45,6 +48,9 @@ class Settings(BaseSettings):
         """The forwarding target, when one is configured."""
         if not self.forward_url:
             return None
+        # Imported here: delivery brings httpx and the store, which only forwarding needs.
+        from service.delivery import Receiver
+
         return Receiver(
             self.forward_url,
             self.forward_token,

@@ -11,7 +11,6 @@ import orjson
 from service.assess import Assessor
 from service.batch.inputs import Record, Source
 from service.derive import Derived
-from service.fhir.validate import validate_resource
 from service.findings import Finding, Severity
 from service.rules import Context, check_payload
 from service.schedule import DueItem
@@ -54,8 +53,16 @@ def check_record(raw: bytes, ctx: Context) -> tuple[str, list[Finding]]:
         except orjson.JSONDecodeError:
             data = None
         if isinstance(data, dict) and "resourceType" in data:
-            return FHIR, validate_resource(data)
+            return FHIR, _resource_findings(data)
     return NOTE, findings
+
+
+def _resource_findings(data: dict[str, object]) -> list[Finding]:
+    """A FHIR resource's findings (service.fhir.validate, loaded with the R4B models on the
+    first resource met: a batch of notes alone never waits for them)."""
+    from service.fhir.validate import validate_resource
+
+    return validate_resource(data)
 
 
 class Checker:
@@ -73,7 +80,7 @@ class Checker:
         except orjson.JSONDecodeError:
             data = None
         if isinstance(data, dict) and "resourceType" in data:
-            return Result(source, None, FHIR, validate_resource(data))
+            return Result(source, None, FHIR, _resource_findings(data))
         # A single note gets the whole job: its derived values and due items are shown.
         result = self.assessor.assess(raw, self.now)
         return Result(source, None, NOTE, result.findings, result.derived, result.due)

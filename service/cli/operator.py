@@ -1,4 +1,9 @@
-"""The operator's commands: serve, database, tokens, the forwarding outbox and delivery."""
+"""The operator's commands: serve, database, tokens, the forwarding outbox and delivery.
+
+The store's libraries (SQLAlchemy, the migrations, httpx for delivery) are imported by the
+commands that use them, not with this module: every command of the command line loads it,
+and `capnote check` on one file should not wait half a second for a database it never opens.
+"""
 
 from __future__ import annotations
 
@@ -6,20 +11,19 @@ import asyncio
 import os
 import signal
 import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
-from sqlalchemy import Engine
-from sqlmodel import Session
 
-from service import serving
 from service.config import Settings
-from service.delivery import DeliveryWorker
-from service.notes import Principal
-from service.store import outbox, repository
-from service.store.database import make_engine, upgrade
+
+if TYPE_CHECKING:
+    from sqlalchemy import Engine
+    from sqlmodel import Session
 
 DEMO_NOTES = Path(__file__).resolve().parents[2] / "examples" / "notes"
 ROLES = ("submitter", "clinician", "analyst", "auditor")
@@ -29,14 +33,28 @@ db_app = typer.Typer(help="The database: upgrade to the newest schema.", no_args
 outbox_app = typer.Typer(help="Forwarding outbox: list, retry, park.", no_args_is_help=True)
 
 
-def _engine() -> Engine:
-    return make_engine(Settings().database_url)
+def _engine(url: str | None = None, *, migrate: bool = False) -> Engine:
+    """An engine on the settings' database (or url), migrated to the newest schema if asked."""
+    from service.store.database import make_engine, upgrade
+
+    engine = make_engine(url or Settings().database_url)
+    if migrate:
+        upgrade(engine)
+    return engine
+
+
+@contextmanager
+def _session(*, migrate: bool = False) -> Iterator[Session]:
+    from sqlmodel import Session
+
+    with Session(_engine(migrate=migrate)) as session:
+        yield session
 
 
 @db_app.command("upgrade")
 def db_upgrade() -> None:
     """Apply every migration the database lacks (the service also does this on start)."""
-    upgrade(_engine())
+    _engine(migrate=True)
     typer.echo("database is at the newest schema")
 
 
@@ -48,9 +66,9 @@ def token_new(
     """Create a token and print it once; only its hash is kept."""
     if role not in ROLES:
         raise typer.BadParameter(f"use one of {', '.join(ROLES)}", param_hint="--role")
-    engine = _engine()
-    upgrade(engine)
-    with Session(engine) as session:
+    from service.store import repository
+
+    with _session(migrate=True) as session:
         token, row = repository.new_token(session, role, label, datetime.now(UTC))
         session.commit()
         typer.echo(f"token {row.id} ({role}, {label}); shown once, keep it safe:")
@@ -60,9 +78,9 @@ def token_new(
 @token_app.command("list")
 def token_list() -> None:
     """Every token: id, role, label, created, revoked (never the token itself)."""
-    engine = _engine()
-    upgrade(engine)
-    with Session(engine) as session:
+    from service.store import repository
+
+    with _session(migrate=True) as session:
         for row in repository.list_tokens(session):
             state = f"revoked {row.revoked_at:%Y-%m-%d}" if row.revoked_at else "live"
             typer.echo(f"{row.id}\t{row.role}\t{row.label}\t{row.created_at:%Y-%m-%d}\t{state}")
@@ -71,8 +89,9 @@ def token_list() -> None:
 @token_app.command("revoke")
 def token_revoke(token_id: Annotated[int, typer.Argument(help="The id from token list.")]) -> None:
     """Revoke a token: it answers 401 from now on."""
-    engine = _engine()
-    with Session(engine) as session:
+    from service.store import repository
+
+    with _session() as session:
         if not repository.revoke_token(session, token_id, datetime.now(UTC)):
             typer.echo(f"no live token {token_id}", err=True)
             raise typer.Exit(1)
@@ -88,7 +107,9 @@ def outbox_list(
     limit: Annotated[int, typer.Option(min=1, max=10_000)] = 50,
 ) -> None:
     """Outbox entries, newest first: id, note, version, state, attempts, last answer."""
-    with Session(_engine()) as session:
+    from service.store import outbox
+
+    with _session() as session:
         for e in outbox.listing(session, state, limit):
             typer.echo(
                 f"{e.id}\t{e.note_key}\tv{e.version}\t{e.state}\t{e.attempts}\t"
@@ -97,7 +118,9 @@ def outbox_list(
 
 
 def _set_entry(entry_id: int, state: str) -> None:
-    with Session(_engine()) as session:
+    from service.store import outbox
+
+    with _session() as session:
         if not outbox.operator_set(session, entry_id, state, datetime.now(UTC)):
             typer.echo(f"no undelivered outbox entry {entry_id}", err=True)
             raise typer.Exit(1)
@@ -107,13 +130,17 @@ def _set_entry(entry_id: int, state: str) -> None:
 @outbox_app.command("retry")
 def outbox_retry(entry_id: Annotated[int, typer.Argument(help="The id from outbox list.")]) -> None:
     """Send a parked or waiting entry again, now."""
-    _set_entry(entry_id, outbox.PENDING)
+    from service.store.outbox import PENDING
+
+    _set_entry(entry_id, PENDING)
 
 
 @outbox_app.command("park")
 def outbox_park(entry_id: Annotated[int, typer.Argument(help="The id from outbox list.")]) -> None:
     """Stop trying an entry; it stays, marked failed, for a person to look at."""
-    _set_entry(entry_id, outbox.FAILED)
+    from service.store.outbox import FAILED
+
+    _set_entry(entry_id, FAILED)
 
 
 def deliver(
@@ -124,9 +151,9 @@ def deliver(
     receiver = settings.receiver()
     if receiver is None:
         raise typer.BadParameter("set CAPNOTE_FORWARD_URL first", param_hint="settings")
-    engine = make_engine(settings.database_url)
-    upgrade(engine)
-    worker = DeliveryWorker(engine, receiver)
+    from service.delivery import DeliveryWorker
+
+    worker = DeliveryWorker(_engine(settings.database_url, migrate=True), receiver)
     try:
         if once:
             typer.echo(f"{worker.run_once()} entries tried")
@@ -149,9 +176,11 @@ def serve(
     demo: Annotated[bool, typer.Option(help="Load the demo notes and print a demo token.")] = False,
 ) -> None:
     """Run the REST service (SQLite file capnote.sqlite3 here unless CAPNOTE_DATABASE_URL)."""
+    from service import serving
+
     settings = Settings()
-    engine = make_engine(settings.database_url)
-    upgrade(engine)  # once, here, so that workers never race to migrate
+    # Migrated once, here, so that workers never race to migrate.
+    engine = _engine(settings.database_url, migrate=True)
     if demo:
         _load_demo(settings, engine)
     os.environ["CAPNOTE_MIGRATE_ON_START"] = "false"
@@ -163,7 +192,11 @@ def serve(
 
 def _load_demo(settings: Settings, engine: Engine) -> None:
     """Store the example notes and print a clinician token to try the API with."""
+    from sqlmodel import Session
+
     from service.app import create_app
+    from service.notes import Principal
+    from service.store import repository
 
     notes = create_app(settings.model_copy(update={"migrate_on_start": False})).state.notes
     who = Principal(label="demo loader", role="submitter")

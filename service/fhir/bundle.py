@@ -19,7 +19,6 @@ from service.fhir.common import Context, Emitted, Entry, Version, key_query
 from service.fhir.observations import observations
 from service.fhir.procedure import procedure
 from service.fhir.requests import administrations, medication_request, service_request
-from service.fhir.validate import validate_resource
 from service.schedule import DueItem
 
 
@@ -99,6 +98,10 @@ def check_output(result: dict[str, Any], items: list[Entry], level: OutputCheck)
         for loc, value, vs in [found]
     ]
     if level is OutputCheck.R4B and not problems:
+        # Imported on first use: the R4B models take a tenth of a second to load, and only
+        # this setting needs them here.
+        from service.fhir.validate import validate_resource
+
         problems = [f"{f.location}: {f.message}" for f in validate_resource(result) if f.blocking]
     if problems:
         raise EmissionError("emitted FHIR breaks a rule: " + ", ".join(problems))
