@@ -3,13 +3,16 @@ what the input echoes, appear whole or not at all, and keep memory flat."""
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import json
 import os
 import signal
 import subprocess
+import threading
 from collections import Counter
 from pathlib import Path
+from typing import IO
 
 import pytest
 
@@ -309,25 +312,47 @@ def test_atomic_file_leaves_the_target_alone_when_writing_fails(tmp_path: Path) 
     assert [p.name for p in tmp_path.iterdir()] == ["report.html"]
 
 
+def _feed(pipe: IO[bytes], data: bytes) -> None:
+    """Write data into the pipe, which stays open; a check stopped meanwhile closes it."""
+    with contextlib.suppress(BrokenPipeError):
+        pipe.write(data)
+        pipe.flush()
+
+
 def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
-    """Start a check with a report over 3,000 lines and send sig once findings are printing."""
+    """Start a check with a report, feed it 3,000 lines on standard input and send sig once
+    findings are printing.
+
+    Standard input stays open until the signal has gone, so the check is still running when
+    it arrives, however fast the check or slow the machine (a file of 3,000 lines could be
+    checked to the end before a busy test process got round to signalling).
+    """
     source = write_ndjson(tmp_path / "dump.ndjson", 3_000)
     target = tmp_path / f"report.{fmt}"
     target.write_text("the last good report")
     with subprocess.Popen(
-        [*CAPNOTE, "check", str(source), "--now", NOW, "--report", str(target)],
+        [*CAPNOTE, "check", "-", "--now", NOW, "--report", str(target)],
         cwd=ROOT,
+        stdin=subprocess.PIPE,
         stdout=subprocess.PIPE,
         stderr=subprocess.DEVNULL,
     ) as proc:
+        assert proc.stdin is not None
         assert proc.stdout is not None
+        # Written from a thread: the pipe holds 64 KiB, and the check answers on stdout
+        # (read here) while it reads.
+        feeder = threading.Thread(target=_feed, args=(proc.stdin, source.read_bytes()))
+        feeder.start()
         # stdout is a pipe, so it arrives in 8 KiB blocks: the first one is about 40 findings
-        # into the 3,000 lines, well before the end.
+        # into the 3,000 lines.
         first = proc.stdout.readline()
-        assert first.startswith(str(source).encode())
+        assert first.startswith(b"<stdin>:")
         proc.send_signal(sig)
         proc.stdout.read()
         proc.wait(timeout=60)
+        feeder.join(timeout=60)
+        with contextlib.suppress(BrokenPipeError):
+            proc.stdin.close()
     assert proc.returncode != 0
     return target
 
