@@ -319,13 +319,18 @@ def _feed(pipe: IO[bytes], data: bytes) -> None:
         pipe.flush()
 
 
+def _default_sigint() -> None:
+    # A job started in the background by a shell inherits SIGINT ignored, and Python then
+    # keeps ignoring it: the check would never see the signal this test sends.
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
     """Start a check with a report, feed it 3,000 lines on standard input and send sig once
     findings are printing.
 
     Standard input stays open until the signal has gone, so the check is still running when
-    it arrives, however fast the check or slow the machine (a file of 3,000 lines could be
-    checked to the end before a busy test process got round to signalling).
+    it arrives, however fast the check or slow the machine.
     """
     source = write_ndjson(tmp_path / "dump.ndjson", 3_000)
     target = tmp_path / f"report.{fmt}"
@@ -336,6 +341,7 @@ def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
         stdin=subprocess.PIPE,
         stdout=subprocess.PIPE,
         stderr=subprocess.DEVNULL,
+        preexec_fn=_default_sigint,
     ) as proc:
         assert proc.stdin is not None
         assert proc.stdout is not None
@@ -348,11 +354,16 @@ def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
         first = proc.stdout.readline()
         assert first.startswith(b"<stdin>:")
         proc.send_signal(sig)
-        proc.stdout.read()
-        proc.wait(timeout=60)
-        feeder.join(timeout=60)
-        with contextlib.suppress(BrokenPipeError):
-            proc.stdin.close()
+        try:
+            # What is left to print fits the pipe, so the check never waits on it.
+            proc.wait(timeout=60)
+        finally:
+            if proc.poll() is None:  # a check that ignored the signal fails, never hangs
+                proc.kill()
+                proc.wait()
+            feeder.join(timeout=60)
+            with contextlib.suppress(BrokenPipeError):
+                proc.stdin.close()
     assert proc.returncode != 0
     return target
 
