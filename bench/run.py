@@ -86,7 +86,7 @@ class Plan:
     rounds: int  # of the ceiling and capnote measured in turn, each keeping its best
     connections: tuple[int, ...]
     store_sizes: tuple[int, ...]
-    read_rounds: int  # of every store size measured in turn, each keeping its best p50
+    read_rounds: int  # of each read at every store size back to back (targets: median ratio)
     read_seconds: float
     ndjson_sizes: tuple[int, ...]
     emissions: int

@@ -75,42 +75,44 @@ def test_check_validates_fhir_resources_for_the_analyst(tmp_path: Path) -> None:
     assert "event-status" in run.stdout
 
 
+_LOADED_PROBE = (
+    "import sys\n"
+    "from service.cli import main\n"
+    "try:\n"
+    "    main()\n"
+    "except SystemExit as done:\n"
+    "    heavy = sorted(m for m in ('sqlalchemy', 'httpx', 'fhir.resources.R4B.bundle')\n"
+    "                   if m in sys.modules)\n"
+    "    print('LOADED', heavy, 'EXIT', done.code)\n"
+)
+
+
+def _loaded_after(*args: str) -> str:
+    """The heavy modules loaded once the command line has run with args, and its exit."""
+    run = subprocess.run(
+        [sys.executable, "-c", _LOADED_PROBE, *args],
+        capture_output=True,
+        text=True,
+        cwd=ROOT,
+        timeout=120,
+        check=False,
+    )
+    return run.stdout.strip().splitlines()[-1]
+
+
 def test_checking_notes_loads_neither_the_store_nor_the_r4b_models(tmp_path: Path) -> None:
     # An analyst's check of one file starts in a fraction of the time when the store's
     # libraries (SQLAlchemy, httpx) and the R4B models stay unloaded: they are loaded by the
     # commands and records that need them (service.cli.operator, service.batch.checking).
-    probe = (
-        "import sys\n"
-        "from service.cli import main\n"
-        "try:\n"
-        "    main()\n"
-        "except SystemExit as done:\n"
-        "    heavy = sorted(m for m in ('sqlalchemy', 'httpx', 'fhir.resources.R4B.bundle')\n"
-        "                   if m in sys.modules)\n"
-        "    print('LOADED', heavy, 'EXIT', done.code)\n"
-    )
     notes = EXAMPLES / "notes"
-    run = subprocess.run(
-        [sys.executable, "-c", probe, "check", "--now", NOW, str(notes)],
-        capture_output=True,
-        text=True,
-        cwd=ROOT,
-        timeout=120,
-        check=False,
-    )
-    assert run.stdout.strip().splitlines()[-1] == "LOADED [] EXIT 0", run.stdout[-2000:]
+    assert _loaded_after("check", "--now", NOW, str(notes)) == "LOADED [] EXIT 0"
     # A FHIR resource among the records brings the R4B models in when it is met.
     emitted = capnote("emit", str(notes / "right-routine.json"), "--now", NOW)
     (tmp_path / "bundle.json").write_text(emitted.stdout)
-    run = subprocess.run(
-        [sys.executable, "-c", probe, "check", str(tmp_path / "bundle.json")],
-        capture_output=True,
-        text=True,
-        cwd=ROOT,
-        timeout=120,
-        check=False,
+    assert (
+        _loaded_after("check", str(tmp_path / "bundle.json"))
+        == "LOADED ['fhir.resources.R4B.bundle'] EXIT 0"
     )
-    assert run.stdout.strip().splitlines()[-1] == "LOADED ['fhir.resources.R4B.bundle'] EXIT 0"
 
 
 def test_emit_is_byte_identical_across_processes() -> None:
