@@ -102,7 +102,8 @@ class VisualAcuity(Contract):
             strip_whitespace=True, min_length=1, max_length=16, pattern=r"^[^\x00-\x1f\x7f]+$"
         ),
     ]
-    correction: AcuityCorrection = "best-corrected"
+    # None: not recorded. No correction is assumed (the LOINC best-corrected codes need one).
+    correction: AcuityCorrection | None = None
 
 
 class IopReading(Contract):
@@ -120,25 +121,30 @@ class TimedIopReading(IopReading):
 
 
 class Iol(Contract):
-    """The intraocular lens behind the capsule."""
+    """The intraocular lens behind the capsule; every item may be left not recorded (None)."""
 
-    optic_diameter_mm: float = 6.0
+    optic_diameter_mm: float | None = None
     optic_material: IolMaterial | None = None
-    position: IolPosition = "bag"
+    position: IolPosition | None = None
 
 
 class RiskFactors(Contract):
-    """Risk factors for retinal detachment, CME and IOP rise; absent means not present."""
+    """Risk factors for retinal detachment, CME and IOP rise.
 
-    glaucoma: GlaucomaSeverity = "none"
-    high_myopia: bool = False
+    Each is three-valued: true (recorded present), false (recorded absent) or omitted/null
+    (not recorded). Not recorded is never read as absent: the checks that need an item say
+    that they could not run.
+    """
+
+    glaucoma: GlaucomaSeverity | None = None
+    high_myopia: bool | None = None
     axial_length_mm: float | None = None
-    uveitis: bool = False
-    diabetic_macular_oedema: bool = False
-    retinal_detachment_this_eye: bool = False
-    retinal_detachment_fellow_eye: bool = False
-    lattice_degeneration: bool = False
-    vitreous_loss_at_cataract_surgery: bool = False
+    uveitis: bool | None = None
+    diabetic_macular_oedema: bool | None = None
+    retinal_detachment_this_eye: bool | None = None
+    retinal_detachment_fellow_eye: bool | None = None
+    lattice_degeneration: bool | None = None
+    vitreous_loss_at_cataract_surgery: bool | None = None
 
 
 class BeforeLaser(Contract):
@@ -189,8 +195,9 @@ class Opening(Contract):
     """The capsule opening: one diameter (round) or two axes (horizontal, vertical)."""
 
     horizontal_mm: float
+    # None: a round opening, one diameter measured; the vertical is never invented.
     vertical_mm: float | None = None
-    centred: bool = True
+    centred: bool | None = None
 
 
 class PitPosition(Contract):
@@ -217,6 +224,35 @@ class Result(Contract):
     complications: Annotated[list[Complication], Field(max_length=20)] = []
     iop_after: Annotated[list[TimedIopReading], Field(max_length=20)] = []
     visual_acuity_after: VisualAcuity | None = None
+    # What was done about a raised IOP after the laser, and when the patient left.
+    pressure_treatment: Annotated[list[PressureTreatment], Field(max_length=10)] = []
+    discharge: Discharge | None = None
+
+
+PressureRoute = Literal["topical", "oral", "intravenous"]
+DoseUnit = Literal["drop", "mg"]
+
+
+class PressureTreatment(Contract):
+    """A treatment given in clinic for a raised IOP after the laser."""
+
+    agent: Text
+    strength_percent: float | None = None
+    dose: float
+    dose_unit: DoseUnit
+    route: PressureRoute
+    given_at: AwareDatetime
+
+
+class Discharge(Contract):
+    """The patient leaving clinic after the laser: when, and who cleared it."""
+
+    at: AwareDatetime
+    cleared_by: Text
+    cleared_by_identifier: Identifier | None = None
+    # Why the patient left although the last reading still needed action (for example,
+    # admitted or sent to the eye emergency service); required for the pathway to close.
+    reason: Text | None = None
 
 
 class ClinicDrop(Contract):
@@ -244,7 +280,7 @@ class Plan(Contract):
     iop_recheck_minutes: Count | None = None
     review_days: Count | None = None
     rd_warning_given: bool
-    further_session_planned: bool = False
+    further_session_planned: bool | None = None
 
 
 class Note(Contract):

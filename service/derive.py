@@ -51,11 +51,17 @@ class IopCourse:
 
 @dataclass(frozen=True, slots=True)
 class OpeningSize:
-    """The opening's area and how it compares with the IOL optic."""
+    """The opening's area and how it compares with the IOL optic.
+
+    ratio_to_optic is a diameter ratio (the widest axis over the optic diameter), never an
+    area ratio; None when the optic diameter is not recorded. round_assumed: one diameter
+    was measured, so the area assumes a round opening.
+    """
 
     area_mm2: float
     largest_mm: float
-    ratio_to_optic: float
+    ratio_to_optic: float | None
+    round_assumed: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -116,6 +122,7 @@ class Derived:
     focal_spot: FocalSpot
     risk: Risk
     cumulative: Cumulative
+    pathway: PressurePathway
 
 
 def total_pulses(laser: LaserSettings) -> int:
@@ -155,14 +162,18 @@ def energy_band(total_mj: float, bands: Bands) -> EnergyBand:
     return EnergyBand(index=index, label=label)
 
 
-def opening_size(opening: Opening, optic_diameter_mm: float) -> OpeningSize:
-    """Area of a round or elliptical opening, and its widest axis against the optic."""
-    vertical = opening.vertical_mm if opening.vertical_mm is not None else opening.horizontal_mm
+def opening_size(opening: Opening, optic_diameter_mm: float | None) -> OpeningSize:
+    """Area of a round or elliptical opening, and its widest diameter over the optic's."""
+    round_ = opening.vertical_mm is None
+    vertical = opening.horizontal_mm if opening.vertical_mm is None else opening.vertical_mm
     largest = max(opening.horizontal_mm, vertical)
     return OpeningSize(
         area_mm2=round(math.pi / 4.0 * opening.horizontal_mm * vertical, 2),
         largest_mm=largest,
-        ratio_to_optic=round(largest / optic_diameter_mm, 2),
+        ratio_to_optic=(
+            round(largest / optic_diameter_mm, 2) if optic_diameter_mm is not None else None
+        ),
+        round_assumed=round_,
     )
 
 
@@ -200,6 +211,62 @@ def spike_grade(rise_mmhg: float, thresholds: Thresholds) -> SpikeGrade:
 def iop_rise(before: IopReading, reading: IopReading) -> float:
     """How far a post-laser reading lies above the pre-laser one (negative below), in mmHg."""
     return round(reading.value_mmhg - before.value_mmhg, 1)
+
+
+def reading_needs_action(before: IopReading, reading: IopReading, thresholds: Thresholds) -> bool:
+    """A post-laser reading that must be treated and re-measured before the patient leaves:
+    a severe rise, or an IOP at or over the site's action level (iop_high_mmhg)."""
+    return (
+        spike_grade(iop_rise(before, reading), thresholds) == "severe"
+        or reading.value_mmhg >= thresholds.iop_high_mmhg.value
+    )
+
+
+@dataclass(frozen=True, slots=True)
+class PressurePathway:
+    """Where the post-laser pressure pathway stands.
+
+    open_reading: the index of the last reading that needs action when no later reading is
+    below the action level and no discharge reason is recorded (None: nothing left open).
+    discharge_reading: the index of the last reading at or before discharge (None: no
+    discharge recorded, or no reading before it).
+    """
+
+    needs_action: tuple[int, ...]
+    open_reading: int | None
+    discharge_reading: int | None
+    # Per pressure treatment: the reading it answered (the latest needing action at or
+    # before it was given), None when no such reading comes before it.
+    treated_reading: tuple[int | None, ...] = ()
+
+
+def pressure_pathway(note: Note, thresholds: Thresholds) -> PressurePathway:
+    """Which readings needed action, whether a later safe reading (or a reason) closed it."""
+    before, after = note.before.iop, note.result.iop_after
+    order = sorted(range(len(after)), key=lambda i: after[i].measured_at)
+    flagged = tuple(i for i in order if reading_needs_action(before, after[i], thresholds))
+    open_reading: int | None = None
+    if flagged:
+        last = flagged[-1]
+        later_safe = any(
+            after[i].measured_at > after[last].measured_at
+            and not reading_needs_action(before, after[i], thresholds)
+            for i in order
+        )
+        discharge = note.result.discharge
+        reasoned = discharge is not None and discharge.reason is not None
+        if not later_safe and not reasoned:
+            open_reading = last
+    discharge_reading: int | None = None
+    if note.result.discharge is not None:
+        at = note.result.discharge.at
+        upto = [i for i in order if after[i].measured_at <= at]
+        discharge_reading = upto[-1] if upto else None
+    treated: list[int | None] = []
+    for given in note.result.pressure_treatment:
+        earlier = [i for i in flagged if after[i].measured_at <= given.given_at]
+        treated.append(earlier[-1] if earlier else None)
+    return PressurePathway(flagged, open_reading, discharge_reading, tuple(treated))
 
 
 def iop_course(
@@ -315,4 +382,5 @@ def derive(note: Note, policy: Policy, prior: Sequence[PriorSession] = ()) -> De
         focal_spot=focal_spot(laser.wavelength_nm, angle, highest, assumed=assumed),
         risk=risk(before.risk_factors, course, band, policy),
         cumulative=cumulative(note.started_at, energy, prior),
+        pathway=pressure_pathway(note, t),
     )

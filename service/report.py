@@ -51,9 +51,13 @@ def derived_lines(d: Derived) -> list[str]:
         f"over {d.cumulative.session_number} session(s)",
     ]
     if d.opening is not None:
-        lines.append(
-            f"  opening: {d.opening.area_mm2:g} mm2, {d.opening.ratio_to_optic:g} of the optic"
+        shape = " (round: one diameter measured)" if d.opening.round_assumed else ""
+        ratio = (
+            f", widest diameter {d.opening.ratio_to_optic:g} of the optic diameter"
+            if d.opening.ratio_to_optic is not None
+            else ", optic diameter not recorded"
         )
+        lines.append(f"  opening: {d.opening.area_mm2:g} mm2{shape}{ratio}")
     if d.iop.highest is not None:
         lines.append(
             f"  IOP: highest change {d.iop.highest.change_mmhg:+g} mmHg "

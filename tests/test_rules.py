@@ -54,7 +54,7 @@ WARNINGS: list[tuple[str, Change, tuple[str, str, str]]] = [
     (
         "glaucoma and 60 mJ",
         lambda n: (
-            n["before"].update(risk_factors={"glaucoma": "mild"}),
+            n["before"]["risk_factors"].update({"glaucoma": "mild"}),
             n["laser"].update(
                 series=[{"energy_mj": 2.0, "pulses": 30}], reported_total_energy_mj=None
             ),
@@ -79,7 +79,7 @@ WARNINGS: list[tuple[str, Change, tuple[str, str, str]]] = [
     (
         "glaucoma without prophylaxis",
         lambda n: (
-            n["before"].update(risk_factors={"glaucoma": "suspect"}),
+            n["before"]["risk_factors"].update({"glaucoma": "suspect"}),
             n["plan"].update(prophylaxis=[]),
         ),
         ("warning", "glaucoma-no-prophylaxis", "plan.prophylaxis"),
@@ -162,7 +162,7 @@ WARNINGS: list[tuple[str, Change, tuple[str, str, str]]] = [
     # secondary report / from memory: uveitis raises CME risk
     (
         "uveitis",
-        lambda n: n["before"].update(risk_factors={"uveitis": True}),
+        lambda n: n["before"]["risk_factors"].update({"uveitis": True}),
         ("warning", "cme-risk", "before.risk_factors.uveitis"),
     ),
 ]
@@ -200,7 +200,7 @@ ERRORS: list[tuple[str, Change, tuple[str, str, str]]] = [
     ),
     (
         "axial length 50",
-        lambda n: n["before"].update(risk_factors={"axial_length_mm": 50}),
+        lambda n: n["before"]["risk_factors"].update({"axial_length_mm": 50}),
         ("error", "out-of-range", "before.risk_factors.axial_length_mm"),
     ),
     (

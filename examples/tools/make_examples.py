@@ -36,7 +36,11 @@ def base(note_no: str, mrn: str, eye: str, day: str) -> dict[str, Any]:
                 "method": "applanation",
                 "measured_at": f"{day}T09:40:00+00:00",
             },
-            "visual_acuity": {"notation": "snellen-metric", "value": "6/18"},
+            "visual_acuity": {
+                "notation": "snellen-metric",
+                "value": "6/18",
+                "correction": "best-corrected",
+            },
             "pupil_dilated": True,
             "iol": {
                 "optic_diameter_mm": 6.0,
@@ -44,7 +48,17 @@ def base(note_no: str, mrn: str, eye: str, day: str) -> dict[str, Any]:
                 "position": "bag",
             },
             "cataract_surgery_date": "2025-03-12",
-            "risk_factors": {},
+            # Every item recorded: not recorded is never read as absent.
+            "risk_factors": {
+                "glaucoma": "none",
+                "high_myopia": False,
+                "uveitis": False,
+                "diabetic_macular_oedema": False,
+                "retinal_detachment_this_eye": False,
+                "retinal_detachment_fellow_eye": False,
+                "lattice_degeneration": False,
+                "vitreous_loss_at_cataract_surgery": False,
+            },
         },
         "laser": {
             "wavelength_nm": 1064,
@@ -61,7 +75,11 @@ def base(note_no: str, mrn: str, eye: str, day: str) -> dict[str, Any]:
             "iop_after": [
                 {"value_mmhg": 17, "method": "applanation", "measured_at": f"{day}T11:15:00+00:00"}
             ],
-            "visual_acuity_after": {"notation": "snellen-metric", "value": "6/9"},
+            "visual_acuity_after": {
+                "notation": "snellen-metric",
+                "value": "6/9",
+                "correction": "best-corrected",
+            },
         },
         "plan": {
             "prophylaxis": [{"agent": "apraclonidine", "strength_percent": 1.0, "timing": "both"}],
@@ -86,12 +104,14 @@ def valid_notes() -> dict[str, dict[str, Any]]:
     notes["right-routine"] = base("LN-2026-0417", "HX100234", "right", "2026-11-27")
 
     left = base("LN-2026-0418", "HX100871", "left", "2026-11-27")
-    left["before"]["risk_factors"] = {
-        "high_myopia": True,
-        "axial_length_mm": 26.4,
-        "lattice_degeneration": True,
+    left["before"]["risk_factors"].update(
+        high_myopia=True, axial_length_mm=26.4, lattice_degeneration=True
+    )
+    left["before"]["visual_acuity"] = {
+        "notation": "snellen-imperial",
+        "value": "20/60",
+        "correction": "best-corrected",
     }
-    left["before"]["visual_acuity"] = {"notation": "snellen-imperial", "value": "20/60"}
     left["laser"]["series"] = [
         {"energy_mj": 1.2, "pulses": 10},
         {"energy_mj": 1.8, "pulses": 14},
@@ -101,7 +121,11 @@ def valid_notes() -> dict[str, dict[str, Any]]:
     left["laser"]["pattern"] = "circular"
     left["laser"]["contact_lens"] = {"used": True, "cone_angle_deg": 24}
     left["result"]["opening"] = {"horizontal_mm": 5.0, "vertical_mm": 4.5, "centred": True}
-    left["result"]["visual_acuity_after"] = {"notation": "snellen-imperial", "value": "20/30"}
+    left["result"]["visual_acuity_after"] = {
+        "notation": "snellen-imperial",
+        "value": "20/30",
+        "correction": "best-corrected",
+    }
     notes["left-raised-risk-multi-series"] = left
 
     spike = base("LN-2026-0421", "HX101502", "right", "2026-11-30")
@@ -110,6 +134,23 @@ def valid_notes() -> dict[str, dict[str, Any]]:
         {"value_mmhg": 29, "method": "applanation", "measured_at": "2026-11-30T13:10:00+00:00"},
     ]
     spike["result"]["complications"] = [{"kind": "iop-spike"}]
+    # The severe rise is treated and re-measured before the patient leaves.
+    spike["result"]["iop_after"].append(
+        {"value_mmhg": 18, "method": "applanation", "measured_at": "2026-11-30T14:40:00+00:00"}
+    )
+    spike["result"]["pressure_treatment"] = [
+        {
+            "agent": "acetazolamide",
+            "dose": 500,
+            "dose_unit": "mg",
+            "route": "oral",
+            "given_at": "2026-11-30T13:20:00+00:00",
+        }
+    ]
+    spike["result"]["discharge"] = {
+        "at": "2026-11-30T14:50:00+00:00",
+        "cleared_by": "Dr Ilona Marsh",
+    }
     spike["plan"]["take_home"].append(
         {"agent": "timolol", "strength_percent": 0.5, "times_per_day": 2, "days": 5}
     )
@@ -117,7 +158,7 @@ def valid_notes() -> dict[str, dict[str, Any]]:
 
     glaucoma = base("LN-2026-0425", "HX100990", "left", "2026-11-26")
     glaucoma["before"]["iop"]["value_mmhg"] = 19
-    glaucoma["before"]["risk_factors"] = {"glaucoma": "advanced"}
+    glaucoma["before"]["risk_factors"]["glaucoma"] = "advanced"
     glaucoma["laser"]["series"] = [
         {"energy_mj": 2.4, "pulses": 20},
         {"energy_mj": 3.5, "pulses": 6},
@@ -193,6 +234,7 @@ def invalid_notes() -> dict[str, Any]:
         "missing-required",
         lambda n: (n.pop("eye"), n["before"].pop("iop"), n["plan"].pop("rd_warning_given")),
     )
+    variant("glaucoma-not-recorded", lambda n: n["before"]["risk_factors"].pop("glaucoma"))
     variant("no-utc-offset", lambda n: n.update(started_at="2026-11-27T10:05:00"))
     variant("unknown-field", lambda n: n["laser"].update(power_watts=3))
     return out

@@ -18,7 +18,12 @@ from service.fhir.codes import RESOURCE_KEY
 from service.fhir.common import Context, Emitted, Entry, Version, key_query
 from service.fhir.observations import observations
 from service.fhir.procedure import procedure
-from service.fhir.requests import administrations, medication_request, service_request
+from service.fhir.requests import (
+    administrations,
+    medication_request,
+    pressure_treatment,
+    service_request,
+)
 from service.schedule import DueItem
 
 
@@ -32,10 +37,16 @@ def entries(
     """Every resource for the note version, the Procedure first."""
     ctx = ctx or Context(note, version)
     proc = procedure(ctx, derived, due)
-    out = [proc, *observations(ctx, proc, derived)]
+    made = observations(ctx, proc, derived)
+    out = [proc, *made]
     out += [service_request(ctx, proc, item) for item in due]
     for i, drop in enumerate(note.plan.prophylaxis):
         out += administrations(ctx, proc, drop, i)
+    readings = {e.role: e for e in made if e.role.startswith("iop-after-")}
+    for i, given in enumerate(note.result.pressure_treatment):
+        reason = derived.pathway.treated_reading[i]
+        entry = readings.get(f"iop-after-{reason}") if reason is not None else None
+        out.append(pressure_treatment(ctx, proc, given, i, entry))
     out += [medication_request(ctx, proc, drop, i) for i, drop in enumerate(note.plan.take_home)]
     return out
 

@@ -105,6 +105,19 @@ CONCEPTS: Final[dict[str, tuple[str, str]]] = {
         "Vitreous came forward through the opening.",
     ),
     "other-complication": ("Other complication", "A complication described in text."),
+    "opening-optic-diameter-ratio": (
+        "Opening to optic diameter ratio",
+        "Widest opening diameter divided by the IOL optic diameter (a ratio of diameters, "
+        "not of areas).",
+    ),
+    "iop-treatment": (
+        "Treatment of raised IOP after laser",
+        "A drug given in clinic for a raised IOP after the laser.",
+    ),
+    "discharge-after-laser": (
+        "Discharge after laser",
+        "The patient left clinic after the laser; who cleared it and the IOP then.",
+    ),
     "iop-recheck": ("IOP recheck after laser", "Same-day IOP measurement after the laser."),
     "next-day-iop-check": ("Next-day IOP check", "IOP measurement the day after the laser."),
     "capsulotomy-review": ("Review after capsulotomy", "Clinic review after the laser."),

@@ -90,10 +90,13 @@ class ObservationMaker:
     ) -> Entry:
         """Visual acuity as entered, with its logMAR (derived already) as a component."""
         eye = self.ctx.note.eye
+        # The best-corrected LOINC code only for a correction recorded as best-corrected: a
+        # correction not recorded is sent as acuity of unstated correction, never assumed.
         snellen_bcva = entered.correction == "best-corrected" and entered.notation.startswith(
             "snellen"
         )
-        label = f"Visual acuity ({entered.correction}, {entered.notation}), {eye} eye"
+        correction = entered.correction or "correction not recorded"
+        label = f"Visual acuity ({correction}, {entered.notation}), {eye} eye"
         code = (
             concept(coding(LOINC, codes.BCVA_SNELLEN_BY_EYE[eye]), text=label)
             if snellen_bcva
@@ -200,18 +203,31 @@ def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry
 
     opening = note.result.opening
     if opening is not None and derived.opening is not None:
-        vertical = opening.vertical_mm if opening.vertical_mm is not None else opening.horizontal_mm
+        # Only what was measured: a round opening has one diameter, never a vertical copy.
+        diameters = [
+            part("opening-diameter-horizontal", quantity(opening.horizontal_mm, "mm", "mm"))
+        ]
+        if opening.vertical_mm is not None:
+            diameters.append(
+                part("opening-diameter-vertical", quantity(opening.vertical_mm, "mm", "mm"))
+            )
         size = make.make(
-            "opening-size",
-            "exam",
-            concept(own("opening-size")),
-            finish,
-            component=[
-                part("opening-diameter-horizontal", quantity(opening.horizontal_mm, "mm", "mm")),
-                part("opening-diameter-vertical", quantity(vertical, "mm", "mm")),
-            ],
+            "opening-size", "exam", concept(own("opening-size")), finish, component=diameters
         )
         out.append(size)
+        area_extra: dict[str, Any] = {}
+        if derived.opening.round_assumed:
+            # The assumption behind a derived value is stated in the resource (R4 Observation.note).
+            area_extra["note"] = [
+                {"text": "One diameter was measured: the area assumes a round opening."}
+            ]
+        if derived.opening.ratio_to_optic is not None:
+            area_extra["component"] = [
+                {
+                    "code": concept(own("opening-optic-diameter-ratio")),
+                    "valueQuantity": quantity(derived.opening.ratio_to_optic, "ratio", "1"),
+                }
+            ]
         out.append(
             make.make(
                 "opening-area",
@@ -220,6 +236,7 @@ def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry
                 finish,
                 {"valueQuantity": quantity(derived.opening.area_mm2, "mm2", "mm2")},
                 derivedFrom=[size.reference],
+                **area_extra,
             )
         )
 

@@ -33,6 +33,31 @@ def complication_concept(c: Complication) -> dict[str, Any]:
     return concept(own(code), text=c.text or codes.CONCEPTS[code][0])
 
 
+def _pathway_notes(note: Note, derived: Derived) -> list[str]:
+    """The post-laser pressure pathway in words: what is still open, and the discharge."""
+    out: list[str] = []
+    after = note.result.iop_after
+    path = derived.pathway
+    if path.open_reading is not None:
+        r = after[path.open_reading]
+        out.append(
+            f"IOP {r.value_mmhg:g} mmHg at {when(r.measured_at)} needed action; no later "
+            "reading below the action level and no discharge reason are recorded."
+        )
+    discharge = note.result.discharge
+    if discharge is not None:
+        text = f"Discharged at {when(discharge.at)}, cleared by {discharge.cleared_by}"
+        if path.discharge_reading is not None:
+            r = after[path.discharge_reading]
+            text += f"; IOP at discharge {r.value_mmhg:g} mmHg (measured {when(r.measured_at)})"
+        else:
+            text += "; no IOP reading is recorded before discharge"
+        if discharge.reason is not None:
+            text += f"; reason: {discharge.reason}"
+        out.append(text + ".")
+    return out
+
+
 def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, str]:
     """A short XHTML summary; clinical content only, no identifiers."""
     opening = note.result.opening
@@ -50,6 +75,7 @@ def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, st
         f"IOP {note.before.iop.value_mmhg:g} mmHg before; after: {after} mmHg "
         f"(spike grade {derived.iop.spike_grade}).",
     ]
+    lines += _pathway_notes(note, derived)
     lines += [f"{item.title}: {item.target.date().isoformat()}." for item in due]
     lines.append(
         "Thresholds are literature defaults; local protocol and the treating clinician decide."
@@ -112,6 +138,9 @@ def procedure(ctx: Context, derived: Derived, due: list[DueItem]) -> Entry:
             concept(text=f"{item.title}: {item.target.date().isoformat()}") for item in due
         ]
     resource["usedCode"] = used
+    notes = _pathway_notes(note, derived)
+    if notes:
+        resource["note"] = [{"text": text} for text in notes]
     key = ctx.keys.key(PROCEDURE_ROLE)
     query = identifier_query(note.note_id.system, note.note_id.value)
     return Entry(key, resource, query, PROCEDURE_ROLE)

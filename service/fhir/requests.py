@@ -5,7 +5,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-from schemas.note import ClinicDrop, HomeDrop
+from schemas.note import ClinicDrop, HomeDrop, PressureTreatment
 from service.fhir.codes import concept, own, quantity
 from service.fhir.common import Context, Entry, keyed, keyed_entry, when
 from service.schedule import DueItem
@@ -97,6 +97,45 @@ def administrations(ctx: Context, procedure: Entry, drop: ClinicDrop, index: int
         }
         out.append(keyed_entry(key, resource, role))
     return out
+
+
+_TREATMENT_ROUTE = {
+    "topical": concept(text="ophthalmic (topical to the eye)"),
+    "oral": concept(text="oral"),
+    "intravenous": concept(text="intravenous"),
+}
+_DOSE_UNIT = {"drop": ("drop", "{drop}"), "mg": ("mg", "mg")}
+
+
+def pressure_treatment(
+    ctx: Context,
+    procedure: Entry,
+    given: PressureTreatment,
+    index: int,
+    reason: Entry | None,
+) -> Entry:
+    """A treatment given in clinic for a raised IOP after the laser, as given."""
+    role = f"pressure-treatment-{index}"
+    key, resource = keyed(ctx, role, "MedicationAdministration")
+    resource["status"] = ctx.status("completed")
+    resource["category"] = concept(own("iop-treatment"))
+    resource["partOf"] = [procedure.reference]
+    strength = f" {given.strength_percent:g}%" if given.strength_percent is not None else ""
+    resource["medicationCodeableConcept"] = concept(text=f"{given.agent}{strength}")
+    resource["subject"] = ctx.subject
+    ctx.with_encounter(resource, "context")
+    resource["effectiveDateTime"] = when(given.given_at)
+    resource["performer"] = [{"actor": ctx.clinician}]
+    if reason is not None:
+        # R4 MedicationAdministration.reasonReference takes an Observation: the reading.
+        resource["reasonReference"] = [reason.reference]
+    unit, code = _DOSE_UNIT[given.dose_unit]
+    resource["dosage"] = {
+        "text": f"{given.dose:g} {unit} {given.route} for a raised IOP after the laser",
+        "route": _TREATMENT_ROUTE[given.route],
+        "dose": quantity(given.dose, unit, code),
+    }
+    return keyed_entry(key, resource, role)
 
 
 def medication_request(ctx: Context, procedure: Entry, drop: HomeDrop, index: int) -> Entry:

@@ -12,6 +12,7 @@ from service.derive import (
     band_index,
     energy_band,
     iop_rise,
+    pressure_pathway,
     spike_grade,
     total_energy_mj,
 )
@@ -35,10 +36,14 @@ def energy(note: Note, ctx: Context) -> Iterator[Finding]:
                 source=usual.source,
             )
     total = total_energy_mj(note.laser)
-    if band_index(total, t.total_energy_bands_mj) > 1:
+    index = band_index(total, t.total_energy_bands_mj)
+    if index > 1:
         band = energy_band(total, t.total_energy_bands_mj)  # its label, only when shown
+        # The middle band alone is within published case series (information by default, see
+        # the policy's [severity]); the highest band has a code of its own.
+        highest = index > len(t.total_energy_bands_mj.values)
         yield warning(
-            "total-energy-band",
+            "total-energy-highest-band" if highest else "total-energy-band",
             "laser.series",
             f"total energy {total:g} mJ falls in the higher-risk band {band.label}",
             "total energy bands for IOP rise and complications",
@@ -48,6 +53,7 @@ def energy(note: Note, ctx: Context) -> Iterator[Finding]:
         )
     glaucoma = note.before.risk_factors.glaucoma
     limit = t.glaucoma_total_energy_mj
+    # glaucoma None (not recorded) runs no glaucoma check: not_recorded() says so.
     if glaucoma in t.glaucoma_severities.values and above(total, limit):
         yield warning(
             "glaucoma-total-energy",
@@ -115,13 +121,105 @@ def iop(note: Note, ctx: Context) -> Iterator[Finding]:
             )
 
 
+def pressure_action(note: Note, ctx: Context) -> Iterator[Finding]:
+    """A reading that needs action (severe rise, or at or over the action level) stays open
+    until a later reading is below the action level or the discharge records a reason."""
+    t = ctx.policy.thresholds
+    path = pressure_pathway(note, t)
+    if path.open_reading is None:
+        return
+    i = path.open_reading
+    reading = note.result.iop_after[i]
+    treated = bool(note.result.pressure_treatment)
+    yield warning(
+        "iop-action-unresolved",
+        f"result.iop_after[{i}].value_mmhg",
+        f"IOP of {reading.value_mmhg:g} mmHg after the laser needs action"
+        + (", treatment is recorded" if treated else ", no treatment is recorded")
+        + ", and no later reading below the action level (or a discharge reason) is recorded",
+        f"a severe rise ({t.iop_rise_severe_mmhg.value:g} mmHg or more) or an IOP of "
+        f"{t.iop_high_mmhg.value:g} mmHg or more is treated and re-measured before the "
+        "patient leaves",
+        value=reading.value_mmhg,
+        allowed=f"a later reading < {t.iop_high_mmhg.value:g} mmHg with a rise < "
+        f"{t.iop_rise_severe_mmhg.value:g} mmHg, or result.discharge.reason",
+        source=f"{t.iop_rise_severe_mmhg.source}; {t.iop_high_mmhg.source}",
+    )
+
+
+# Risk factors whose absence the raised-risk review relies on, with how a finding names them.
+_RISK_ITEMS = (
+    ("high_myopia", "high myopia"),
+    ("uveitis", "uveitis"),
+    ("diabetic_macular_oedema", "diabetic macular oedema"),
+    ("retinal_detachment_this_eye", "retinal detachment in this eye"),
+    ("retinal_detachment_fellow_eye", "retinal detachment in the fellow eye"),
+    ("lattice_degeneration", "lattice degeneration"),
+    ("vitreous_loss_at_cataract_surgery", "vitreous loss at the cataract operation"),
+)
+
+
+def not_recorded(note: Note, ctx: Context) -> Iterator[Finding]:
+    """Items a check depends on that were not recorded: say which checks could not run.
+
+    Not recorded is never read as absent; a signed note also needs glaucoma status
+    (rules.limits.signing), so for a final note that error stands instead."""
+    factors = note.before.risk_factors
+    t = ctx.policy.thresholds
+    if factors.glaucoma is None and note.status != "final":
+        yield warning(
+            "glaucoma-not-recorded",
+            "before.risk_factors.glaucoma",
+            "glaucoma status not recorded: the glaucoma energy and prophylaxis checks were "
+            "not applied",
+            "glaucoma status decides the glaucoma total-energy and prophylaxis checks and the "
+            "next-day IOP check",
+            allowed="none | suspect | mild | moderate | advanced",
+            source=t.glaucoma_severities.source,
+        )
+    missing = [label for field, label in _RISK_ITEMS if getattr(factors, field) is None]
+    if missing:
+        yield warning(
+            "risk-factors-not-recorded",
+            "before.risk_factors",
+            "not recorded: " + ", ".join(missing) + "; the risk level and review interval "
+            "could not take them into account",
+            "retinal detachment and CME risk factors raise the level of follow-up",
+            allowed="true or false for each",
+            source="AAO Preferred Practice Pattern, Cataract in the Adult Eye (RD risk "
+            "factors); Steinberg et al., Am J Ophthalmol 1991;112:373",
+        )
+    for where, acuity in (
+        ("before.visual_acuity.correction", note.before.visual_acuity),
+        ("result.visual_acuity_after.correction", note.result.visual_acuity_after),
+    ):
+        if acuity is not None and acuity.correction is None:
+            yield information(
+                "acuity-correction-not-recorded",
+                where,
+                "the acuity's correction is not recorded: it is sent as visual acuity of "
+                "unstated correction, not as best-corrected acuity",
+                "best-corrected, habitual, uncorrected or pinhole",
+                source="capnote contract: not recorded is not assumed",
+            )
+    opening = note.result.opening
+    if opening is not None and note.before.iol.optic_diameter_mm is None:
+        yield information(
+            "optic-diameter-not-recorded",
+            "before.iol.optic_diameter_mm",
+            "the IOL optic diameter is not recorded: the opening was not compared with it",
+            "an opening should not exceed the IOL optic",
+            source="from memory: an opening should not exceed the IOL optic (commonly 6 mm)",
+        )
+
+
 def prophylaxis(note: Note, ctx: Context) -> Iterator[Finding]:
     """IOP prophylaxis: expected in glaucoma, noted when absent otherwise."""
     if note.plan.prophylaxis:
         return
     t = ctx.policy.thresholds
     glaucoma = note.before.risk_factors.glaucoma
-    if glaucoma in t.glaucoma_severities.values:
+    if glaucoma in t.glaucoma_severities.values:  # None (not recorded): not_recorded() says
         yield warning(
             "glaucoma-no-prophylaxis",
             "plan.prophylaxis",
@@ -181,7 +279,7 @@ def opening(note: Note, ctx: Context) -> Iterator[Finding]:
         axes.append(("vertical_mm", found.vertical_mm))
     for name, size in axes:
         where = f"result.opening.{name}"
-        if size > optic:
+        if optic is not None and size > optic:
             yield warning(
                 "opening-larger-than-optic",
                 where,
@@ -201,7 +299,7 @@ def opening(note: Note, ctx: Context) -> Iterator[Finding]:
                 allowed=f">= {t.opening_min_mm.value:g} mm",
                 source=t.opening_min_mm.source,
             )
-    if not found.centred:
+    if found.centred is False:  # None: not recorded, which is not "off centre"
         yield warning(
             "opening-off-centre",
             "result.opening.centred",
@@ -271,9 +369,11 @@ def safety_net(note: Note, ctx: Context) -> Iterator[Finding]:
 
 
 CHECKS: Iterable[Check] = (
+    not_recorded,
     energy,
     wavelength,
     iop,
+    pressure_action,
     prophylaxis,
     optics,
     opening,

@@ -244,6 +244,77 @@ def times(note: Note, ctx: Context) -> Iterator[Finding]:
         )
 
 
+def pathway_times(note: Note, ctx: Context) -> Iterator[Finding]:
+    """Pressure treatment and discharge come after the session started and not in the future;
+    a discharge comes after every treatment it closes."""
+    tolerance = timedelta(minutes=ctx.policy.limits.future_tolerance_minutes.value)
+    latest_allowed = (ctx.now + tolerance).astimezone(note.started_at.tzinfo)
+    stamps = [
+        (f"result.pressure_treatment[{i}].given_at", t.given_at)
+        for i, t in enumerate(note.result.pressure_treatment)
+    ]
+    discharge = note.result.discharge
+    if discharge is not None:
+        stamps.append(("result.discharge.at", discharge.at))
+    for where, moment in stamps:
+        if moment < note.started_at:
+            yield error(
+                "time-before-session",
+                where,
+                f"{where} is timed before the session started",
+                "treatment after the laser and discharge come after started_at",
+                value=moment.isoformat(),
+                allowed=f">= {note.started_at.isoformat()}",
+            )
+        elif moment > latest_allowed:
+            yield error(
+                "time-in-future",
+                where,
+                f"{where} lies in the future",
+                "what happened is recorded after it happened",
+                value=moment.isoformat(),
+                allowed=f"no later than the present time plus {tolerance.seconds // 60} min",
+                source=ctx.policy.limits.future_tolerance_minutes.source,
+            )
+    if discharge is not None:
+        for i, t in enumerate(note.result.pressure_treatment):
+            if t.given_at > discharge.at:
+                yield error(
+                    "treatment-after-discharge",
+                    f"result.pressure_treatment[{i}].given_at",
+                    "a treatment is timed after the patient was discharged",
+                    "treatment in clinic comes before discharge",
+                    value=t.given_at.isoformat(),
+                    allowed=f"<= {discharge.at.isoformat()}",
+                )
+    for i, t in enumerate(note.result.pressure_treatment):
+        if not t.dose > 0:
+            yield error(
+                "out-of-range",
+                f"result.pressure_treatment[{i}].dose",
+                f"a dose of {t.dose:g} {t.dose_unit} is not a dose",
+                "a dose given must be more than 0",
+                value=t.dose,
+                allowed="> 0",
+                issue_type="value",
+            )
+
+
+def signing(note: Note, ctx: Context) -> Iterator[Finding]:
+    """What a signed (final) note must have recorded; a draft may leave these open."""
+    if note.status == "final" and note.before.risk_factors.glaucoma is None:
+        yield error(
+            "glaucoma-status-required-to-sign",
+            "before.risk_factors.glaucoma",
+            "glaucoma status is not recorded: a note cannot be signed without it",
+            "a final note records glaucoma status (none, suspect, mild, moderate or advanced); "
+            "the glaucoma energy and prophylaxis checks depend on it",
+            allowed="none | suspect | mild | moderate | advanced",
+            source=ctx.policy.thresholds.glaucoma_severities.source,
+            issue_type="required",
+        )
+
+
 def totals(note: Note, ctx: Context) -> Iterator[Finding]:
     """The laser's own counter must agree with the series within the tolerance."""
     reported = note.laser.reported_total_energy_mj
@@ -318,4 +389,12 @@ def completeness(note: Note, ctx: Context) -> Iterator[Finding]:
         )
 
 
-CHECKS: Iterable[Check] = (ranges, acuities, times, totals, completeness)
+CHECKS: Iterable[Check] = (
+    ranges,
+    acuities,
+    times,
+    pathway_times,
+    totals,
+    completeness,
+    signing,
+)
