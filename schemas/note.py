@@ -50,8 +50,22 @@ FocusMethod = Literal["posterior-offset", "manual-behind-capsule"]
 OpeningPattern = Literal["cruciate", "circular", "other"]
 Outcome = Literal["complete", "partial", "failed"]
 ComplicationKind = Literal[
-    "iol-pit", "iris-bleeding", "iop-spike", "vitreous-in-anterior-chamber", "other"
+    "iol-pit",
+    "iris-bleeding",
+    "bleeding",
+    "iop-spike",
+    "anterior-uveitis",
+    "cystoid-macular-oedema",
+    "retinal-detachment",
+    "vitreous-in-anterior-chamber",
+    "iol-decentration",
+    "iol-dislocation",
+    "other",
 ]
+Opacification = Literal["fibrous", "pearl", "mixed"]
+Symptom = Literal["reduced-vision", "glare", "reduced-contrast", "monocular-diplopia", "other"]
+LaserMode = Literal["single-pulse", "burst"]
+ConsentKind = Literal["written", "verbal"]
 DropTiming = Literal["before", "after", "both"]
 NoteStatus = Literal["draft", "final"]
 
@@ -86,10 +100,27 @@ class Location(Contract):
 
 
 class Consent(Contract):
-    """Whether consent was given, and when it was recorded."""
+    """Whether consent was given, how, and when it was recorded."""
 
     given: bool
+    kind: ConsentKind | None = None
     recorded_at: AwareDatetime | None = None
+
+
+class PatientDetails(Contract):
+    """Who the patient is, for the print only when the sender gives it; never in FHIR output
+    (the receiving record holds the patient) and never shown in findings."""
+
+    name: Text
+    birth_date: date | None = None
+
+
+class Indication(Contract):
+    """Why the laser: the kind of opacification and what troubles the patient."""
+
+    opacification: Opacification | None = None
+    symptoms: Annotated[list[Symptom], Field(max_length=5)] = []
+    symptoms_text: Text | None = None
 
 
 class VisualAcuity(Contract):
@@ -156,6 +187,8 @@ class BeforeLaser(Contract):
     iol: Iol = Iol()
     cataract_surgery_date: date | None = None
     risk_factors: RiskFactors = RiskFactors()
+    topical_anaesthetic: Text | None = None
+    dilating_drops: Annotated[list[Text], Field(max_length=5)] = []
 
 
 class Series(Contract):
@@ -173,9 +206,16 @@ class Focus(Contract):
 
 
 class ContactLens(Contract):
-    """Whether a capsulotomy contact lens was used, and its cone angle if known."""
+    """Whether a capsulotomy contact lens was used, which one, and its optics if known.
+
+    magnification is the lens's laser-spot magnification factor from the site's lens list:
+    it steepens the focal cone, so the idealised spot and fluence follow it when the cone
+    angle itself is not given.
+    """
 
     used: bool
+    lens: Text | None = None
+    magnification: float | None = None
     cone_angle_deg: float | None = None
 
 
@@ -183,6 +223,8 @@ class LaserSettings(Contract):
     """The laser and how it was used."""
 
     wavelength_nm: float = 1064.0
+    mode: LaserMode | None = None
+    pulses_per_burst: Count | None = None
     series: Annotated[list[Series], Field(min_length=1, max_length=50)]
     focus: Focus | None = None
     pattern: OpeningPattern
@@ -288,13 +330,16 @@ class Note(Contract):
 
     note_id: Identifier
     patient: Identifier
+    patient_details: PatientDetails | None = None
     encounter: Identifier | None = None
     performer: Clinician
+    assistant: Text | None = None
     location: Location
     started_at: AwareDatetime
     ended_at: AwareDatetime | None = None
     consent: Consent
     eye: Eye
+    indication: Indication | None = None
     before: BeforeLaser
     laser: LaserSettings
     result: Result

@@ -297,6 +297,12 @@ def cone_angle(note: Note, thresholds: Thresholds) -> tuple[float, bool]:
     lens = note.laser.contact_lens
     if lens.cone_angle_deg is not None:
         return lens.cone_angle_deg, False
+    if lens.used and lens.magnification is not None:
+        # A lens with spot magnification M multiplies the numerical aperture of the bare
+        # beam by M (from memory: spot diameter falls by 1/M, fluence rises by M^2).
+        bare = math.radians(thresholds.cone_angle_without_lens_deg.value / 2.0)
+        na = min(lens.magnification * math.sin(bare), 0.99)
+        return round(math.degrees(2.0 * math.asin(na)), 1), True
     default = (
         thresholds.cone_angle_with_lens_deg if lens.used else thresholds.cone_angle_without_lens_deg
     )

@@ -23,7 +23,7 @@ class Severity(StrEnum):
 IssueType = str
 
 # Places whose values identify a person: a finding there says where, never what.
-_IDENTIFYING_PREFIXES = ("patient", "encounter")
+_IDENTIFYING_PREFIXES = ("patient", "patient_details", "encounter")
 WITHHELD = "(withheld: identifying data)"
 
 

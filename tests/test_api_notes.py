@@ -311,7 +311,7 @@ def test_a_retried_void_answers_the_void(api: Api) -> None:
 def test_an_amendment_withdraws_what_it_drops(api: Api) -> None:
     note = json.loads((EXAMPLES / "notes" / "left-glaucoma-no-prophylaxis.json").read_text())
     key = post(api, note).json()["id"]
-    note["before"]["risk_factors"] = {}
+    note["before"]["risk_factors"]["glaucoma"] = "none"
     note["plan"]["take_home"] = []
     r = amend(api, key, note, reason="glaucoma was entered on the wrong patient")
     assert r.status_code == 200

@@ -70,9 +70,7 @@ def uncomplicated() -> dict[str, Any]:
         "result": {
             "outcome": "complete",
             "opening": {"horizontal_mm": 4.0},
-            "iop_after": [
-                {"value_mmhg": 19, "method": "applanation", "measured_at": at("11:10")}
-            ],
+            "iop_after": [{"value_mmhg": 19, "method": "applanation", "measured_at": at("11:10")}],
         },
         "plan": {"rd_warning_given": True},
         "status": "final",
@@ -118,9 +116,7 @@ def codes_of(a: Assessment, severity: str) -> set[str]:
 
 def resources(a: Assessment, kind: str) -> list[dict[str, Any]]:
     assert a.bundle is not None
-    return [
-        e["resource"] for e in a.bundle["entry"] if e["resource"]["resourceType"] == kind
-    ]
+    return [e["resource"] for e in a.bundle["entry"] if e["resource"]["resourceType"] == kind]
 
 
 def test_uncomplicated_session_has_no_warnings_and_a_routine_review(assessor: Assessor) -> None:
@@ -158,9 +154,7 @@ def test_acuity_without_correction_is_not_sent_as_best_corrected(assessor: Asses
     text = json.dumps(a.bundle)
     assert "79880-1" not in text
     assert "correction not recorded" in text
-    assert "acuity-correction-not-recorded" in codes_of(a, "information") | codes_of(
-        a, "warning"
-    )
+    assert "acuity-correction-not-recorded" in codes_of(a, "information") | codes_of(a, "warning")
     note["before"]["visual_acuity"]["correction"] = "best-corrected"
     assert "79880-1" in json.dumps(run(assessor, note).bundle)
 
@@ -197,7 +191,8 @@ def test_spike_pathway_with_glaucoma(assessor: Assessor) -> None:
     # The treatment answers the 30 mmHg reading.
     reading = treatment[0]["reasonReference"][0]["reference"]
     observed = {
-        e["fullUrl"]: e["resource"] for e in a.bundle["entry"]  # type: ignore[index]
+        e["fullUrl"]: e["resource"]
+        for e in a.bundle["entry"]  # type: ignore[index]
     }
     assert observed[reading]["valueQuantity"]["value"] == 30
     (procedure,) = resources(a, "Procedure")
@@ -251,3 +246,34 @@ def test_not_centred_only_when_recorded(assessor: Assessor) -> None:
     assert "opening-off-centre" not in codes_of(run(assessor, note), "warning")
     note["result"]["opening"]["centred"] = False
     assert "opening-off-centre" in codes_of(run(assessor, note), "warning")
+
+
+def test_session_details_are_recorded_only_as_entered(assessor: Assessor) -> None:
+    note = uncomplicated()
+    note["indication"] = {"opacification": "pearl", "symptoms": ["glare", "reduced-vision"]}
+    note["laser"]["mode"] = "burst"
+    note["laser"]["pulses_per_burst"] = 2
+    note["laser"]["contact_lens"] = {"used": True, "lens": "site lens A", "magnification": 1.5}
+    note["before"]["topical_anaesthetic"] = "proxymetacaine 0.5%"
+    note["assistant"] = "Nurse Test"
+    note["consent"]["kind"] = "written"
+    note["result"]["complications"] = [{"kind": "anterior-uveitis"}]
+    a = run(assessor, note)
+    assert a.accepted
+    (procedure,) = resources(a, "Procedure")
+    reasons = [c.get("text") or c["coding"][0]["code"] for c in procedure["reasonCode"]]
+    assert "opacification-pearl" in reasons and "symptom: glare" in reasons
+    text = procedure["note"][0]["text"]
+    assert "2 pulses per burst" in text and "Nurse Test" in text and "written" in text
+    assert procedure["complication"][0]["coding"][0]["code"] == "anterior-uveitis"
+    # Magnification 1.5 on the bare 16-degree cone (common practice): 2 asin(1.5 sin 8 deg)
+    # = 24.1 degrees, close to the trade's 24 degrees with a lens.
+    assert a.derived is not None
+    assert a.derived.focal_spot.cone_angle_deg == pytest.approx(24.1, abs=0.1)
+
+
+def test_burst_mode_needs_its_count(assessor: Assessor) -> None:
+    note = uncomplicated()
+    note["laser"]["mode"] = "burst"
+    a = run(assessor, note)
+    assert ("missing-field", "laser.pulses_per_burst") in {(f.code, f.location) for f in a.findings}

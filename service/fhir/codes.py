@@ -105,6 +105,17 @@ CONCEPTS: Final[dict[str, tuple[str, str]]] = {
         "Vitreous came forward through the opening.",
     ),
     "other-complication": ("Other complication", "A complication described in text."),
+    "bleeding": ("Bleeding", "Bleeding seen during or after the laser."),
+    "anterior-uveitis": ("Anterior uveitis", "Inflammation in the anterior chamber."),
+    "cystoid-macular-oedema": ("Cystoid macular oedema", "Cystoid macular oedema."),
+    "retinal-detachment": ("Retinal detachment", "Retinal detachment."),
+    "iol-decentration": ("IOL decentration", "The IOL moved off centre."),
+    "iol-dislocation": ("IOL dislocation", "The IOL moved out of its place."),
+    "opacification-fibrous": ("Fibrous opacification", "Fibrous posterior capsule opacification."),
+    "opacification-pearl": ("Pearl-type opacification", "Pearl-type (Elschnig) opacification."),
+    "opacification-mixed": ("Mixed opacification", "Fibrous and pearl-type opacification."),
+    "laser-single-pulse": ("Single-pulse mode", "One pulse per shot."),
+    "laser-burst": ("Burst mode", "Several pulses per shot; a component gives the count."),
     "opening-optic-diameter-ratio": (
         "Opening to optic diameter ratio",
         "Widest opening diameter divided by the IOL optic diameter (a ratio of diameters, "

@@ -33,6 +33,50 @@ def complication_concept(c: Complication) -> dict[str, Any]:
     return concept(own(code), text=c.text or codes.CONCEPTS[code][0])
 
 
+_SYMPTOM = {
+    "reduced-vision": "reduced vision",
+    "glare": "glare",
+    "reduced-contrast": "reduced contrast",
+    "monocular-diplopia": "monocular double vision",
+}
+
+
+def _indication(note: Note) -> list[dict[str, Any]]:
+    """The kind of opacification and the symptoms, each only as recorded."""
+    found = note.indication
+    if found is None:
+        return []
+    out = []
+    if found.opacification is not None:
+        out.append(concept(own(f"opacification-{found.opacification}")))
+    for symptom in found.symptoms:
+        if symptom != "other":
+            out.append(concept(text=f"symptom: {_SYMPTOM[symptom]}"))
+    if found.symptoms_text is not None:
+        out.append(concept(text=f"symptom: {found.symptoms_text}"))
+    return out
+
+
+def _session_notes(note: Note) -> list[str]:
+    """What was recorded about how the session was run, in words; nothing not entered."""
+    parts: list[str] = []
+    laser = note.laser
+    if laser.mode == "burst":
+        count = f", {laser.pulses_per_burst} pulses per burst" if laser.pulses_per_burst else ""
+        parts.append(f"Burst mode{count}")
+    elif laser.mode == "single-pulse":
+        parts.append("Single-pulse mode")
+    if note.before.topical_anaesthetic:
+        parts.append(f"topical anaesthetic: {note.before.topical_anaesthetic}")
+    if note.before.dilating_drops:
+        parts.append("dilating drops: " + ", ".join(note.before.dilating_drops))
+    if note.assistant:
+        parts.append(f"assistant present: {note.assistant}")
+    if note.consent.kind:
+        parts.append(f"consent: {note.consent.kind}")
+    return ["; ".join(parts) + "."] if parts else []
+
+
 def _pathway_notes(note: Note, derived: Derived) -> list[str]:
     """The post-laser pressure pathway in words: what is still open, and the discharge."""
     out: list[str] = []
@@ -92,8 +136,10 @@ def procedure(ctx: Context, derived: Derived, due: list[DueItem]) -> Entry:
     if note.ended_at is not None:
         performed["end"] = when(note.ended_at)
     used = [concept(own("nd-yag-laser"))]
-    if note.laser.contact_lens.used:
-        used.append(concept(own("capsulotomy-contact-lens")))
+    lens = note.laser.contact_lens
+    if lens.used:
+        named = f"Capsulotomy contact lens ({lens.lens})" if lens.lens else None
+        used.append(concept(own("capsulotomy-contact-lens"), text=named))
     resource: dict[str, Any] = {
         "resourceType": "Procedure",
         "text": _narrative(note, derived, due),
@@ -122,6 +168,7 @@ def procedure(ctx: Context, derived: Derived, due: list[DueItem]) -> Entry:
             text="Posterior capsule opacification",
         )
     ]
+    resource["reasonCode"] += _indication(note)
     resource["bodySite"] = [
         concept(
             coding(SNOMED, codes.EYE_STRUCTURE[note.eye], codes.EYE_DISPLAY[note.eye]),
@@ -138,7 +185,7 @@ def procedure(ctx: Context, derived: Derived, due: list[DueItem]) -> Entry:
             concept(text=f"{item.title}: {item.target.date().isoformat()}") for item in due
         ]
     resource["usedCode"] = used
-    notes = _pathway_notes(note, derived)
+    notes = _session_notes(note) + _pathway_notes(note, derived)
     if notes:
         resource["note"] = [{"text": text} for text in notes]
     key = ctx.keys.key(PROCEDURE_ROLE)

@@ -379,6 +379,36 @@ def completeness(note: Note, ctx: Context) -> Iterator[Finding]:
                 "positions go with kind 'iol-pit'",
                 issue_type="invalid",
             )
+    laser = note.laser
+    if laser.mode == "burst" and (laser.pulses_per_burst is None or laser.pulses_per_burst < 2):
+        yield error(
+            "missing-field",
+            "laser.pulses_per_burst",
+            "burst mode needs the number of pulses per burst (2 or more)",
+            "mode 'burst' requires pulses_per_burst >= 2",
+            value=laser.pulses_per_burst,
+            allowed=">= 2",
+            issue_type="required",
+        )
+    if laser.mode != "burst" and laser.pulses_per_burst is not None:
+        yield error(
+            "field-not-allowed",
+            "laser.pulses_per_burst",
+            "pulses per burst go with burst mode only",
+            "pulses_per_burst requires mode 'burst'",
+            issue_type="invalid",
+        )
+    lens = laser.contact_lens
+    if lens.magnification is not None and not 1.0 <= lens.magnification <= 3.0:
+        yield error(
+            "out-of-range",
+            "laser.contact_lens.magnification",
+            f"a lens magnification of {lens.magnification:g} is outside 1 to 3",
+            "capsulotomy contact lenses magnify the laser spot about 1.2 to 2 times (from memory)",
+            value=lens.magnification,
+            allowed="1 to 3",
+            issue_type="value",
+        )
     if note.result.outcome != "failed" and note.result.opening is None:
         yield error(
             "missing-field",
