@@ -72,7 +72,8 @@ def test_defaults_come_from_the_policy_without_a_token(client: TestClient) -> No
     assert body["review_days_routine"] == 28  # [schedule.review_routine] 28 d
     assert body["review_days_raised"] == 7  # [schedule.review_raised] 7 d
     assert body["wavelength_nm"] == 1064  # the Nd:YAG wavelength (Steinert, AAO)
-    assert body["iol_optic_mm"] == 6.0  # schemas/note.py Iol default
+    # Not recorded until entered: the contract assumes no optic diameter (schemas/note.py Iol).
+    assert body["iol_optic_mm"] is None
     assert "not a certified medical device" in body["caution"]
 
 
