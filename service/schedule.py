@@ -1,32 +1,43 @@
 """Follow-up due dates: policy windows and the clinic calendar in, due items out.
 
 Offsets in minutes and hours are elapsed time (counted in UTC, so a clock change cannot
-stretch a 60-minute recheck); offsets in days are calendar days in the clinic's zone. A
-target that falls when the clinic is shut moves to the next open time inside its window,
-else to the last open time before it; when neither exists the item keeps its target and
-is flagged for a person to book by hand.
+stretch a 60-minute recheck); offsets in days are calendar days in the clinic's zone.
+
+The same-visit IOP recheck is part of the visit: the laser was done, so the clinic is open,
+and the calendar neither moves it nor flags it. Every other target that falls when the
+clinic is shut moves forward to the next open time inside its window, never earlier; when
+there is none the item keeps its target and is flagged for a person to book by hand. A timed
+window whose earliest time falls outside clinic hours starts at the next opening time when
+that is still no later than the target (``earliest_from`` keeps the policy's earliest);
+otherwise ``earliest_outside_hours`` says so.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
 from datetime import date, datetime, timedelta
 from typing import Literal
 
-from schemas.note import Note
+from schemas.note import IopReading, Note, TimedIopReading
 from service.clinic_calendar import ClinicCalendar
-from service.derive import Derived, session_reference
-from service.policy.model import Policy, Window
+from service.derive import Derived, reading_needs_action, session_reference
+from service.policy.model import Policy, Thresholds, Window
 
 DueKind = Literal["iop-recheck", "next-day-iop", "review"]
+MovedDirection = Literal["later", "earlier"]
 
 _TITLES: dict[DueKind, str] = {
     "iop-recheck": "IOP recheck after the laser",
     "next-day-iop": "Next-day IOP check",
     "review": "Review visit",
 }
-# How far a day-granular search may look; windows are weeks at most, this is a safety stop.
-_MAX_DAYS_SEARCHED = 400
+# Flags end with the words a person acts on; an item that is flagged is never also done.
+FLAG_WHOLE_WINDOW = "the clinic is shut for the whole window: book this by hand"
+FLAG_AFTER_TARGET = (
+    "the clinic is shut from the target to the end of the window, and a target is never "
+    "moved earlier: book this by hand"
+)
 
 
 @dataclass(frozen=True, slots=True)
@@ -37,9 +48,27 @@ class Closure:
     reason: str
 
 
+def _show_moment(all_day: bool) -> Callable[[datetime], str]:
+    fmt = "%a %d %b %Y" if all_day else "%a %d %b %Y %H:%M %Z"
+    return lambda moment: moment.strftime(fmt)
+
+
+def _show_day(day: date) -> str:
+    return day.strftime("%a %d %b %Y")
+
+
 @dataclass(frozen=True, slots=True)
 class DueItem:
-    """One follow-up to book: its window, target and why it is due."""
+    """One follow-up to book: its window, target and why it is due.
+
+    moved_from: the target before the calendar moved it (None: not moved); moved_direction
+    says whether the target now lies later or earlier than that. passed_over: the closed
+    days between the two. flag: a sentence for a person when no open time could be found.
+    done_by_reading: the index (in note.result.iop_after) of the reading that did the
+    recheck. earliest_from: the policy's earliest time when the window was made to start at
+    opening time; earliest_outside_hours: the earliest time is outside clinic hours and was
+    left as it is, because the clinic does not open again before the target.
+    """
 
     kind: DueKind
     title: str
@@ -53,6 +82,52 @@ class DueItem:
     passed_over: tuple[Closure, ...] = ()
     flag: str | None = None
     done_by_reading: int | None = None
+    moved_direction: MovedDirection | None = None
+    earliest_from: datetime | None = None
+    earliest_outside_hours: bool = False
+
+    def __post_init__(self) -> None:
+        # "book this by hand" and "done" together would contradict each other.
+        if self.flag is not None and self.done_by_reading is not None:
+            raise ValueError("a due item is either flagged for booking or done, not both")
+        if (self.moved_from is None) != (self.moved_direction is None):
+            raise ValueError("moved_from and moved_direction go together")
+
+    def moved_text(
+        self,
+        show: Callable[[datetime], str] | None = None,
+        show_day: Callable[[date], str] = _show_day,
+    ) -> str | None:
+        """The move in words, e.g. 'target moved later, from Fri 25 Dec 2026, past ...'.
+
+        None when the target did not move. show formats a moment (default: the date for
+        whole-day items, else date, time and zone); show_day formats a passed-over day.
+        """
+        if self.moved_from is None or self.moved_direction is None:
+            return None
+        fmt = show or _show_moment(self.all_day)
+        text = f"target moved {self.moved_direction}, from {fmt(self.moved_from)}"
+        if self.passed_over:
+            days = ", ".join(f"{show_day(c.day)} ({c.reason})" for c in self.passed_over)
+            text += f", past {days}"
+        elif self.moved_direction == "later":
+            text += ", which is outside clinic hours"
+        return text
+
+    def earliest_text(self, show: Callable[[datetime], str] | None = None) -> str | None:
+        """Why the window starts when it does, when clinic hours changed or bear on it."""
+        fmt = show or _show_moment(self.all_day)
+        if self.earliest_from is not None:
+            return (
+                f"window starts at opening time, {fmt(self.earliest)}; the policy's earliest "
+                f"time, {fmt(self.earliest_from)}, is outside clinic hours"
+            )
+        if self.earliest_outside_hours:
+            return (
+                f"the window's earliest time, {fmt(self.earliest)}, is outside clinic hours "
+                "and the clinic does not open again before the target"
+            )
+        return None
 
 
 def _shift(window: Window, target: int | None) -> tuple[int, int, int]:
@@ -77,7 +152,26 @@ def _open_at(calendar: ClinicCalendar, moment: datetime) -> bool:
     ) <= moment < calendar.closes_at(day)
 
 
-def _timed_item(
+def _first_open(
+    calendar: ClinicCalendar, moment: datetime, until: datetime
+) -> tuple[datetime | None, list[Closure]]:
+    """The first open moment at or after moment and not after until (forward only), and
+    the closed days passed over on the way."""
+    passed: list[Closure] = []
+    day = moment.date()
+    while day <= until.date():
+        shut = calendar.closed_because(day)
+        if shut is not None:
+            passed.append(Closure(day, shut))
+        else:
+            start = max(calendar.opens_at(day), moment)
+            if start < calendar.closes_at(day):
+                return (start if start <= until else None), passed
+        day += timedelta(days=1)
+    return None, passed
+
+
+def _timed_window(
     kind: DueKind,
     window: Window,
     override: int | None,
@@ -85,49 +179,37 @@ def _timed_item(
     calendar: ClinicCalendar,
     reasons: tuple[str, ...],
 ) -> DueItem:
-    """A due item measured in elapsed minutes or hours."""
+    """A window in elapsed minutes or hours, before the calendar has a say."""
     low, mid, high = _shift(window, override)
     zone = calendar.zone
-    earliest = (reference + _delta(window.unit, low)).astimezone(zone)
-    target = (reference + _delta(window.unit, mid)).astimezone(zone)
-    latest = (reference + _delta(window.unit, high)).astimezone(zone)
-    item = DueItem(kind, _TITLES[kind], earliest, target, latest, False, reasons, window.source)
-    if _open_at(calendar, target):
-        return item
-    passed: list[Closure] = []
-    day = target.date()
-    forward: datetime | None = None
-    while day <= latest.date():
-        shut = calendar.closed_because(day)
-        if shut is not None:
-            passed.append(Closure(day, shut))
+    return DueItem(
+        kind,
+        _TITLES[kind],
+        (reference + _delta(window.unit, low)).astimezone(zone),
+        (reference + _delta(window.unit, mid)).astimezone(zone),
+        (reference + _delta(window.unit, high)).astimezone(zone),
+        False,
+        reasons,
+        window.source,
+    )
+
+
+def _on_calendar(item: DueItem, calendar: ClinicCalendar) -> DueItem:
+    """A timed item fitted to clinic hours: the target forward only, the earliest clamped."""
+    fitted = item
+    if not _open_at(calendar, item.target):
+        to, passed = _first_open(calendar, item.target, item.latest)
+        if to is not None:
+            fitted = _moved(item, to, passed)
         else:
-            start = max(calendar.opens_at(day), target)
-            if start < calendar.closes_at(day):
-                forward = start if start <= latest else None
-                break
-        day += timedelta(days=1)
-    if forward is not None:
-        return _moved(item, forward, passed)
-    backward = _last_open_before(calendar, target, earliest)
-    if backward is not None:
-        return _moved(item, backward, [])
-    return _flagged(item)
-
-
-def _last_open_before(
-    calendar: ClinicCalendar, target: datetime, earliest: datetime
-) -> datetime | None:
-    """The latest open moment at or after earliest and before target, if any."""
-    day = target.date()
-    while day >= earliest.date():
-        if calendar.closed_because(day) is None:
-            # One minute before closing: the last time a check can still be done that day.
-            last = min(calendar.closes_at(day) - timedelta(minutes=1), target)
-            if last >= max(calendar.opens_at(day), earliest):
-                return last
-        day -= timedelta(days=1)
-    return None
+            anywhere, _ = _first_open(calendar, item.earliest, item.latest)
+            fitted = _flagged(item, whole_window=anywhere is None)
+    if _open_at(calendar, fitted.earliest):
+        return fitted
+    opening, _ = _first_open(calendar, fitted.earliest, fitted.target)
+    if opening is not None:
+        return replace(fitted, earliest=opening, earliest_from=fitted.earliest)
+    return replace(fitted, earliest_outside_hours=True)
 
 
 def _day_item(
@@ -154,41 +236,72 @@ def _day_item(
     )
     passed: list[Closure] = []
     day = wanted
-    while day <= last and len(passed) < _MAX_DAYS_SEARCHED:
+    while day <= last:
         shut = calendar.closed_because(day)
         if shut is None:
             return item if day == wanted else _moved(item, calendar.opens_at(day), passed)
         passed.append(Closure(day, shut))
         day += timedelta(days=1)
-    day = wanted - timedelta(days=1)
-    while day >= first:
-        if calendar.closed_because(day) is None:
-            return _moved(item, calendar.opens_at(day), passed)
-        day -= timedelta(days=1)
-    return _flagged(item)
+    # Forward only: a review is never brought before its target, even to an open day inside
+    # the window. A site setting to allow that would belong in the policy files, which this
+    # module does not own; until then a person books it.
+    open_before = any(
+        calendar.closed_because(first + timedelta(days=n)) is None
+        for n in range((wanted - first).days)
+    )
+    return _flagged(item, whole_window=not open_before)
 
 
 def _moved(item: DueItem, to: datetime, passed: list[Closure]) -> DueItem:
-    return replace(item, target=to, moved_from=item.target, passed_over=tuple(passed))
+    direction: MovedDirection = "later" if to > item.target else "earlier"
+    return replace(
+        item,
+        target=to,
+        moved_from=item.target,
+        passed_over=tuple(passed),
+        moved_direction=direction,
+    )
 
 
-def _flagged(item: DueItem) -> DueItem:
-    return replace(item, flag="the clinic is shut for the whole window: book this by hand")
+def _flagged(item: DueItem, *, whole_window: bool) -> DueItem:
+    return replace(item, flag=FLAG_WHOLE_WINDOW if whole_window else FLAG_AFTER_TARGET)
 
 
-def _done_by(note: Note, item: DueItem) -> DueItem:
-    """Mark a same-day recheck as done when a post-laser reading already lies in its window."""
-    for i, reading in enumerate(note.result.iop_after):
-        if item.earliest <= reading.measured_at <= item.latest:
-            return replace(item, done_by_reading=i)
-    return item
+def recheck_done_by(
+    before: IopReading,
+    readings: Sequence[TimedIopReading],
+    item: DueItem,
+    thresholds: Thresholds,
+) -> int | None:
+    """The reading that did the same-visit recheck, or None.
+
+    It must lie inside the recheck window and not itself need action (reading_needs_action),
+    and no later reading may need action: a reading that needed action has to be answered by
+    a later one that does not. Of those, the earliest in time; readings may be in any order.
+    """
+    order = sorted(range(len(readings)), key=lambda i: (readings[i].measured_at, i))
+    needing = [i for i in order if reading_needs_action(before, readings[i], thresholds)]
+    last_action = readings[needing[-1]].measured_at if needing else None
+    for i in order:
+        at = readings[i].measured_at
+        if not item.earliest <= at <= item.latest:
+            continue
+        if last_action is not None and at <= last_action:
+            continue
+        if not reading_needs_action(before, readings[i], thresholds):
+            return i
+    return None
 
 
 def next_day_reasons(note: Note, derived: Derived, policy: Policy) -> tuple[str, ...]:
-    """Why a next-day IOP check is due; empty when it is not."""
+    """Why a next-day IOP check is due; empty when it is not.
+
+    A glaucoma severity that is not recorded (None) is not read as "none": it simply gives
+    no reason here (the rules say the item is missing).
+    """
     reasons: list[str] = []
     glaucoma = note.before.risk_factors.glaucoma
-    if glaucoma in policy.schedule.next_day_iop.glaucoma_severities:
+    if glaucoma is not None and glaucoma in policy.schedule.next_day_iop.glaucoma_severities:
         reasons.append(f"glaucoma ({glaucoma})")
     if derived.iop.spike_grade == "severe":
         reasons.append("severe IOP rise after the laser")
@@ -204,7 +317,8 @@ def schedule(
     """Every follow-up the note calls for, in time order."""
     windows = policy.schedule
     reference = session_reference(note)
-    recheck = _timed_item(
+    # Part of the visit: the calendar does not move or flag it (the clinic is open).
+    recheck = _timed_window(
         "iop-recheck",
         windows.iop_recheck,
         note.plan.iop_recheck_minutes,
@@ -212,14 +326,14 @@ def schedule(
         calendar,
         ("IOP peaks within hours of the laser",),
     )
-    items = [_done_by(note, recheck)]
+    done = recheck_done_by(note.before.iop, note.result.iop_after, recheck, policy.thresholds)
+    items = [replace(recheck, done_by_reading=done)]
     why_next_day = next_day_reasons(note, derived, policy)
     if why_next_day:
-        items.append(
-            _timed_item(
-                "next-day-iop", windows.next_day_iop, None, reference, calendar, why_next_day
-            )
+        next_day = _timed_window(
+            "next-day-iop", windows.next_day_iop, None, reference, calendar, why_next_day
         )
+        items.append(_on_calendar(next_day, calendar))
     raised = derived.risk.level == "raised"
     review_window = windows.review_raised if raised else windows.review_routine
     review_reasons = (

@@ -7,12 +7,14 @@ from datetime import UTC, date, datetime, time, timedelta
 from typing import Any
 from zoneinfo import ZoneInfo
 
+import pytest
+
 from schemas.note import Note
 from service.clinic_calendar import PolicyCalendar
 from service.derive import derive
 from service.policy import Policy
 from service.policy.model import WEEKDAYS
-from service.schedule import DueItem, schedule
+from service.schedule import FLAG_AFTER_TARGET, FLAG_WHOLE_WINDOW, DueItem, schedule
 from tests.conftest import routine
 
 LONDON = ZoneInfo("Europe/London")
@@ -58,6 +60,12 @@ def test_review_on_christmas_moves_past_boxing_day_substitute(policy: Policy) ->
     ]
     assert review.passed_over[0].reason == "Christmas Day"
     assert "Boxing Day" in review.passed_over[3].reason
+    assert review.moved_direction == "later"
+    assert review.moved_text() == (
+        "target moved later, from Fri 25 Dec 2026, past Fri 25 Dec 2026 (Christmas Day), "
+        "Sat 26 Dec 2026 (Boxing Day), Sun 27 Dec 2026 (not a working day), "
+        f"Mon 28 Dec 2026 ({review.passed_over[3].reason})"
+    )
 
 
 def test_recheck_across_the_spring_clock_change_is_60_elapsed_minutes(policy: Policy) -> None:
@@ -85,19 +93,46 @@ def test_review_in_days_keeps_the_wall_clock_across_a_clock_change(policy: Polic
     assert review.target.utcoffset() == timedelta(hours=1)
 
 
-def test_recheck_before_opening_moves_to_opening_time(policy: Policy) -> None:
-    # Fri 27 Nov 2026, session ends 07:00: 60 min is 08:00, the clinic opens 08:30 (policy).
+def test_recheck_before_opening_is_part_of_the_visit(policy: Policy) -> None:
+    # Fri 27 Nov 2026, session ends 07:00: the 60-min recheck (Simsek et al. 1998, as in
+    # default.toml) is at 08:00, before the demo clinic's 08:30 opening. The laser was done,
+    # so the clinic is open: the recheck is not moved.
     recheck = items(note_ending("2026-11-27T07:00:00+00:00"), policy)["iop-recheck"]
-    assert recheck.target == datetime(2026, 11, 27, 8, 30, tzinfo=LONDON)
-    assert recheck.moved_from == datetime(2026, 11, 27, 8, 0, tzinfo=LONDON)
+    assert recheck.target == datetime(2026, 11, 27, 8, 0, tzinfo=LONDON)
+    assert recheck.moved_from is None
+    assert recheck.moved_direction is None
     assert recheck.flag is None
 
 
-def test_recheck_after_closing_with_no_open_time_in_window_is_flagged(policy: Policy) -> None:
-    # Ends 17:10, recheck window 17:40-20:10, clinic shuts 17:30: a person must book it.
+def test_recheck_after_closing_is_neither_moved_nor_flagged(policy: Policy) -> None:
+    # Ends 17:10, recheck window 17:40-20:10 (30/60/180 min), after the 17:30 closing.
     recheck = items(note_ending("2026-11-27T17:10:00+00:00"), policy)["iop-recheck"]
-    assert recheck.flag is not None
+    assert recheck.flag is None
+    assert recheck.moved_from is None
     assert recheck.target == datetime(2026, 11, 27, 18, 10, tzinfo=LONDON)
+    assert recheck.earliest == datetime(2026, 11, 27, 17, 40, tzinfo=LONDON)
+    assert recheck.latest == datetime(2026, 11, 27, 20, 10, tzinfo=LONDON)
+
+
+@pytest.mark.parametrize(
+    ("end", "target"),
+    [
+        # Sat 28 Nov 2026: not a working day in the demo policy (Mon-Fri).
+        ("2026-11-28T10:15:00+00:00", datetime(2026, 11, 28, 11, 15, tzinfo=LONDON)),
+        # Fri 25 Dec 2026: Christmas Day, an England bank holiday (gov.uk; holidays package).
+        ("2026-12-25T10:15:00+00:00", datetime(2026, 12, 25, 11, 15, tzinfo=LONDON)),
+        # Mon 28 Dec 2026: Boxing Day substitute day (gov.uk; holidays package).
+        ("2026-12-28T16:50:00+00:00", datetime(2026, 12, 28, 17, 50, tzinfo=LONDON)),
+    ],
+)
+def test_recheck_on_a_closed_day_stays_with_the_visit(
+    policy: Policy, end: str, target: datetime
+) -> None:
+    recheck = items(note_ending(end), policy)["iop-recheck"]
+    assert recheck.target == target
+    assert recheck.moved_from is None
+    assert recheck.passed_over == ()
+    assert recheck.flag is None
 
 
 def test_next_day_check_for_advanced_glaucoma_moves_off_sunday(policy: Policy) -> None:
@@ -106,8 +141,15 @@ def test_next_day_check_for_advanced_glaucoma_moves_off_sunday(policy: Policy) -
     note = note_ending("2026-11-28T10:15:00+00:00", before__risk_factors={"glaucoma": "advanced"})
     next_day = items(note, policy)["next-day-iop"]
     assert next_day.target == datetime(2026, 11, 30, 8, 30, tzinfo=LONDON)
+    assert next_day.moved_from == datetime(2026, 11, 29, 10, 15, tzinfo=LONDON)
+    assert next_day.moved_direction == "later"
     assert next_day.passed_over[0].day == date(2026, 11, 29)
     assert "glaucoma (advanced)" in next_day.reasons
+    # The 18 h earliest is Sun 04:15; the next opening, Mon 08:30, is not after the target,
+    # so the window starts then.
+    assert next_day.earliest == datetime(2026, 11, 30, 8, 30, tzinfo=LONDON)
+    assert next_day.earliest_from == datetime(2026, 11, 29, 4, 15, tzinfo=LONDON)
+    assert next_day.latest == datetime(2026, 11, 30, 10, 15, tzinfo=LONDON)
 
 
 def test_no_next_day_check_for_a_routine_note(policy: Policy) -> None:
@@ -156,7 +198,7 @@ def test_whole_window_closed_is_flagged(policy: Policy) -> None:
         [date(2026, 12, d) for d in range(1, 32)] + [date(2027, 1, d) for d in range(1, 10)],
     )
     flagged = items(note_ending("2026-11-23T10:15:00+00:00"), policy, shut)["review"]
-    assert flagged.flag is not None
+    assert flagged.flag == FLAG_WHOLE_WINDOW
     assert flagged.moved_from is None
 
 
@@ -164,3 +206,136 @@ def test_recheck_done_when_a_reading_lies_in_its_window(policy: Policy) -> None:
     note = Note.model_validate_json(json.dumps(routine()))  # reading 60 min after the end
     recheck = items(note, policy)["iop-recheck"]
     assert recheck.done_by_reading == 0
+
+
+def test_raised_review_on_christmas_is_never_brought_forward(policy: Policy) -> None:
+    # Fri 18 Dec 2026 + 7 days = Fri 25 Dec, Christmas Day; raised-risk window 5/7/10 days
+    # (default.toml, from memory) is 23-28 Dec. England bank holidays 2026 (gov.uk; holidays
+    # package): 25 Dec Christmas Day, 28 Dec Boxing Day substitute; 26-27 Dec a weekend. No
+    # open day from the target to the end of the window: flagged, not moved to 24 Dec.
+    note = note_ending(
+        "2026-12-18T10:15:00+00:00", before__risk_factors={"lattice_degeneration": True}
+    )
+    review = items(note, policy)["review"]
+    assert review.earliest.date() == date(2026, 12, 23)
+    assert review.latest.date() == date(2026, 12, 28)
+    assert review.target == datetime(2026, 12, 25, 8, 30, tzinfo=LONDON)
+    assert review.moved_from is None
+    assert review.moved_direction is None
+    assert review.moved_text() is None
+    assert review.passed_over == ()
+    assert review.flag == FLAG_AFTER_TARGET
+
+
+def test_next_day_earliest_before_opening_starts_at_opening(policy: Policy) -> None:
+    # Tue 24 Nov 2026 10:15 + 18 h = Wed 04:15, before the 08:30 opening; Wed 08:30 is not
+    # after the 24 h target (Wed 10:15), so the window starts at 08:30 (next-day window
+    # 18/24/48 h: Nesher & Kolker 1990; Simsek et al. 1998).
+    note = note_ending("2026-11-24T10:15:00+00:00", before__risk_factors={"glaucoma": "advanced"})
+    next_day = items(note, policy)["next-day-iop"]
+    assert next_day.target == datetime(2026, 11, 25, 10, 15, tzinfo=LONDON)
+    assert next_day.moved_from is None
+    assert next_day.earliest == datetime(2026, 11, 25, 8, 30, tzinfo=LONDON)
+    assert next_day.earliest_from == datetime(2026, 11, 25, 4, 15, tzinfo=LONDON)
+    assert next_day.earliest_text() == (
+        "window starts at opening time, Wed 25 Nov 2026 08:30 GMT; the policy's earliest "
+        "time, Wed 25 Nov 2026 04:15 GMT, is outside clinic hours"
+    )
+
+
+def test_next_day_target_after_closing_moves_to_next_morning(policy: Policy) -> None:
+    # Mon 23 Nov 2026 17:45 + 24 h = Tue 17:45, after the 17:30 closing: Wed 08:30 is the
+    # next open time and lies inside the 48 h window (ends Wed 17:45). No day is closed.
+    note = note_ending("2026-11-23T17:45:00+00:00", before__risk_factors={"glaucoma": "advanced"})
+    next_day = items(note, policy)["next-day-iop"]
+    assert next_day.target == datetime(2026, 11, 25, 8, 30, tzinfo=LONDON)
+    assert next_day.moved_from == datetime(2026, 11, 24, 17, 45, tzinfo=LONDON)
+    assert next_day.moved_direction == "later"
+    assert next_day.passed_over == ()
+    assert next_day.moved_text() == (
+        "target moved later, from Tue 24 Nov 2026 17:45 GMT, which is outside clinic hours"
+    )
+    assert next_day.earliest == datetime(2026, 11, 24, 11, 45, tzinfo=LONDON)
+    assert next_day.earliest_from is None
+
+
+def test_next_day_target_is_never_moved_earlier(policy: Policy) -> None:
+    # Wed 23 Dec 2026 17:40 + 24 h = Thu 24 Dec 17:40, after closing; the rest of the window
+    # (to Fri 25 Dec 17:40) is Christmas Day (gov.uk; holidays package). Thu 24 Dec 11:40 to
+    # 17:30 is open but before the target: flagged, not moved back.
+    note = note_ending("2026-12-23T17:40:00+00:00", before__risk_factors={"glaucoma": "advanced"})
+    next_day = items(note, policy)["next-day-iop"]
+    assert next_day.target == datetime(2026, 12, 24, 17, 40, tzinfo=LONDON)
+    assert next_day.moved_from is None
+    assert next_day.flag == FLAG_AFTER_TARGET
+    assert next_day.earliest == datetime(2026, 12, 24, 11, 40, tzinfo=LONDON)
+
+
+def test_next_day_whole_window_on_christmas_says_earliest_is_outside_hours(
+    policy: Policy,
+) -> None:
+    # Thu 24 Dec 2026 10:15: the window Fri 25 Dec 04:15 - Sat 26 Dec 10:15 is Christmas Day
+    # and Boxing Day (gov.uk; holidays package). No opening before the target: say so.
+    note = note_ending("2026-12-24T10:15:00+00:00", before__risk_factors={"glaucoma": "advanced"})
+    next_day = items(note, policy)["next-day-iop"]
+    assert next_day.flag == FLAG_WHOLE_WINDOW
+    assert next_day.target == datetime(2026, 12, 25, 10, 15, tzinfo=LONDON)
+    assert next_day.earliest == datetime(2026, 12, 25, 4, 15, tzinfo=LONDON)
+    assert next_day.earliest_from is None
+    assert next_day.earliest_outside_hours
+    assert next_day.earliest_text() is not None
+
+
+@pytest.mark.parametrize("glaucoma", [None, "none"])
+def test_no_next_day_check_without_recorded_glaucoma(policy: Policy, glaucoma: str | None) -> None:
+    # Not recorded (None) gives no reason, and neither does a recorded "none".
+    note = note_ending("2026-11-27T10:15:00+00:00", before__risk_factors={"glaucoma": glaucoma})
+    assert "next-day-iop" not in items(note, policy)
+
+
+def test_flagged_and_done_cannot_be_one_item(policy: Policy) -> None:
+    recheck = items(note_ending("2026-11-27T10:15:00+00:00"), policy)["iop-recheck"]
+    with pytest.raises(ValueError, match="flagged for booking or done"):
+        DueItem(
+            recheck.kind,
+            recheck.title,
+            recheck.earliest,
+            recheck.target,
+            recheck.latest,
+            recheck.all_day,
+            recheck.reasons,
+            recheck.source,
+            flag=FLAG_WHOLE_WINDOW,
+            done_by_reading=0,
+        )
+
+
+def test_no_item_is_both_flagged_and_done_over_the_christmas_fortnight(policy: Policy) -> None:
+    # Sessions every 2 hours from 18 Dec 2026 to 3 Jan 2027 (England bank holidays 25, 26
+    # observed 28 Dec and 1 Jan: gov.uk; holidays package), each with a safe reading 60 min
+    # after and advanced glaucoma, so all three kinds of item are due.
+    start = datetime(2026, 12, 18, 0, 15, tzinfo=UTC)
+    for step in range(0, 16 * 24, 2):
+        end = start + timedelta(hours=step)
+        reading = {
+            "value_mmhg": 16,
+            "method": "applanation",
+            "measured_at": (end + timedelta(minutes=60)).isoformat(),
+        }
+        note = note_ending(
+            end.isoformat(),
+            before__risk_factors={"glaucoma": "advanced"},
+            result__iop_after=[reading],
+        )
+        due = items(note, policy)
+        recheck = due["iop-recheck"]
+        assert recheck.done_by_reading == 0, end
+        assert recheck.flag is None, end
+        assert recheck.moved_from is None, end
+        for item in due.values():
+            assert not (item.flag and item.done_by_reading is not None), end
+            assert item.target >= (item.moved_from or item.target), end
+            words = " ".join(
+                t for t in (item.flag, item.moved_text(), item.earliest_text()) if t is not None
+            )
+            assert "book this by hand; done" not in words, end
