@@ -321,8 +321,11 @@ def risk(factors: RiskFactors, course: IopCourse, band: EnergyBand, policy: Poli
         add("glaucoma", f"glaucoma ({factors.glaucoma})")
     if factors.high_myopia:
         add("high-myopia", "high myopia")
-    if factors.axial_length_mm is not None and factors.axial_length_mm > t.rd_axial_length_mm.value:
-        add("axial-length", f"axial length over {t.rd_axial_length_mm.value:g} mm")
+    if (
+        factors.axial_length_mm is not None
+        and factors.axial_length_mm >= t.rd_axial_length_mm.value
+    ):
+        add("axial-length", f"axial length {t.rd_axial_length_mm.value:g} mm or more")
     if factors.uveitis:
         add("uveitis", "uveitis")
     if factors.diabetic_macular_oedema:

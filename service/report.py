@@ -31,10 +31,12 @@ def due_line(item: DueItem) -> str:
     fmt = "%a %d %b %Y" if item.all_day else "%a %d %b %Y %H:%M %Z"
     text = f"  {item.title}: {item.target.strftime(fmt)}"
     text += f" (window {item.earliest.strftime(fmt)} to {item.latest.strftime(fmt)})"
-    if item.moved_from is not None:
-        skipped = ", ".join(f"{c.day:%d %b} {c.reason}" for c in item.passed_over)
-        text += f"; moved from {item.moved_from.strftime(fmt)}"
-        text += f" past {skipped}" if skipped else ""
+    moved = item.moved_text(lambda m: m.strftime(fmt))
+    if moved is not None:
+        text += f"; {moved}"
+    starts = item.earliest_text(lambda m: m.strftime(fmt))
+    if starts is not None:
+        text += f"; {starts}"
     if item.flag:
         text += f"; {item.flag}"
     if item.done_by_reading is not None:

@@ -118,11 +118,20 @@ def test_first_session_has_no_gap() -> None:
     assert (c.session_number, c.cumulative_energy_mj, c.days_since_last_session) == (1, 20.0, None)
 
 
+def test_an_average_adult_eye_is_not_raised_risk(policy: Policy) -> None:
+    # 23.5 mm is about the average adult axial length (common practice): not a risk factor.
+    course = iop_course(IopReading(value_mmhg=15, method="applanation"), [], T0, policy.thresholds)
+    band = energy_band(30.0, policy.thresholds.total_energy_bands_mj)
+    found = risk(RiskFactors(axial_length_mm=23.5), course, band, policy)
+    assert found.level == "routine"
+
+
 @pytest.mark.parametrize(
     ("factors", "reason"),
-    # AAO Preferred Practice Pattern, Cataract in the Adult Eye: RD risk factors.
+    # AAO Preferred Practice Pattern, Cataract in the Adult Eye: RD risk factors; axial length
+    # at the default high-axial-myopia threshold of 26 mm or more (from memory, see default.toml).
     [
-        ({"axial_length_mm": 24.5}, "axial-length"),
+        ({"axial_length_mm": 26.0}, "axial-length"),
         ({"high_myopia": True}, "high-myopia"),
         ({"lattice_degeneration": True}, "lattice-degeneration"),
         ({"retinal_detachment_fellow_eye": True}, "retinal-detachment-history"),

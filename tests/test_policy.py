@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import json
+import subprocess
+import sys
 from pathlib import Path
 from typing import Any
 
@@ -13,6 +16,7 @@ from service.errors import PolicyError
 from service.policy import load_policy
 from service.policy.loader import default_policy_data
 from service.policy.model import Range
+from tests.conftest import routine
 
 
 def sourced_tables(node: Any, path: str = "") -> list[tuple[str, dict[str, Any]]]:
@@ -30,7 +34,8 @@ def test_every_default_names_its_source() -> None:
     data = default_policy_data()
     tables = sourced_tables(data)
     assert len(tables) > 30
-    for section in ("limits", "thresholds", "schedule"):
+    for section in ("limits", "thresholds", "schedule", "severity", "risk_reasons"):
+        assert data[section], f"{section} is empty"
         for key, value in data[section].items():
             assert isinstance(value, dict), f"{section}.{key} is not a sourced table"
             assert value.get("source"), f"{section}.{key} has no source"
@@ -42,6 +47,24 @@ def test_marks_from_memory_where_the_reference_says_so() -> None:
     t = default_policy_data()["thresholds"]
     assert t["usual_pulse_energy_max_mj"]["source"].startswith("from memory")
     assert t["days_after_cataract_surgery"]["source"].startswith("from memory")
+    # Recalled, not checked against the paper: the source must keep saying so.
+    assert t["rd_axial_length_mm"]["source"].startswith("from memory")
+
+
+def test_axial_length_default_is_high_axial_myopia_not_an_average_eye() -> None:
+    # from memory: an average adult eye is about 23.5 mm long and high axial myopia is
+    # commonly taken as 26 mm or more; a cut at 23 mm would raise the risk of most eyes.
+    policy = load_policy()
+    assert policy.thresholds.rd_axial_length_mm.value == 26.0
+    assert policy.thresholds.rd_axial_length_mm.value > 23.5
+    assert policy.limits.axial_length_mm.contains(policy.thresholds.rd_axial_length_mm.value)
+
+
+def test_a_site_keeps_its_own_axial_length_threshold(tmp_path: Path) -> None:
+    site = tmp_path / "site.toml"
+    site.write_text("[thresholds]\nrd_axial_length_mm = 24.5\n")
+    t = load_policy(site).thresholds.rd_axial_length_mm
+    assert (t.value, t.source) == (24.5, "site policy (site.toml)")
 
 
 def test_site_file_overrides_a_value_and_takes_the_source(tmp_path: Path) -> None:
@@ -119,3 +142,130 @@ def test_a_range_holds_its_bounds_and_nothing_else(
     # only its fields.
     assert allowed == Range(unit="mm", source="test", **bounds)
     assert set(allowed.model_dump()) == {"min", "above", "max", "unit", "source"}
+
+
+# Any comparison with NaN is false (IEEE 754), so a NaN threshold would switch its check off
+# without a word; an infinite one does the same from the other side. TOML 1.0 writes them
+# nan, +nan, -nan, inf, +inf and -inf (TOML spec, "Float").
+@pytest.mark.parametrize(
+    ("text", "message"),
+    [
+        (
+            "[thresholds]\nusual_pulse_energy_max_mj = nan\n",
+            "thresholds.usual_pulse_energy_max_mj.value: nan is not a finite number",
+        ),
+        (
+            "[thresholds]\nusual_pulse_energy_max_mj = +nan\n",
+            "thresholds.usual_pulse_energy_max_mj.value: nan is not a finite number",
+        ),
+        (
+            "[thresholds]\niop_high_mmhg = inf\n",
+            "thresholds.iop_high_mmhg.value: inf is not a finite number",
+        ),
+        (
+            "[thresholds]\niop_high_mmhg = +inf\n",
+            "thresholds.iop_high_mmhg.value: inf is not a finite number",
+        ),
+        (
+            "[thresholds]\nopening_min_mm = { value = -inf }\n",
+            "thresholds.opening_min_mm.value: -inf is not a finite number",
+        ),
+        (  # table form, with the site's own source
+            "[thresholds.iop_rise_severe_mmhg]\nvalue = nan\nsource = 'our protocol'\n",
+            "thresholds.iop_rise_severe_mmhg.value: nan is not a finite number",
+        ),
+        (  # a range bound
+            "[thresholds]\nposterior_offset_mm = { min = 0.1, max = inf }\n",
+            "thresholds.posterior_offset_mm.max: inf is not a finite number",
+        ),
+        (  # nested two tables down
+            "[limits.total_energy_tolerance]\npercent = nan\n",
+            "limits.total_energy_tolerance.percent: nan is not a finite number",
+        ),
+        (  # in a list, bare-number override form
+            "[thresholds]\ntotal_energy_bands_mj = [40, nan]\n",
+            "thresholds.total_energy_bands_mj.values[1]: nan is not a finite number",
+        ),
+        (  # in a list, table form
+            "[thresholds.total_energy_bands_mj]\nvalues = [-inf, 80]\n",
+            "thresholds.total_energy_bands_mj.values[0]: -inf is not a finite number",
+        ),
+        (  # a window's offset
+            "[schedule.review_routine]\nlatest = inf\n",
+            "schedule.review_routine.latest: inf is not a finite number",
+        ),
+        (  # a key the policy does not know is still checked (and named) first
+            "[thresholds]\nno_such_threshold = -nan\n",
+            "thresholds.no_such_threshold: nan is not a finite number",
+        ),
+    ],
+)
+def test_a_non_finite_number_is_refused_naming_its_key(
+    tmp_path: Path, text: str, message: str
+) -> None:
+    site = tmp_path / "site.toml"
+    site.write_text(text)
+    with pytest.raises(PolicyError) as raised:
+        load_policy(site)
+    said = str(raised.value.message)
+    assert said == f"site policy file {site}: {message}"
+    assert "\n" not in said  # one line, as the command line prints it
+
+
+def test_every_non_finite_number_is_named_at_once(tmp_path: Path) -> None:
+    site = tmp_path / "site.toml"
+    site.write_text(
+        "[thresholds]\nusual_pulse_energy_max_mj = nan\ntotal_energy_bands_mj = [inf, 80]\n"
+    )
+    with pytest.raises(PolicyError) as raised:
+        load_policy(site)
+    assert raised.value.message.endswith(
+        "thresholds.usual_pulse_energy_max_mj.value: nan is not a finite number; "
+        "thresholds.total_energy_bands_mj.values[0]: inf is not a finite number"
+    )
+
+
+@pytest.mark.parametrize("word", ["nan", "inf", "-inf", "Infinity"])
+def test_a_non_finite_number_written_as_text_is_refused_too(tmp_path: Path, word: str) -> None:
+    # The model's float fields would read "nan" as NaN; they refuse non-finite numbers.
+    site = tmp_path / "site.toml"
+    site.write_text(f"[thresholds]\nusual_pulse_energy_max_mj = '{word}'\n")
+    with pytest.raises(
+        PolicyError, match=r"thresholds\.usual_pulse_energy_max_mj\.value: .*finite number"
+    ):
+        load_policy(site)
+
+
+def test_a_finite_site_file_still_loads(tmp_path: Path) -> None:
+    site = tmp_path / "site.toml"
+    site.write_text("[thresholds]\nusual_pulse_energy_max_mj = 1e3\nopening_min_mm = -0.0\n")
+    t = load_policy(site).thresholds
+    assert (t.usual_pulse_energy_max_mj.value, t.opening_min_mm.value) == (1000.0, 0.0)
+
+
+def test_the_command_line_refuses_a_non_finite_policy_in_one_line(tmp_path: Path) -> None:
+    # The CLI prints a CapnoteError as "capnote: <message>" and exits 2 (service/cli).
+    site = tmp_path / "site.toml"
+    site.write_text("[thresholds]\nusual_pulse_energy_max_mj = nan\n")
+    note = tmp_path / "note.json"
+    note.write_text(json.dumps(routine()))
+    run = subprocess.run(
+        [
+            sys.executable,
+            "-c",
+            "from service.cli import main; main()",
+            "check",
+            "--policy",
+            str(site),
+            str(note),
+        ],
+        capture_output=True,
+        text=True,
+        check=False,
+        timeout=120,
+    )
+    assert run.returncode == 2, run.stderr
+    assert run.stderr.strip().splitlines() == [
+        f"capnote: site policy file {site}: "
+        "thresholds.usual_pulse_energy_max_mj.value: nan is not a finite number"
+    ]

@@ -48,7 +48,15 @@ WARNINGS: list[tuple[str, Change, tuple[str, str, str]]] = [
         lambda n: n["laser"].update(
             series=[{"energy_mj": 1.5, "pulses": 30}], reported_total_energy_mj=None
         ),
-        ("warning", "total-energy-band", "laser.series"),
+        ("information", "total-energy-band", "laser.series"),
+    ),
+    # Chawla et al., ESCRS 2014: over 80 mJ is the highest band, a warning by default
+    (
+        "total 90 mJ",
+        lambda n: n["laser"].update(
+            series=[{"energy_mj": 3.0, "pulses": 30}], reported_total_energy_mj=None
+        ),
+        ("warning", "total-energy-highest-band", "laser.series"),
     ),
     # Parajuli et al. 2019; Jabbar et al. 2022: > 50 mJ in glaucoma
     (

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import date, datetime
 from typing import Any
 
 from schemas.note import ClinicDrop, HomeDrop, PressureTreatment
@@ -25,12 +25,12 @@ def _moment(item: DueItem, moment: datetime) -> str:
 
 def _due_note(item: DueItem) -> str:
     parts = ["Due because: " + "; ".join(item.reasons) + "."]
-    if item.moved_from is not None:
-        passed = ", ".join(f"{c.day.isoformat()} ({c.reason})" for c in item.passed_over)
-        parts.append(
-            f"Target moved from {_moment(item, item.moved_from)}"
-            + (f" past {passed}." if passed else " to an open time.")
-        )
+    moved = item.moved_text(lambda m: _moment(item, m), show_day=date.isoformat)
+    if moved is not None:
+        parts.append(moved[0].upper() + moved[1:] + ".")
+    starts = item.earliest_text(lambda m: _moment(item, m))
+    if starts is not None:
+        parts.append(starts[0].upper() + starts[1:] + ".")
     if item.flag:
         parts.append(item.flag[0].upper() + item.flag[1:] + ".")
     if item.done_by_reading is not None:

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import math
 import tomllib
+from collections.abc import Iterator
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -13,6 +15,10 @@ from service.errors import PolicyError
 from service.policy.model import Policy
 
 SITE_SOURCE = "site policy"
+
+# The key a bare site value replaces in a sourced default table, in order of preference:
+# a threshold's value, a list's values, a finding's severity level.
+_VALUE_SLOTS = ("values", "level", "value")
 
 
 def default_policy_data() -> dict[str, Any]:
@@ -25,7 +31,8 @@ def merge(base: dict[str, Any], site: dict[str, Any], label: str) -> dict[str, A
     """Lay site values over base; a changed value's source becomes the site's.
 
     A bare value where the default is a sourced table (``{value = .., source = ..}``) replaces
-    the value; so does a table that changes values without naming its own source.
+    the value (``values`` for a list, ``level`` for a finding's severity); so does a table
+    that changes values without naming its own source.
     """
     out = dict(base)
     for key, new in site.items():
@@ -36,11 +43,26 @@ def merge(base: dict[str, Any], site: dict[str, Any], label: str) -> dict[str, A
                 merged["source"] = label
             out[key] = merged
         elif isinstance(old, dict) and "source" in old and not isinstance(new, dict):
-            slot = "values" if "values" in old else "value"
+            slot = next((k for k in _VALUE_SLOTS if k in old), "value")
             out[key] = {**old, slot: new, "source": label}
         else:
             out[key] = new
     return out
+
+
+def non_finite(node: Any, path: str = "") -> Iterator[str]:
+    """Each NaN or infinity in TOML data, as ``key.path: value is not a finite number``.
+
+    TOML writes them ``nan``, ``inf`` and ``-inf``; any comparison with NaN is false, so a
+    threshold of NaN would silently switch its check off."""
+    if isinstance(node, float) and not math.isfinite(node):
+        yield f"{path}: {node} is not a finite number"
+    elif isinstance(node, dict):
+        for key, value in node.items():
+            yield from non_finite(value, f"{path}.{key}" if path else str(key))
+    elif isinstance(node, list):
+        for i, value in enumerate(node):
+            yield from non_finite(value, f"{path}[{i}]")
 
 
 def load_policy(site_file: Path | None = None) -> Policy:
@@ -56,6 +78,12 @@ def load_policy(site_file: Path | None = None) -> Policy:
         except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
             raise PolicyError(f"site policy file {site_file} is not valid TOML: {exc}") from exc
         data = merge(data, site, f"{SITE_SOURCE} ({site_file.name})")
+    # Checked after the merge so that a bare override names the slot it lands in
+    # (``thresholds.usual_pulse_energy_max_mj.value``), as the policy's own layout does.
+    infinite = list(non_finite(data))
+    if infinite:
+        where = f"site policy file {site_file}" if site_file is not None else "default policy"
+        raise PolicyError(f"{where}: {'; '.join(infinite)}")
     try:
         return Policy.model_validate(data)
     except ValidationError as exc:

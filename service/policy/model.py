@@ -6,20 +6,23 @@ Every value carries its source so that a finding can say where its threshold cam
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable
 from datetime import date, time
 from functools import cached_property
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 Weekday = Literal["mon", "tue", "wed", "thu", "fri", "sat", "sun"]
 WEEKDAYS: tuple[Weekday, ...] = ("mon", "tue", "wed", "thu", "fri", "sat", "sun")
 
 
 class PolicyPart(BaseModel):
-    """Base of every policy table: unknown keys are refused so typos cannot pass silently."""
+    """Base of every policy table: unknown keys are refused so typos cannot pass silently,
+    and so is a number that is not finite (NaN would make every comparison false and so
+    silence the check that reads it)."""
 
-    model_config = ConfigDict(extra="forbid", frozen=True)
+    model_config = ConfigDict(extra="forbid", frozen=True, allow_inf_nan=False)
 
 
 # UCUM codes that read badly in a sentence, and what people write instead.
@@ -197,6 +200,83 @@ class CalendarPolicy(PolicyPart):
         return self
 
 
+# The codes of the clinical (never blocking) findings of service.rules.clinical whose
+# severity a site may set. A code that is not here cannot be named in [severity] (a typo
+# fails loudly); a code a check emits that has no entry keeps the severity its check gave.
+CLINICAL_FINDING_CODES: frozenset[str] = frozenset(
+    {
+        "acuity-correction-not-recorded",
+        "cme-risk",
+        "consent-not-recorded",
+        "focus-outside-usual",
+        "glaucoma-no-prophylaxis",
+        "glaucoma-not-recorded",
+        "glaucoma-total-energy",
+        "iol-pit-on-axis",
+        "iop-action-unresolved",
+        "iop-after-missing",
+        "iop-high",
+        "iop-rise-moderate",
+        "iop-rise-severe",
+        "no-contact-lens",
+        "no-prophylaxis",
+        "opening-larger-than-optic",
+        "opening-off-centre",
+        "opening-small",
+        "optic-diameter-not-recorded",
+        "pulse-energy-above-usual",
+        "rd-warning-not-given",
+        "risk-factors-not-recorded",
+        "soon-after-cataract-surgery",
+        "total-energy-band",
+        "total-energy-highest-band",
+        "wavelength-unusual",
+    }
+)
+
+# The reason codes service.derive.risk() gives for a raised risk level.
+RISK_REASON_CODES: frozenset[str] = frozenset(
+    {
+        "glaucoma",
+        "high-myopia",
+        "axial-length",
+        "uveitis",
+        "diabetic-macular-oedema",
+        "retinal-detachment-history",
+        "lattice-degeneration",
+        "vitreous-loss",
+        "iop-spike",
+        "iop-high",
+        "total-energy",
+    }
+)
+
+# The levels a site may give a clinical finding: never "error" (a policy cannot make a
+# clinical question block saving) and never "off" (nor silence it).
+SeverityLevel = Literal["warning", "information"]
+
+
+class SeverityPolicy(PolicyPart):
+    """How much one clinical finding matters at this site."""
+
+    level: SeverityLevel
+    source: str
+
+
+class RiskReasonPolicy(PolicyPart):
+    """One reason that raises the risk level: what it is, what it changes, and why."""
+
+    text: str = Field(min_length=1)
+    changes: str = Field(min_length=1)
+    source: str
+
+
+def _unknown(found: Iterable[str], known: frozenset[str], what: str) -> None:
+    unknown = sorted(set(found) - known)
+    if unknown:
+        raise ValueError(f"unknown {what}: {', '.join(unknown)}")
+
+
 class Policy(PolicyPart):
     """The whole site policy."""
 
@@ -205,3 +285,27 @@ class Policy(PolicyPart):
     thresholds: Thresholds
     schedule: Schedule
     calendar: CalendarPolicy
+    # Finding code -> level. Absent codes keep the severity their check gives.
+    severity: dict[str, SeverityPolicy] = {}
+    # Risk reason code -> what it means and changes; every code of derive.risk() is here.
+    risk_reasons: dict[str, RiskReasonPolicy]
+
+    @field_validator("severity")
+    @classmethod
+    def _known_findings(cls, value: dict[str, SeverityPolicy]) -> dict[str, SeverityPolicy]:
+        _unknown(value, CLINICAL_FINDING_CODES, "clinical finding code")
+        return value
+
+    @field_validator("risk_reasons")
+    @classmethod
+    def _known_reasons(cls, value: dict[str, RiskReasonPolicy]) -> dict[str, RiskReasonPolicy]:
+        _unknown(value, RISK_REASON_CODES, "risk reason code")
+        missing = sorted(RISK_REASON_CODES - set(value))
+        if missing:
+            raise ValueError(f"risk reasons without an entry: {', '.join(missing)}")
+        return value
+
+    def level_of(self, code: str) -> SeverityLevel | None:
+        """The site's level for a clinical finding code, or None when the policy has none."""
+        entry = self.severity.get(code)
+        return None if entry is None else entry.level
