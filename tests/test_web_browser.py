@@ -180,6 +180,18 @@ def sign_in(page: Page, token: str) -> None:
     expect(page.locator("#signin")).to_be_hidden()
 
 
+# The risk factors' groups on the form, by their legends (each Yes / No / Not recorded).
+RISK_FACTORS = (
+    "High myopia",
+    "Uveitis",
+    "Diabetic macular oedema",
+    "Retinal detachment before, this eye",
+    "Retinal detachment, other eye",
+    "Lattice degeneration",
+    "Vitreous loss at cataract surgery",
+)
+
+
 def fill_routine(page: Page, *, patient: bool = True) -> None:
     """The routine right-eye session of examples/notes/right-routine.json, typed in."""
     if patient:
@@ -204,9 +216,16 @@ def fill_routine(page: Page, *, patient: bool = True) -> None:
     type_label(page, "IOP measured at", "0940")
     type_label(page, "Visual acuity before", "6/18")
     choose(page, "Acuity notation", "Snellen, metres", exact=True)
+    choose(page, "Acuity measured", "Best corrected", exact=True)
     pick(page, "Pupil dilated", "Yes")
+    type_label(page, "IOL optic diameter", "6")
     choose(page, "IOL optic material", "Hydrophobic acrylic")
+    choose(page, "IOL position", "In the capsular bag")
     type_label(page, "Cataract surgery date", "12032025")
+    # Nothing is assumed: each risk factor is recorded, here as absent.
+    choose(page, "Glaucoma", "None", exact=True)
+    for factor in RISK_FACTORS:
+        pick(page, factor, "No")
 
     choose(page, "Pattern", "Cruciate", exact=True)
     choose(page, "Focus", "Posterior offset", exact=True)
@@ -218,12 +237,14 @@ def fill_routine(page: Page, *, patient: bool = True) -> None:
 
     choose(page, "Outcome", "Complete opening")
     type_label(page, "Opening, horizontal diameter", "4.5")
+    pick(page, "Opening centred on the visual axis", "Yes")
     press(page, "Add an IOP reading")
     type_label(page, "Reading 1: IOP", "17")
     choose(page, "Reading 1: Tonometry", "Applanation")
     type_label(page, "Reading 1: Measured at", "1115")
     type_label(page, "Visual acuity after", "6/9")
     choose(page, "Acuity notation, after", "Snellen, metres")
+    choose(page, "Acuity measured, after", "Best corrected")
 
     press(page, "Add a drop given")
     type_label(page, "Drop given 1: Drop", "apraclonidine")
@@ -235,6 +256,7 @@ def fill_routine(page: Page, *, patient: bool = True) -> None:
     type_label(page, "Drops to take home 1: Times a day", "4")
     type_label(page, "Drops to take home 1: For", "7")
     pick(page, "Warning signs of retinal detachment explained", "Yes")
+    pick(page, "Further laser session planned", "No")
 
 
 def same_note(sent: dict[str, Any], expected: dict[str, Any]) -> None:
@@ -244,11 +266,11 @@ def same_note(sent: dict[str, Any], expected: dict[str, Any]) -> None:
     )
 
 
-def finding_beside(clinic: Clinic, label: str, code: str) -> Locator:
+def finding_beside(clinic: Clinic, label: str, code: str, *, exact: bool = False) -> Locator:
     """The finding with this code for the labelled control, checked to be tied to it: named
     in its aria-describedby and placed in its own field or row."""
     clinic.settle()
-    control = clinic.page.get_by_label(label)
+    control = clinic.page.get_by_label(label, exact=exact)
     path = control.evaluate("c => c.dataset.bind || c.dataset.path")
     box = clinic.page.locator(f'.finding-inline[data-code="{code}"][data-location="{path}"]')
     expect(box).to_be_visible()
@@ -287,7 +309,7 @@ def test_review_on_christmas_day_moves_to_the_next_open_day(clinic: Clinic) -> N
     review = page.locator("#due-list li[data-kind=review]")
     expect(review.locator(".due-when")).to_have_text("Tue 29 Dec 2026")
     moved = review.locator(".due-moved")
-    expect(moved).to_contain_text("Moved from Fri 25 Dec 2026")
+    expect(moved).to_contain_text("Moved later from Fri 25 Dec 2026")
     expect(moved).to_contain_text("Fri 25 Dec (Christmas Day)")
     expect(moved).to_contain_text("Sat 26 Dec (Boxing Day)")
     expect(moved).to_contain_text("Mon 28 Dec")
@@ -381,7 +403,7 @@ def test_iop_rise_of_12_is_a_severe_spike_with_a_next_day_check(clinic: Clinic) 
     # is shut at weekends for the whole window, so the check keeps its target and is flagged
     # to be booked by hand.
     expect(next_day.locator(".due-when")).to_have_text("Sat 28 Nov 2026, 10:15 GMT")
-    expect(next_day).to_contain_text("Book by hand: the clinic is shut for the whole window")
+    expect(next_day).to_contain_text("The clinic is shut for the whole window: book this by hand")
     expect(page.locator("[data-derived=risk] dd")).to_contain_text("raised")
     page.screenshot(path=artifact("form-iop-spike.png"), full_page=True)
 
@@ -587,15 +609,19 @@ def tabbables(page: Page) -> list[str]:
         """() => {
             const all = [...document.querySelectorAll(
                 'a[href], button, input, select, textarea, summary, [tabindex]')];
+            all.forEach((el, i) => { el.dataset.tabkey = String(i); });
             const seen = new Set();
             const out = [];
             all.forEach((el, i) => {
-                el.dataset.tabkey = String(i);
                 if (el.disabled || el.tabIndex < 0 || !el.checkVisibility()) return;
                 if (el.closest('dialog:not([open]), template')) return;
                 if (el.type === 'radio') {
+                    // A group is one stop: its checked radio, else its first.
                     if (seen.has(el.name)) return;
                     seen.add(el.name);
+                    const on = all.find(
+                        (r) => r.type === 'radio' && r.name === el.name && r.checked);
+                    if (on) { out.push(on.dataset.tabkey); return; }
                 }
                 out.push(String(i));
             });
@@ -731,3 +757,253 @@ def test_print_view_is_one_page_with_findings_due_items_and_the_caution(clinic: 
             check=True,
         ).stdout
         assert "not a certified medical device" in " ".join(text.split())
+
+
+# --- unknown is not "no", decimal commas, the pressure pathway ------------------------------
+
+# Keys that say something about the patient only when someone recorded them: an untouched
+# form leaves every one of them out (the contract reads a missing key as "not recorded").
+NOT_RECORDED_KEYS = {
+    "before.risk_factors": [
+        "glaucoma",
+        "high_myopia",
+        "uveitis",
+        "diabetic_macular_oedema",
+        "retinal_detachment_this_eye",
+        "retinal_detachment_fellow_eye",
+        "lattice_degeneration",
+        "vitreous_loss_at_cataract_surgery",
+    ],
+    "before.iol": ["optic_diameter_mm", "position"],
+    "plan": ["further_session_planned"],
+    "result": ["pressure_treatment", "discharge", "opening", "visual_acuity_after"],
+}
+
+
+def part(note: dict[str, Any], path: str) -> dict[str, Any]:
+    for key in path.split("."):
+        note = note.get(key) or {}
+    return note
+
+
+def test_an_untouched_form_records_nothing_it_was_not_told(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    sent = clinic.last_check()
+    for path, keys in NOT_RECORDED_KEYS.items():
+        assert [k for k in keys if k in part(sent, path)] == [], path
+    assert "visual_acuity" not in sent["before"]
+    # Every three-way item starts on "Not recorded".
+    for factor in RISK_FACTORS:
+        group = page.get_by_role("group", name=factor)
+        expect(group.get_by_label("Not recorded", exact=True)).to_be_checked()
+    expect(page.get_by_label("Glaucoma", exact=True)).to_have_value("")
+    expect(page.get_by_label("IOL position")).to_have_value("")
+    expect(page.get_by_label("IOL optic diameter")).to_have_value("")
+    # An opening and an acuity, typed with nothing else: no centring, no correction, no
+    # vertical diameter is invented for them.
+    type_label(page, "Opening, horizontal diameter", "4.5")
+    type_label(page, "Visual acuity before", "6/18")
+    choose(page, "Acuity notation", "Snellen, metres", exact=True)
+    sent = clinic.last_check()
+    assert sent["result"]["opening"] == {"horizontal_mm": 4.5}
+    assert sent["before"]["visual_acuity"] == {"notation": "snellen-metric", "value": "6/18"}
+    # Recorded "No" is sent as false; "Not recorded" again leaves the key out.
+    pick(page, "Uveitis", "No")
+    pick(page, "Opening centred on the visual axis", "No")
+    sent = clinic.last_check()
+    assert sent["before"]["risk_factors"] == {"uveitis": False}
+    assert sent["result"]["opening"] == {"horizontal_mm": 4.5, "centred": False}
+    pick(page, "Uveitis", "Not recorded")
+    assert "uveitis" not in clinic.last_check()["before"]["risk_factors"]
+
+
+def test_a_decimal_comma_is_read_as_a_decimal_and_ambiguous_numbers_are_refused(
+    clinic: Clinic,
+) -> None:
+    # Common practice: continental European locales write a decimal comma ("0,8" = 0.8).
+    page = clinic.page
+    sign_in(page, clinic.token)
+    energy = page.get_by_label("Setting 1: Energy per pulse")
+    key_in(page, energy, "0,8")
+    type_label(page, "Setting 1: Pulses", "20")
+    type_label(page, "IOL optic diameter", "5,5")
+    page.keyboard.press("Tab")
+    sent = clinic.last_check()
+    assert sent["laser"]["series"][0] == {"energy_mj": 0.8, "pulses": 20}
+    assert sent["before"]["iol"]["optic_diameter_mm"] == 5.5
+    # Read once the field is left, it is shown with a point.
+    expect(energy).to_have_value("0.8")
+    expect(page.get_by_label("IOL optic diameter")).to_have_value("5.5")
+    assert_total(page, 20, 16)
+
+    for typed in ("1.000,5", "1,2,3", "1,000"):
+        key_in(page, energy, typed, replace=True)
+        page.keyboard.press("Tab")
+        problem = page.locator("#series-0-energy-mj-number-problem")
+        expect(problem).to_be_visible()
+        expect(problem).to_contain_text(typed)
+        assert (
+            "series-0-energy-mj-number-problem"
+            in (energy.get_attribute("aria-describedby") or "").split()
+        )
+        expect(energy).to_have_attribute("aria-invalid", "true")
+        expect(energy).to_have_value(typed)  # left as typed, never turned into another number
+        # The text goes to the server as text, which refuses it at that field.
+        assert clinic.last_check()["laser"]["series"][0]["energy_mj"] == typed
+    key_in(page, energy, "1.5", replace=True)
+    page.keyboard.press("Tab")
+    expect(page.locator("#series-0-energy-mj-number-problem")).to_have_count(0)
+    assert clinic.last_check()["laser"]["series"][0]["energy_mj"] == 1.5
+
+
+def test_treatment_for_a_raised_iop_and_the_discharge_go_into_the_note(clinic: Clinic) -> None:
+    # A rise of 10 mmHg or more is a severe spike (Chawla et al., ESCRS 2014) and needs action
+    # before the patient leaves; 15 -> 32 mmHg is a rise of 17 and over 30 mmHg (policy
+    # default, from memory).
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    key_in(page, page.get_by_label("Reading 1: IOP"), "32", replace=True)
+    # Reading 2 is entered second but was taken earlier (10:45, a safe 18 mmHg): reading 1
+    # (11:15) is the last one and still needs action; its finding sits beside reading 1.
+    press(page, "Add an IOP reading")
+    type_label(page, "Reading 2: IOP", "18")
+    choose(page, "Reading 2: Tonometry", "Applanation")
+    type_label(page, "Reading 2: Measured at", "1045")
+    box = finding_beside(clinic, "Reading 1: IOP", "iop-action-unresolved")
+    expect(box).to_contain_text("32 mmHg")
+    expect(
+        page.locator("#iop-rows > li").nth(1).locator("[data-code=iop-action-unresolved]")
+    ).to_have_count(0)
+
+    press(page, "Add a treatment given")
+    type_label(page, "Treatment 1: Medicine", "acetazolamide")
+    type_label(page, "Treatment 1: Dose", "500", exact=True)
+    choose(page, "Treatment 1: Dose unit", "mg")
+    choose(page, "Treatment 1: Route", "By mouth")
+    type_label(page, "Treatment 1: Given at", "1125")
+    press(page, "Add a treatment given")
+    type_label(page, "Treatment 2: Medicine", "apraclonidine")
+    type_label(page, "Treatment 2: Strength", "0,5")
+    type_label(page, "Treatment 2: Dose", "1", exact=True)
+    choose(page, "Treatment 2: Dose unit", "Drops")
+    choose(page, "Treatment 2: Route", "Eye drop")
+    type_label(page, "Treatment 2: Given at", "1126")
+    type_label(page, "Discharged at", "1230")
+    type_label(page, "Discharge cleared by", "Dr Ilona Marsh")
+    type_label(page, "Reason for leaving with the IOP still to act on", "sent to eye casualty")
+    sent = clinic.last_check()
+    assert sent["result"]["pressure_treatment"] == [
+        {
+            "agent": "acetazolamide",
+            "dose": 500,
+            "dose_unit": "mg",
+            "route": "oral",
+            "given_at": "2026-11-27T11:25:00+00:00",
+        },
+        {
+            "agent": "apraclonidine",
+            "strength_percent": 0.5,
+            "dose": 1,
+            "dose_unit": "drop",
+            "route": "topical",
+            "given_at": "2026-11-27T11:26:00+00:00",
+        },
+    ]
+    assert sent["result"]["discharge"] == {
+        "at": "2026-11-27T12:30:00+00:00",
+        "cleared_by": "Dr Ilona Marsh",
+        "reason": "sent to eye casualty",
+    }
+    # With a discharge reason the pathway is closed.
+    expect(page.locator(".finding-inline[data-code=iop-action-unresolved]")).to_have_count(0)
+
+    # Without it, the print lists the open finding with the reading it concerns.
+    key_in(
+        page,
+        page.get_by_label("Reason for leaving with the IOP still to act on"),
+        "",
+        replace=True,
+    )
+    page.keyboard.press("Delete")
+    finding_beside(clinic, "Reading 1: IOP", "iop-action-unresolved")
+    page.emulate_media(media="print")
+    summary = page.locator("#print-summary")
+    printed = summary.locator("li[data-code=iop-action-unresolved]")
+    expect(printed).to_contain_text("IOP reading 1 after the laser")
+    expect(summary).to_contain_text("acetazolamide 500 mg, by mouth at 11:25")
+    expect(summary).to_contain_text("12:30, cleared by Dr Ilona Marsh")
+    page.emulate_media(media="screen")
+
+
+def test_a_stored_draft_keeps_not_recorded_apart_from_no(clinic: Clinic) -> None:
+    note = json.loads(json.dumps(ROUTINE))
+    note["status"] = "draft"
+    factors = note["before"]["risk_factors"]
+    del factors["glaucoma"], factors["uveitis"], factors["lattice_degeneration"]
+    factors["high_myopia"] = True
+    del note["before"]["iol"]["optic_diameter_mm"], note["before"]["iol"]["position"]
+    del note["before"]["visual_acuity"]["correction"]
+    del note["result"]["opening"]["centred"]
+    del note["plan"]["further_session_planned"]
+    with clinic.api() as api:
+        stored = api.post("/notes", json=note)
+        assert stored.status_code == 201, stored.text
+        key = stored.json()["id"]
+        # The diameter ratio needs the optic's diameter: not worked out without it.
+        assert stored.json()["derived"]["opening"]["ratio_to_optic"] is None
+    page = clinic.page
+    sign_in(page, clinic.token)
+    type_label(page, "Open a stored note by record id", key)
+    page.keyboard.press("Enter")
+    expect(page.locator("#record-id")).to_have_text(key)
+    sent = clinic.last_check()
+    same_note(sent, note)
+    assert "glaucoma" not in sent["before"]["risk_factors"]
+    assert sent["before"]["risk_factors"]["retinal_detachment_this_eye"] is False
+    assert "centred" not in sent["result"]["opening"]
+    for factor, shown in (
+        ("Uveitis", "Not recorded"),
+        ("Lattice degeneration", "Not recorded"),
+        ("High myopia", "Yes"),
+        ("Diabetic macular oedema", "No"),
+    ):
+        expect(
+            page.get_by_role("group", name=factor).get_by_label(shown, exact=True)
+        ).to_be_checked()
+    expect(
+        page.get_by_role("group", name="Opening centred on the visual axis").get_by_label(
+            "Not recorded", exact=True
+        )
+    ).to_be_checked()
+    expect(
+        page.get_by_role("group", name="Further laser session planned").get_by_label(
+            "Not recorded", exact=True
+        )
+    ).to_be_checked()
+    expect(page.get_by_label("Glaucoma", exact=True)).to_have_value("")
+    expect(page.get_by_label("Acuity measured", exact=True)).to_have_value("")
+    # The server says which checks could not run, beside the items concerned.
+    finding_beside(clinic, "Glaucoma", "glaucoma-not-recorded", exact=True)
+    finding_beside(clinic, "Acuity measured", "acuity-correction-not-recorded", exact=True)
+    risk = page.locator(
+        'fieldset[data-path="before.risk_factors"] > '
+        '.finding-inline[data-code="risk-factors-not-recorded"]'
+    )
+    expect(risk).to_contain_text("uveitis, lattice degeneration")
+    expect(page.locator("[data-derived=opening] dd")).to_contain_text(
+        "diameter ratio not worked out: the optic diameter is not recorded"
+    )
+    page.emulate_media(media="print")
+    summary = page.locator("#print-summary")
+    expect(summary).to_contain_text("optic diameter not recorded")
+    expect(summary).to_contain_text("glaucoma, uveitis, lattice degeneration")
+    expect(summary).to_contain_text("centring not recorded")
+    page.emulate_media(media="screen")
+    # Recording the optic's diameter brings the ratio back, labelled as a diameter ratio.
+    type_label(page, "IOL optic diameter", "6")
+    clinic.settle()
+    expect(page.locator("[data-derived=opening] dd")).to_contain_text(
+        "diameter ratio 0.75 of the optic diameter"
+    )

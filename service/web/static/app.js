@@ -8,6 +8,7 @@ import { showDerived, showDue, num } from "./panel.js";
 import { draw } from "./drawing.js";
 import { renderPrint } from "./print.js";
 import { formatMoment } from "./time.js";
+import { readNumber, normalised } from "./numbers.js";
 
 const $ = (id) => document.getElementById(id);
 const form = $("note-form");
@@ -95,6 +96,9 @@ function showPits(li) {
   li.querySelector(".pits").hidden = !(kind === "iol-pit" || li.pits.rows().length > 0);
 }
 
+const pressure = new Rows({ list: $("pressure-rows"), template: $("tpl-pressure"), noun: "Treatment",
+  base: "result.pressure_treatment", idPrefix: "pressure", onChange: changed, setup: (li) => unitsIntoLabels(li) });
+
 const complications = new Rows({
   list: $("complication-rows"), template: $("tpl-complication"), noun: "Complication",
   base: "result.complications", idPrefix: "complication", onChange: changed,
@@ -118,6 +122,7 @@ const complications = new Rows({
 
 $("add-series").addEventListener("click", () => series.add({ focus: true }));
 $("add-iop").addEventListener("click", () => readings.add({ focus: true }));
+$("add-pressure").addEventListener("click", () => pressure.add({ focus: true }));
 $("add-complication").addEventListener("click", () => complications.add({ focus: true }));
 $("add-prophylaxis").addEventListener("click", () => drops.add({ focus: true }));
 $("add-take-home").addEventListener("click", () => takeHome.add({ focus: true }));
@@ -125,7 +130,41 @@ $("add-take-home").addEventListener("click", () => takeHome.add({ focus: true })
 // --- what the form shows without asking the server --------------------------------------
 
 function numberOf(el) {
-  return el && el.value !== "" && !el.validity.badInput ? Number(el.value) : null;
+  if (!el) return null;
+  const n = readNumber(el.value);
+  return n.value === undefined || n.problem ? null : n.value;
+}
+
+/** A plain-words note beside every number field the form cannot read as one number. */
+function markNumbers() {
+  for (const el of form.querySelectorAll("input[data-kind=number], input[data-kind=int]")) {
+    const n = readNumber(el.value, { whole: el.dataset.kind === "int" });
+    const box = el.closest(".field") || el.parentElement;
+    let p = box.querySelector(":scope > .number-problem");
+    const id = `${el.id}-number-problem`;
+    const tokens = (v) => (v || "").split(/\s+/).filter((t) => t && t !== id);
+    const base = el.hasAttribute("data-described-base") ? "describedBase" : null;
+    if (n.problem) {
+      if (!p) {
+        p = document.createElement("p");
+        p.className = "number-problem";
+        box.append(p);
+      }
+      p.id = id;
+      if (p.textContent !== n.problem) p.textContent = n.problem;
+      el.setAttribute("aria-describedby", [...tokens(el.getAttribute("aria-describedby")), id].join(" "));
+      if (base) el.dataset.describedBase = [...tokens(el.dataset.describedBase), id].join(" ");
+      el.setAttribute("aria-invalid", "true");
+      el.classList.add("number-bad");
+    } else if (p || el.classList.contains("number-bad")) {
+      p?.remove();
+      const rest = tokens(el.getAttribute("aria-describedby")).join(" ");
+      if (rest) el.setAttribute("aria-describedby", rest); else el.removeAttribute("aria-describedby");
+      if (base) el.dataset.describedBase = tokens(el.dataset.describedBase).join(" ");
+      if (!el.closest(".has-error")) el.removeAttribute("aria-invalid");
+      el.classList.remove("number-bad");
+    }
+  }
 }
 
 function runningTotal() {
@@ -158,20 +197,22 @@ function redraw() {
       if (x !== null && y !== null) pits.push({ x, y });
     }
   }
-  const optic = numberOf($("iol-optic")) || state.defaults?.iol_optic_mm || 6;
+  // Not recorded: the optic is not drawn (no size is assumed for it).
+  const optic = numberOf($("iol-optic"));
   const eye = form.querySelector("input[name=eye]:checked")?.value;
+  const centred = form.querySelector("input[name=opening-centred]:checked")?.value;
   const text = draw($("drawing"), {
-    optic: Math.min(Math.max(optic, 1), 12),
+    optic: optic !== null && optic > 0 ? Math.min(Math.max(optic, 1), 12) : null,
     h: clampOpening(numberOf($("opening-h"))),
     v: clampOpening(numberOf($("opening-v"))),
-    centred: $("opening-centred").checked,
+    centred: centred === "true" ? true : centred === "false" ? false : null,
     pits: pits.filter((p) => Math.abs(p.x) <= 10 && Math.abs(p.y) <= 10),
     eye,
     guide: state.defaults?.opening_min_mm || 3,
   });
   $("drawing-caption").dataset.words = text;
   const guide = state.defaults?.opening_min_mm || 3;
-  $("drawing-caption").textContent = `To scale, as seen facing the patient: the patient's right is on your left. Grey: the optic under the capsule; white: the opening; dashed ring: ${num(guide, 1)} mm, the usual smallest opening; red dots: IOL pits.`;
+  $("drawing-caption").textContent = `To scale, as seen facing the patient: the patient's right is on your left. Grey: the optic under the capsule${optic === null ? " (not drawn: its diameter is not recorded)" : ""}; white: the opening; dashed ring: ${num(guide, 1)} mm, the usual smallest opening; red dots: IOL pits.`;
 }
 
 function clampOpening(v) {
@@ -179,6 +220,7 @@ function clampOpening(v) {
 }
 
 function refreshLocal() {
+  markNumbers();
   runningTotal();
   redraw();
   renderSummary();
@@ -197,6 +239,7 @@ function renderFindings() {
     form, index, findings: state.findings, list: $("findings-list"), stillNeeded: $("still-needed"),
     quiet: (f, el) => !state.showAll && !state.touched.has(el.dataset.bind || el.dataset.path || el.dataset.row),
   });
+  markNumbers(); // the findings were redrawn: put the form's own number notes back
   return counts;
 }
 
@@ -292,6 +335,7 @@ function newNote() {
   state.noteId = { system: state.defaults?.note_id_system || "urn:ietf:rfc:3986", value: `urn:uuid:${uuid4()}` };
   series.setCount(1);
   readings.setCount(0);
+  pressure.setCount(0);
   complications.setCount(0);
   drops.setCount(0);
   takeHome.setCount(0);
@@ -320,6 +364,7 @@ function loadStored(view) {
   state.noteId = { ...note.note_id };
   series.setCount((note.laser?.series || []).length);
   readings.setCount((note.result?.iop_after || []).length);
+  pressure.setCount((note.result?.pressure_treatment || []).length);
   complications.setCount((note.result?.complications || []).length);
   (note.result?.complications || []).forEach((c, i) => {
     const li = complications.rows()[i];
@@ -535,7 +580,7 @@ $("sign-out").addEventListener("click", () => {
 function renderSummary() {
   if (!state.noteId) return;
   renderPrint($("print-summary"), {
-    note: currentNote(), view: state.view, zone: state.zone, stored: state.stored,
+    note: currentNote(), view: state.view, findings: state.findings, zone: state.zone, stored: state.stored,
     svg: $("drawing"), caution: state.defaults?.caution || $("caution").textContent,
   });
 }
@@ -545,8 +590,14 @@ window.addEventListener("beforeprint", renderSummary);
 
 form.addEventListener("input", changed);
 form.addEventListener("change", (event) => {
-  if (event.target.type === "radio" || event.target.type === "checkbox" || event.target.tagName === "SELECT") {
-    state.touched.add(event.target.dataset.bind || "");
+  const t = event.target;
+  if (t.type === "radio" || t.type === "checkbox" || t.tagName === "SELECT") {
+    state.touched.add(t.dataset.bind || "");
+  }
+  // A number typed with a decimal comma is shown with a point once read: "0,8" becomes "0.8".
+  if (t.matches && t.matches("input[data-kind=number], input[data-kind=int]")) {
+    const shown = normalised(t.value);
+    if (shown !== t.value) t.value = shown;
   }
   changed();
 });

@@ -27,20 +27,21 @@ export function draw(svg, { optic, h, v, centred, pits, eye, guide }) {
   const title = svg.querySelector("title");
   const desc = svg.querySelector("desc");
   svg.replaceChildren(title, desc);
-  const reach = Math.max(optic / 2, (h || 0) / 2, (v || 0) / 2, guide / 2,
+  // optic: the optic's diameter, or null when not recorded (then it is not drawn at all).
+  const reach = Math.max((optic || 0) / 2, (h || 0) / 2, (v || 0) / 2, guide / 2,
     ...pits.map((p) => Math.max(Math.abs(p.x), Math.abs(p.y))));
   const e = Math.ceil((reach + 1.3) * 2) / 2; // half-width of the view, in mm
   svg.setAttribute("viewBox", `${-e} ${-e} ${2 * e} ${2 * e}`);
   const fs = e * 0.085;
 
   // The optic, with the opacified capsule over it.
-  svg.append(node("circle", { cx: 0, cy: 0, r: optic / 2, class: "d-optic" }));
+  if (optic) svg.append(node("circle", { cx: 0, cy: 0, r: optic / 2, class: "d-optic" }));
   if (h) {
     svg.append(node("ellipse", { cx: 0, cy: 0, rx: h / 2, ry: (v || h) / 2,
-      class: centred ? "d-opening" : "d-opening d-uncentred" }));
+      class: centred === false ? "d-opening d-uncentred" : "d-opening" }));
   }
   // The optic's edge again on top, so an opening larger than the optic shows its overhang.
-  svg.append(node("circle", { cx: 0, cy: 0, r: optic / 2, class: "d-optic-edge" }));
+  if (optic) svg.append(node("circle", { cx: 0, cy: 0, r: optic / 2, class: "d-optic-edge" }));
   svg.append(node("circle", { cx: 0, cy: 0, r: guide / 2, class: "d-guide" }));
   const t = 0.35;
   svg.append(node("line", { x1: -t, y1: 0, x2: t, y2: 0, class: "d-axis" }));
@@ -73,10 +74,14 @@ export function draw(svg, { optic, h, v, centred, pits, eye, guide }) {
   svg.append(node("line", { x1: x0 + 1, y1: y - 0.12, x2: x0 + 1, y2: y + 0.12, class: "d-scale" }));
   svg.append(node("text", { x: x0 + 1 + fs * 0.4, y: y + fs * 0.35, "font-size": fs, class: "d-label" }, "1 mm"));
 
-  const words = [`IOL optic ${mm(optic)} mm across.`];
+  const words = [optic ? `IOL optic ${mm(optic)} mm across.` : "The size of the IOL optic is not recorded: the optic is not drawn."];
   if (h) {
     const shape = v && v !== h ? `${mm(h)} mm wide and ${mm(v)} mm high` : `${mm(h)} mm round`;
-    words.push(`Opening ${shape}, ${Math.round((Math.max(h, v || 0) / optic) * 100)} % of the optic, recorded as ${centred ? "centred" : "not centred (drawn at the centre: its offset is not recorded)"}.`);
+    const ratio = optic ? `, widest diameter ${mm(Math.max(h, v || 0) / optic)} of the optic diameter (diameter ratio)` : "";
+    const where = centred === true ? "recorded as centred"
+      : centred === false ? "recorded as not centred (drawn at the centre: its offset is not recorded)"
+        : "centring not recorded (drawn at the centre)";
+    words.push(`Opening ${shape}${ratio}, ${where}.`);
   } else {
     words.push("No opening size entered yet.");
   }

@@ -4,6 +4,7 @@
 // (e.g. laser.series[1].energy_mj) always names the control it concerns.
 
 import { toInstant, fromInstant } from "./time.js";
+import { readNumber } from "./numbers.js";
 
 function tokens(path) {
   const out = [];
@@ -122,16 +123,19 @@ export class Rows {
 function read(el, day, zone) {
   const kind = el.dataset.kind || "text";
   if (el.type === "radio") {
-    if (!el.checked) return undefined;
+    // The empty choice is "Not recorded": the key is left out, never sent as false.
+    if (!el.checked || el.value === "") return undefined;
     return kind === "bool" ? el.value === "true" : el.value;
   }
-  if (kind === "flag") return el.checked;
   if (kind === "bool-select") return el.value === "" ? undefined : el.value === "true";
   if (el.tagName === "SELECT") return el.value === "" ? undefined : el.value;
   if (kind === "number" || kind === "int") {
-    // A half-typed number ("1..5") reaches the server as text, which answers where it is wrong.
-    if (el.validity.badInput) return "(not a number)";
-    return el.value === "" ? undefined : Number(el.value);
+    // "0,8" is 0.8. Text that is not one number ("1,2,3", "1.000,5") reaches the server as
+    // text, which answers where it is wrong; the form says why beside the field meanwhile.
+    const n = readNumber(el.value, { whole: kind === "int" });
+    if (n.empty) return undefined;
+    if (n.value === undefined) return el.value.trim();
+    return n.value;
   }
   if (kind === "session-date") return undefined;
   if (kind === "session-time" || kind === "time") {
@@ -164,7 +168,7 @@ export function collect(form, zone, noteId, status) {
     const value = read(el, day, zone);
     if (value !== undefined) setPath(note, el.dataset.bind, value);
   }
-  // Weak controls (defaults such as "centred" or "best corrected") only count inside a part
+  // Weak controls (such as "centred" or "best corrected") only count inside a part
   // that something else put there; alone they would invent a part nobody recorded.
   for (const el of weak) {
     if (getPath(note, parentPath(el.dataset.bind)) === undefined) continue;
@@ -184,9 +188,9 @@ export function fill(form, note, zone) {
     const value = getPath(note, el.dataset.bind);
     const kind = el.dataset.kind || "text";
     if (el.type === "radio") {
-      el.checked = value !== undefined && value !== null && String(value) === el.value;
-    } else if (kind === "flag") {
-      el.checked = value === undefined || value === null ? el.defaultChecked : Boolean(value);
+      // Not recorded (absent or null) checks the group's empty choice, where it has one;
+      // a recorded false checks "No".
+      el.checked = value === undefined || value === null ? el.value === "" : String(value) === el.value;
     } else if (kind === "bool-select") {
       el.value = value === undefined || value === null ? "" : String(value);
     } else if (el.tagName === "SELECT") {

@@ -40,8 +40,14 @@ export function derivedRows(d) {
   rows.push(["spike", "IOP after the laser", h ? `highest change ${signed(h.change_mmhg)} mmHg` : "no reading after the laser yet",
     h ? `spike grade: ${GRADE_WORDS[iop.spike_grade] || iop.spike_grade}${h.minutes_after !== null ? `, ${num(h.minutes_after, 0)} min after the laser` : ""}` : null]);
   if (d.opening) {
+    // ratio_to_optic is a diameter ratio (widest axis over the optic's diameter), absent or
+    // null when the optic diameter is not recorded.
+    const ratio = d.opening.ratio_to_optic;
+    const round = d.opening.round_assumed ? "; one diameter measured, area as a round opening" : "";
     rows.push(["opening", "Opening", `${num(d.opening.area_mm2, 1)} mm²`,
-      `widest ${num(d.opening.largest_mm, 2)} mm, ${num(d.opening.ratio_to_optic * 100, 0)} % of the optic diameter`]);
+      `widest diameter ${num(d.opening.largest_mm, 2)} mm; ${typeof ratio === "number"
+        ? `diameter ratio ${num(ratio, 2)} of the optic diameter`
+        : "diameter ratio not worked out: the optic diameter is not recorded"}${round}`]);
   }
   const a = d.acuity;
   if (a.before_logmar !== null || a.after_logmar !== null) {
@@ -81,11 +87,17 @@ export function dueWords(d, zone) {
   lines.push(`Window ${fmt(d.earliest)} to ${fmt(d.latest)}`);
   if (d.moved_from) {
     const passed = (d.passed_over || []).map((p) => `${formatCalendarDay(p.day)} (${p.reason})`);
+    // The server says which way it moved; nothing is assumed from what was passed over.
+    const way = d.moved_direction === "earlier" ? "earlier" : "later";
     lines.push(passed.length
-      ? `Moved from ${fmt(d.moved_from)}: the clinic is closed on ${passed.join(", ")}`
-      : `Moved earlier from ${fmt(d.moved_from)}: the clinic is closed then`);
+      ? `Moved ${way} from ${fmt(d.moved_from)}: the clinic is closed on ${passed.join(", ")}`
+      : `Moved ${way} from ${fmt(d.moved_from)}: outside clinic hours`);
   }
-  if (d.flag) lines.push(`Book by hand: ${d.flag}`);
+  if (d.earliest_from) {
+    lines.push(`Window starts at opening time; ${fmt(d.earliest_from)} is outside clinic hours`);
+  }
+  // The flag already says "book this by hand"; shown as the server wrote it.
+  if (d.flag) lines.push(`${d.flag.charAt(0).toUpperCase()}${d.flag.slice(1)}`);
   if (d.done_by_reading !== null && d.done_by_reading !== undefined) {
     lines.push(`Already done: IOP reading ${d.done_by_reading + 1} after the laser covers it`);
   }

@@ -42,10 +42,26 @@ function block(title, ...content) {
   return el("section", "p-block", el("h2", null, title), ...content);
 }
 
+const CORRECTIONS = { "best-corrected": "best corrected", habitual: "habitual correction",
+  uncorrected: "uncorrected", pinhole: "pinhole" };
+const ROUTES = { topical: "eye drop", oral: "by mouth", intravenous: "intravenous" };
+
+/** Where a finding points, in words, for the places the print cannot show beside a field. */
+function findingPlace(location) {
+  const m = /^result\.iop_after\[(\d+)\]/.exec(location || "");
+  if (m) return `IOP reading ${Number(m[1]) + 1} after the laser`;
+  const t = /^result\.pressure_treatment\[(\d+)\]/.exec(location || "");
+  if (t) return `treatment ${Number(t[1]) + 1} for raised IOP`;
+  if ((location || "").startsWith("result.discharge")) return "discharge";
+  if ((location || "").startsWith("before.risk_factors")) return "risk factors";
+  return null;
+}
+
 const w = (code) => (code === undefined || code === null ? null : WORDS[code] || code);
 const yes = (v) => (v === true ? "yes" : v === false ? "no" : null);
+const said = (v) => yes(v) ?? "not recorded";
 
-export function renderPrint(section, { note, view, zone, stored, svg, caution }) {
+export function renderPrint(section, { note, view, findings: open, zone, stored, svg, caution }) {
   const time = (iso) => (iso ? fromInstant(iso, zone)?.time : null);
   const start = note.started_at ? fromInstant(note.started_at, zone) : null;
   const b = note.before || {};
@@ -53,7 +69,7 @@ export function renderPrint(section, { note, view, zone, stored, svg, caution })
   const r = note.result || {};
   const p = note.plan || {};
   const d = view && view.derived;
-  const va = (x) => (x ? `${x.value || "?"} (${NOTATIONS[x.notation] || "notation?"}${x.correction && x.correction !== "best-corrected" ? `, ${x.correction}` : ""})` : null);
+  const va = (x) => (x ? `${x.value || "?"} (${NOTATIONS[x.notation] || "notation?"}, ${x.correction ? CORRECTIONS[x.correction] || x.correction : "correction not recorded"})` : null);
 
   const head = el("header", "p-head",
     el("h1", null, "Nd:YAG posterior capsulotomy: session summary"),
@@ -70,14 +86,20 @@ export function renderPrint(section, { note, view, zone, stored, svg, caution })
     ["Consent", yes(note.consent?.given)],
   ]));
 
-  const risks = Object.entries(RISKS).filter(([k]) => b.risk_factors?.[k]).map(([, v]) => v);
-  if (b.risk_factors?.glaucoma && b.risk_factors.glaucoma !== "none") risks.unshift(`glaucoma (${b.risk_factors.glaucoma})`);
+  // Three ways: present, recorded absent, not recorded (never read as absent).
+  const rf = b.risk_factors || {};
+  const risks = Object.entries(RISKS).filter(([k]) => rf[k] === true).map(([, v]) => v);
+  const unknown = Object.entries(RISKS).filter(([k]) => rf[k] === undefined || rf[k] === null).map(([, v]) => v);
+  if (rf.glaucoma && rf.glaucoma !== "none") risks.unshift(`glaucoma (${rf.glaucoma})`);
+  if (rf.glaucoma === undefined || rf.glaucoma === null) unknown.unshift("glaucoma");
+  const optic = b.iol?.optic_diameter_mm;
   const before = block("Before the laser", dl([
     ["IOP", b.iop?.value_mmhg !== undefined ? `${num(b.iop.value_mmhg)} mmHg (${w(b.iop.method) || "method?"})` : null],
     ["Visual acuity", va(b.visual_acuity)], ["Pupil dilated", yes(b.pupil_dilated)],
-    ["IOL", `${num(b.iol?.optic_diameter_mm ?? 6, 2)} mm optic${b.iol?.optic_material ? `, ${b.iol.optic_material}` : ""}${b.iol?.position ? `, ${w(b.iol.position)}` : ""}`],
+    ["IOL", `${typeof optic === "number" ? `${num(optic, 2)} mm optic` : "optic diameter not recorded"}${b.iol?.optic_material ? `, ${b.iol.optic_material}` : ""}, ${b.iol?.position ? w(b.iol.position) : "position not recorded"}`],
     ["Cataract surgery", b.cataract_surgery_date ? formatCalendarDay(b.cataract_surgery_date, true) : null],
-    ["Risk factors", risks.length ? risks.join(", ") : "none recorded"],
+    ["Risk factors", risks.length ? risks.join(", ") : unknown.length ? "none recorded as present" : "none"],
+    ["Not recorded", unknown.length ? unknown.join(", ") : null],
     ["Axial length", b.risk_factors?.axial_length_mm !== undefined ? `${num(b.risk_factors.axial_length_mm, 2)} mm` : null],
   ]));
 
@@ -101,10 +123,13 @@ export function renderPrint(section, { note, view, zone, stored, svg, caution })
   const changes = new Map((d?.iop?.changes || []).map((c) => [c.reading_index, c.change_mmhg]));
   const readings = (r.iop_after || []).map((x, i) => `${time(x.measured_at) || "?"}: ${num(x.value_mmhg)} mmHg${changes.has(i) ? ` (${changes.get(i) >= 0 ? "+" : "−"}${num(Math.abs(changes.get(i)))})` : ""}`);
   const comps = (r.complications || []).map((c) => `${w(c.kind) || "?"}${c.on_visual_axis === true ? ", on the visual axis" : ""}${c.positions?.length ? `, ${c.positions.length} position(s)` : ""}${c.text ? ` (${c.text})` : ""}`);
+  const treated = (r.pressure_treatment || []).map((x) => `${x.agent || "?"}${x.strength_percent !== undefined ? ` ${num(x.strength_percent, 2)} %` : ""} ${x.dose !== undefined ? num(x.dose, 2) : "?"} ${x.dose_unit === "drop" ? (x.dose === 1 ? "drop" : "drops") : x.dose_unit || ""}${x.route ? `, ${ROUTES[x.route] || x.route}` : ""} at ${time(x.given_at) || "?"}`);
   const result = block("Result", dl([
     ["Outcome", w(r.outcome)],
-    ["Opening", r.opening?.horizontal_mm !== undefined ? `${num(r.opening.horizontal_mm, 2)}${r.opening.vertical_mm !== undefined ? ` × ${num(r.opening.vertical_mm, 2)}` : ""} mm, ${r.opening.centred === false ? "not centred" : "centred"}` : null],
+    ["Opening", r.opening?.horizontal_mm !== undefined ? `${num(r.opening.horizontal_mm, 2)}${r.opening.vertical_mm !== undefined ? ` × ${num(r.opening.vertical_mm, 2)} mm` : " mm round"}, ${r.opening.centred === false ? "not centred" : r.opening.centred === true ? "centred" : "centring not recorded"}` : null],
     ["IOP after", readings.length ? readings.join("; ") : "no reading"],
+    ["IOP treatment", treated.length ? treated.join("; ") : null],
+    ["Discharge", r.discharge ? `${time(r.discharge.at) || "?"}, cleared by ${r.discharge.cleared_by || "?"}${r.discharge.reason ? ` (${r.discharge.reason})` : ""}` : null],
     ["Complications", comps.length ? comps.join("; ") : "none recorded"],
     ["Visual acuity after", va(r.visual_acuity_after)],
   ]));
@@ -115,7 +140,7 @@ export function renderPrint(section, { note, view, zone, stored, svg, caution })
     ["Drops in clinic", drops.length ? drops.join("; ") : "none"],
     ["Drops to take home", home.length ? home.join("; ") : "none"],
     ["RD warning signs explained", yes(p.rd_warning_given)],
-    ["Further session planned", yes(p.further_session_planned)],
+    ["Further session planned", said(p.further_session_planned)],
   ]));
 
   const worked = block("Worked out", dl(derivedRows(d).map(([, k, v, n]) => [k, v, n])));
@@ -130,11 +155,15 @@ export function renderPrint(section, { note, view, zone, stored, svg, caution })
   }
 
   const findings = el("ul", "p-list");
-  for (const f of view?.findings || []) {
-    findings.append(el("li", `sev-${f.severity}`, el("strong", null, `${f.severity}: `), f.message,
-      f.source ? el("span", "p-src", ` (source: ${f.source})`) : null));
+  for (const f of open || view?.findings || []) {
+    const place = findingPlace(f.location);
+    const item = el("li", `sev-${f.severity}`, el("strong", null, `${f.severity}: `), f.message,
+      place ? el("span", "p-note", ` (${place})`) : null,
+      f.source ? el("span", "p-src", ` (source: ${f.source})`) : null);
+    item.dataset.code = f.code;
+    findings.append(item);
   }
-  if (!findings.children.length) findings.append(el("li", null, view ? "No findings." : "Not checked."));
+  if (!findings.children.length) findings.append(el("li", null, view ? "No open findings." : "Not checked."));
 
   const due = el("ul", "p-list");
   for (const item of view?.due || []) {
@@ -142,7 +171,7 @@ export function renderPrint(section, { note, view, zone, stored, svg, caution })
     const moved = words.lines.find((x) => x.startsWith("Moved"));
     due.append(el("li", null, el("strong", null, `${words.title}: `), words.when,
       moved ? el("span", "p-note", `. ${moved}.`) : null,
-      item.flag ? el("span", "p-note", `. Book by hand: ${item.flag}.`) : null));
+      item.flag ? el("span", "p-note", `. ${item.flag}.`) : null));
   }
   if (!due.children.length) due.append(el("li", null, "Nothing scheduled."));
 
