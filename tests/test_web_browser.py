@@ -1007,3 +1007,29 @@ def test_a_stored_draft_keeps_not_recorded_apart_from_no(clinic: Clinic) -> None
     expect(page.locator("[data-derived=opening] dd")).to_contain_text(
         "diameter ratio 0.75 of the optic diameter"
     )
+
+
+def test_opening_a_note_keeps_what_the_form_has_no_control_for(clinic: Clinic) -> None:
+    # Opening and saving from the form must never drop what the sender recorded.
+    note = json.loads(json.dumps(ROUTINE))
+    note["status"] = "draft"
+    note["assistant"] = "Nurse Test"
+    note["indication"] = {"opacification": "pearl", "symptoms": ["glare"]}
+    note["laser"]["mode"] = "burst"
+    note["laser"]["pulses_per_burst"] = 2
+    note["laser"]["contact_lens"]["lens"] = "site lens A"
+    with clinic.api() as api:
+        stored = api.post("/notes", json=note)
+        assert stored.status_code == 201, stored.text
+        key = stored.json()["id"]
+    page = clinic.page
+    sign_in(page, clinic.token)
+    type_label(page, "Open a stored note by record id", key)
+    page.keyboard.press("Enter")
+    expect(page.locator("#record-id")).to_have_text(key)
+    sent = clinic.last_check()
+    assert sent["assistant"] == "Nurse Test"
+    assert sent["indication"] == {"opacification": "pearl", "symptoms": ["glare"]}
+    assert sent["laser"]["mode"] == "burst"
+    assert sent["laser"]["pulses_per_burst"] == 2
+    assert sent["laser"]["contact_lens"]["lens"] == "site lens A"

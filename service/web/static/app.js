@@ -19,6 +19,7 @@ const state = {
   zone: "Europe/London",
   noteId: null,
   stored: null, // {id, version, status, reason} of the latest stored version
+  loaded: null, // the stored note last opened: what the form has no control for is kept from it
   dirty: false,
   touched: new Set(),
   showAll: false,
@@ -230,7 +231,7 @@ function refreshLocal() {
 
 function currentNote(status) {
   const wanted = status || (state.stored && state.stored.status === "final" ? "final" : "draft");
-  return collect(form, state.zone, state.noteId, wanted);
+  return collect(form, state.zone, state.noteId, wanted, state.loaded);
 }
 
 function renderFindings() {
@@ -332,6 +333,7 @@ function setStored(view) {
 
 function newNote() {
   form.reset();
+  state.loaded = null; // nothing of another note is ever carried into a new one
   state.noteId = { system: state.defaults?.note_id_system || "urn:ietf:rfc:3986", value: `urn:uuid:${uuid4()}` };
   series.setCount(1);
   readings.setCount(0);
@@ -361,6 +363,7 @@ function newNote() {
 
 function loadStored(view) {
   const note = view.note;
+  state.loaded = note;
   state.noteId = { ...note.note_id };
   series.setCount((note.laser?.series || []).length);
   readings.setCount((note.result?.iop_after || []).length);

@@ -147,8 +147,19 @@ function read(el, day, zone) {
   return text === "" ? undefined : text;
 }
 
-/** The note as the contract wants it, from what is in the form now. */
-export function collect(form, zone, noteId, status) {
+// Parts of the contract the form has no control for yet: an opened note keeps what the
+// sender recorded there, so opening and saving from the form never drops it.
+const KEPT = [
+  "patient_details", "assistant", "indication",
+  "before.topical_anaesthetic", "before.dilating_drops",
+  "laser.mode", "laser.pulses_per_burst",
+  "laser.contact_lens.lens", "laser.contact_lens.magnification",
+  "consent.kind", "result.discharge.cleared_by_identifier",
+];
+
+/** The note as the contract wants it, from what is in the form now (and, for the parts the
+ * form does not show, from the stored note it was opened from). */
+export function collect(form, zone, noteId, status, loaded = null) {
   const note = {
     note_id: { ...noteId },
     patient: {},
@@ -176,6 +187,16 @@ export function collect(form, zone, noteId, status) {
     if (value !== undefined) setPath(note, el.dataset.bind, value);
   }
   if (note.encounter && Object.keys(note.encounter).length === 0) delete note.encounter;
+  if (loaded) {
+    for (const path of KEPT) {
+      const value = getPath(loaded, path);
+      if (value === undefined || value === null) continue;
+      // A nested part is kept only where the form still has its parent (a discharge).
+      const parent = parentPath(path);
+      if (parent && getPath(note, parent) === undefined) continue;
+      setPath(note, path, value);
+    }
+  }
   note.status = status;
   return note;
 }
