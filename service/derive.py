@@ -248,10 +248,9 @@ def pressure_pathway(note: Note, thresholds: Thresholds) -> PressurePathway:
     open_reading: int | None = None
     if flagged:
         last = flagged[-1]
+        needing = set(flagged)
         later_safe = any(
-            after[i].measured_at > after[last].measured_at
-            and not reading_needs_action(before, after[i], thresholds)
-            for i in order
+            after[i].measured_at > after[last].measured_at and i not in needing for i in order
         )
         discharge = note.result.discharge
         reasoned = discharge is not None and discharge.reason is not None

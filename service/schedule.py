@@ -19,10 +19,10 @@ from dataclasses import dataclass, replace
 from datetime import date, datetime, timedelta
 from typing import Literal
 
-from schemas.note import IopReading, Note, TimedIopReading
+from schemas.note import Note, TimedIopReading
 from service.clinic_calendar import ClinicCalendar
-from service.derive import Derived, reading_needs_action, session_reference
-from service.policy.model import Policy, Thresholds, Window
+from service.derive import Derived, session_reference
+from service.policy.model import Policy, Window
 
 DueKind = Literal["iop-recheck", "next-day-iop", "review"]
 MovedDirection = Literal["later", "earlier"]
@@ -268,27 +268,25 @@ def _flagged(item: DueItem, *, whole_window: bool) -> DueItem:
 
 
 def recheck_done_by(
-    before: IopReading,
-    readings: Sequence[TimedIopReading],
-    item: DueItem,
-    thresholds: Thresholds,
+    readings: Sequence[TimedIopReading], needing: Sequence[int], item: DueItem
 ) -> int | None:
     """The reading that did the same-visit recheck, or None.
 
-    It must lie inside the recheck window and not itself need action (reading_needs_action),
-    and no later reading may need action: a reading that needed action has to be answered by
-    a later one that does not. Of those, the earliest in time; readings may be in any order.
+    needing holds the readings that need action, in time order (derive.pressure_pathway).
+    The reading must lie inside the recheck window and not itself need action, and no later
+    reading may need action: a reading that needed action has to be answered by a later one
+    that does not. Of those, the earliest in time; readings may be in any order.
     """
     order = sorted(range(len(readings)), key=lambda i: (readings[i].measured_at, i))
-    needing = [i for i in order if reading_needs_action(before, readings[i], thresholds)]
     last_action = readings[needing[-1]].measured_at if needing else None
+    flagged = set(needing)
     for i in order:
         at = readings[i].measured_at
         if not item.earliest <= at <= item.latest:
             continue
         if last_action is not None and at <= last_action:
             continue
-        if not reading_needs_action(before, readings[i], thresholds):
+        if i not in flagged:
             return i
     return None
 
@@ -326,7 +324,7 @@ def schedule(
         calendar,
         ("IOP peaks within hours of the laser",),
     )
-    done = recheck_done_by(note.before.iop, note.result.iop_after, recheck, policy.thresholds)
+    done = recheck_done_by(note.result.iop_after, derived.pathway.needs_action, recheck)
     items = [replace(recheck, done_by_reading=done)]
     why_next_day = next_day_reasons(note, derived, policy)
     if why_next_day:

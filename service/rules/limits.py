@@ -177,6 +177,20 @@ def too_early(note: Note) -> Iterator[Finding]:
         )
 
 
+def _in_future(where: str, moment: datetime, rule: str, ctx: Context) -> Finding:
+    """A time later than the present (plus the policy's tolerance for clocks apart)."""
+    tolerance = ctx.policy.limits.future_tolerance_minutes
+    return error(
+        "time-in-future",
+        where,
+        f"{where} lies in the future",
+        rule,
+        value=moment.isoformat(),
+        allowed=f"no later than the present time plus {tolerance.value:g} min",
+        source=tolerance.source,
+    )
+
+
 def times(note: Note, ctx: Context) -> Iterator[Finding]:
     """Times must be in order, not too early and not in the future."""
     yield from too_early(note)
@@ -187,15 +201,7 @@ def times(note: Note, ctx: Context) -> Iterator[Finding]:
     stamped = [("started_at", note.started_at), ("ended_at", note.ended_at)]
     for where, moment in stamped:
         if moment is not None and moment > latest_allowed:
-            yield error(
-                "time-in-future",
-                where,
-                f"{where} lies in the future",
-                "a session is recorded after it happened",
-                value=moment.isoformat(),
-                allowed=f"no later than the present time plus {tolerance.seconds // 60} min",
-                source=ctx.policy.limits.future_tolerance_minutes.source,
-            )
+            yield _in_future(where, moment, "a session is recorded after it happened", ctx)
     if note.ended_at is not None and note.ended_at < note.started_at:
         yield error(
             "ended-before-start",
@@ -267,15 +273,7 @@ def pathway_times(note: Note, ctx: Context) -> Iterator[Finding]:
                 allowed=f">= {note.started_at.isoformat()}",
             )
         elif moment > latest_allowed:
-            yield error(
-                "time-in-future",
-                where,
-                f"{where} lies in the future",
-                "what happened is recorded after it happened",
-                value=moment.isoformat(),
-                allowed=f"no later than the present time plus {tolerance.seconds // 60} min",
-                source=ctx.policy.limits.future_tolerance_minutes.source,
-            )
+            yield _in_future(where, moment, "what happened is recorded after it happened", ctx)
     if discharge is not None:
         for i, t in enumerate(note.result.pressure_treatment):
             if t.given_at > discharge.at:
