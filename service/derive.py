@@ -91,10 +91,12 @@ class Risk:
 
 @dataclass(frozen=True, slots=True)
 class PriorSession:
-    """An earlier session on the same patient's same eye, as the store knows it."""
+    """Another session on the same patient's same eye, as the store knows it (key: its note
+    key, when it has one)."""
 
     started_at: datetime
     total_energy_mj: float
+    key: str = ""
 
 
 @dataclass(frozen=True, slots=True)
@@ -353,6 +355,20 @@ def cumulative(started_at: datetime, energy_mj: float, prior: Sequence[PriorSess
         cumulative_energy_mj=round(energy_mj + math.fsum(p.total_energy_mj for p in earlier), 3),
         days_since_last_session=(started_at.date() - last.date()).days if last else None,
     )
+
+
+def recounted(before: Sequence[PriorSession], after: Sequence[PriorSession]) -> list[str]:
+    """The keys of the sessions, in session order, whose running totals (session number,
+    cumulative energy, days since the last) differ between two states of one eye's sessions:
+    the later sessions that a session arriving late, amended or voided must correct. Totals
+    count by session time, so the order in which sessions arrived never matters."""
+
+    def totals(sessions: Sequence[PriorSession]) -> dict[str, Cumulative]:
+        return {s.key: cumulative(s.started_at, s.total_energy_mj, sessions) for s in sessions}
+
+    old, new = totals(before), totals(after)
+    ordered = sorted(after, key=lambda s: (s.started_at, s.key))
+    return [s.key for s in ordered if s.key in old and old[s.key] != new[s.key]]
 
 
 def session_reference(note: Note) -> datetime:

@@ -23,7 +23,7 @@ from sqlmodel import Session
 
 from schemas.note import Note
 from service.assess import Assessment, Assessor
-from service.derive import PriorSession
+from service.derive import PriorSession, recounted, total_energy_mj
 from service.errors import ConflictError, InputError, NotFoundError, PreconditionError
 from service.fhir.common import Emitted, Version, stable_uuid
 from service.fhir.readmodel import read_references, searchables
@@ -43,6 +43,9 @@ from service.store.ledger import (
 from service.views import assessment_view
 
 Clock = Callable[[], datetime]
+
+# How often a submission reads the eye's sessions again after a concurrent write moved them.
+_ATTEMPTS = 3
 
 
 @dataclass(frozen=True, slots=True)
@@ -112,6 +115,35 @@ class StoredNote:
         return data
 
 
+SYSTEM = Principal("capnote (system)", "system")
+"""Who records the versions capnote writes itself (totals counted again)."""
+
+
+def _session(change: Change) -> PriorSession:
+    """The change's session as the eye's totals count it."""
+    return PriorSession(change.note.started_at, total_energy_mj(change.note.laser), change.key)
+
+
+def _same_chart(old: Note, new: Note) -> None:
+    """An amendment stays on its patient and eye: moving a note would move its results
+    between charts at every receiver."""
+    for field, before, after in (
+        (
+            "note.patient",
+            (old.patient.system, old.patient.value),
+            (new.patient.system, new.patient.value),
+        ),
+        ("note.eye", old.eye, new.eye),
+    ):
+        if before != after:
+            raise problem(
+                "identity-change",
+                field,
+                f"an amendment cannot change {field.removeprefix('note.')}",
+                "void this note with a reason, then send a new note for the right patient and eye",
+            )
+
+
 def note_key(note: Note) -> str:
     """capnote's id for a note: stable for the sender's identifier, free of patient data."""
     return stable_uuid(note, "procedure")
@@ -173,11 +205,11 @@ class NoteService:
             raise InputError("the note has errors", findings)
         return note, findings
 
-    async def _priors(self, note: Note, key: str) -> list[PriorSession]:
-        rows = await self.ledger.earlier_sessions(
-            key, (note.patient.system, note.patient.value), note.eye, note.started_at
+    async def _others(self, note: Note, key: str) -> list[PriorSession]:
+        """The eye's other sessions, earlier and later (cumulative() counts the earlier)."""
+        return await self.ledger.eye_sessions(
+            key, (note.patient.system, note.patient.value), note.eye
         )
-        return [PriorSession(r.started_at, r.total_energy_mj) for r in rows]
 
     async def check(self, payload: bytes) -> dict[str, Any]:
         """Everything a submission would produce, stored nowhere."""
@@ -185,7 +217,7 @@ class NoteService:
         if note is None or has_errors(findings):
             return {**assessment_view(Assessment(note, findings)), "bundle": None}
         key = note_key(note)
-        result = self.assessor.complete(note, findings, await self._priors(note, key))
+        result = self.assessor.complete(note, findings, await self._others(note, key))
         return {"id": key, **assessment_view(result), "bundle": result.bundle}
 
     # -- writing ---------------------------------------------------------------------------
@@ -240,10 +272,60 @@ class NoteService:
         )
         return NewVersion(row, index, audit), stored
 
-    async def _write(self, change: Change, who: Principal) -> StoredNote:
+    async def _write(
+        self,
+        change: Change,
+        who: Principal,
+        before: Sequence[PriorSession],
+        after: Sequence[PriorSession],
+    ) -> StoredNote:
+        """Store one change and, in the same transaction, a corrected version of every later
+        session of the eye whose session number or cumulative energy it moves (before and
+        after: the eye's sessions without and with the change)."""
         new, stored = self.prepare(change, who)
-        await self.ledger.write_many([new], forward=self.forward)
+        corrections = [
+            await self._recount(other, after, change)
+            for other in recounted(before, after)
+            if other != change.key
+        ]
+        await self.ledger.write_many(
+            [new, *(c for c in corrections if c is not None)], forward=self.forward
+        )
         return stored
+
+    async def _recount(
+        self, key: str, sessions: Sequence[PriorSession], cause: Change
+    ) -> NewVersion | None:
+        """A new version of a later session with its totals counted again: the same note, a
+        system reason, and a Bundle that amends what the hospital record holds."""
+        latest = await self.ledger.latest(key)
+        if latest is None or latest.status == "void":
+            return None
+        note = Note.model_validate_json(latest.note_json)
+        # The stored note passed its checks when stored; checking it again today keeps its
+        # findings as the current policy sees them, like any other new version.
+        _note, findings = check_payload(
+            latest.note_json, Context(self.assessor.policy, self.clock())
+        )
+        what = {"create": "recorded", "amend": "amended", "void": "voided"}[cause.action]
+        change = Change(
+            key,
+            note,
+            latest.note_json,
+            findings,
+            [s for s in sessions if s.key != key],
+            Version(
+                latest.version + 1,
+                amends_final=latest.status == "final",
+                previous=emitted_before(latest),
+            ),
+            latest.status,
+            f"session number and cumulative energy counted again: an earlier session of this "
+            f"eye (note {cause.key}) was {what}",
+            "recount",
+        )
+        new, _stored_note = self.prepare(change, SYSTEM)
+        return new
 
     async def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredNote]:
         """Store a new note; (False, stored) when the same note was already there."""
@@ -251,25 +333,21 @@ class NoteService:
         note_json = note.model_dump_json(exclude_none=True)
         key, digest = note_key(note), content_hash(note_json)
         patient = (note.patient.system, note.patient.value)
-        # One call for both reads: on PostgreSQL that is one trip to the server.
-        digests, earlier = await self.ledger.before_write(key, patient, note.eye, note.started_at)
-        if digests:
-            return False, await self._resent(key, digest, digests)
-        prior = [PriorSession(r.started_at, r.total_energy_mj) for r in earlier]
-        try:
-            stored = await self._write(
-                Change(
-                    key, note, note_json, findings, prior, Version(1), note.status, None, "create"
-                ),
-                who,
+        for _attempt in range(_ATTEMPTS):
+            # One call for both reads: on PostgreSQL that is one trip to the server.
+            digests, others = await self.ledger.before_write(key, patient, note.eye)
+            if digests:
+                return False, await self._resent(key, digest, digests)
+            change = Change(
+                key, note, note_json, findings, others, Version(1), note.status, None, "create"
             )
-        except DuplicateVersionError:
-            # Another request stored this note between our read and our write.
-            digests, _earlier = await self.ledger.before_write(
-                key, patient, note.eye, note.started_at
-            )
-            return False, await self._resent(key, digest, digests)
-        return True, stored
+            try:
+                return True, await self._write(change, who, others, [*others, _session(change)])
+            except DuplicateVersionError:
+                # Another request stored this note, or corrected one of its later sessions,
+                # between our read and our write: read again.
+                continue
+        raise PreconditionError("the eye's record changed meanwhile; send the note again")
 
     async def _resent(self, key: str, digest: str, digests: list[str]) -> StoredNote:
         """For a resend: the record as it stands now when any stored version has this content;
@@ -331,14 +409,15 @@ class NoteService:
             amends_final=latest.status == "final",
             previous=emitted_before(latest),
         )
-        prior = await self._priors(note, key)
+        old = Note.model_validate_json(latest.note_json)
+        _same_chart(old, note)
+        others = await self._others(note, key)
+        change = Change(
+            key, note, note_json, findings, others, emitted, note.status, reason, "amend"
+        )
+        was = PriorSession(old.started_at, latest.total_energy_mj or 0.0, key)
         try:
-            return await self._write(
-                Change(
-                    key, note, note_json, findings, prior, emitted, note.status, reason, "amend"
-                ),
-                who,
-            )
+            return await self._write(change, who, [*others, was], [*others, _session(change)])
         except DuplicateVersionError as exc:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
@@ -352,11 +431,11 @@ class NoteService:
         check_match(latest.version, if_match)
         note = Note.model_validate_json(latest.note_json)
         emitted = Version(latest.version + 1, voided=True, amends_final=latest.status == "final")
-        prior = await self._priors(note, key)
+        others = await self._others(note, key)
+        change = Change(key, note, latest.note_json, [], others, emitted, "void", reason, "void")
+        was = PriorSession(note.started_at, latest.total_energy_mj or 0.0, key)
         try:
-            return await self._write(
-                Change(key, note, latest.note_json, [], prior, emitted, "void", reason, "void"), who
-            )
+            return await self._write(change, who, [*others, was], others)
         except DuplicateVersionError as exc:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 

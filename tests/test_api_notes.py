@@ -368,16 +368,23 @@ def test_amend_body_is_checked_as_documented(
     assert r.json()["issue"][0]["expression"] == [location]
 
 
-def test_a_note_moved_to_another_patient_leaves_the_first(api: Api) -> None:
+def test_a_note_cannot_be_moved_to_another_patient(api: Api) -> None:
+    # Moving a note would move its results between charts at every receiver (issue 14):
+    # the way is to void it with a reason and send a new note.
     key = post(api, ROUTINE).json()["id"]
     moved = routine()
     moved["patient"]["value"] = "HX777777"
-    assert amend(api, key, moved, reason="wrong patient chosen").status_code == 200
+    refused = amend(api, key, moved, reason="wrong patient chosen")
+    assert refused.status_code == 422
+    issue = refused.json()["issue"][0]
+    assert issue["expression"] == ["note.patient"]
+    assert "void this note with a reason" in issue["diagnostics"]
+    assert "HX777777" not in refused.text  # no patient identifier in an error
     system = moved["patient"]["system"]
     h = api.headers("analyst")
     old = api.client.get("/notes", params={"patient": f"{system}|HX100234"}, headers=h).json()
     new = api.client.get("/notes", params={"patient": f"{system}|HX777777"}, headers=h).json()
-    assert (old["total"], new["total"]) == (0, 1)
+    assert (old["total"], new["total"]) == (1, 0)
 
 
 def test_upper_case_ids_name_the_same_note(api: Api) -> None:

@@ -16,6 +16,7 @@ from service.derive import (
     energy_band,
     iop_course,
     opening_size,
+    recounted,
     risk,
     spike_grade,
     total_energy_mj,
@@ -111,6 +112,25 @@ def test_cumulative_energy_counts_only_earlier_sessions() -> None:
     assert c.session_number == 3
     assert c.cumulative_energy_mj == pytest.approx(62.5)
     assert c.days_since_last_session == 7
+
+
+def test_recounted_names_only_the_later_sessions_whose_totals_move() -> None:
+    def at(day: int, energy: float, key: str) -> PriorSession:
+        return PriorSession(datetime(2026, 11, day, 9, tzinfo=UTC), energy, key)
+
+    a, b, c = at(10, 10.0, "a"), at(17, 10.0, "b"), at(24, 10.0, "c")
+    late = at(3, 5.0, "late")
+    # A session arriving before all the others moves every later one, in session order.
+    assert recounted([b, a, c], [c, a, late, b]) == ["a", "b", "c"]
+    # One arriving between a and b moves b and c only.
+    assert recounted([a, b, c], [a, b, c, at(12, 5.0, "mid")]) == ["b", "c"]
+    # A last session moves nothing already stored; so does a change that keeps every total.
+    assert recounted([a, b], [a, b, c]) == []
+    assert recounted([a, b, c], [a, b, c]) == []
+    # Voiding a (after: without it) moves b and c; more energy in b moves b itself (the
+    # caller stores that as the amendment) and c, never a.
+    assert recounted([a, b, c], [b, c]) == ["b", "c"]
+    assert recounted([a, b, c], [a, at(17, 20.0, "b"), c]) == ["b", "c"]
 
 
 def test_first_session_has_no_gap() -> None:

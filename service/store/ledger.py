@@ -34,6 +34,7 @@ from sqlalchemy import and_, bindparam, func, insert, select, update
 from sqlalchemy.engine import Dialect
 from sqlalchemy.sql import ClauseElement
 
+from service.derive import PriorSession
 from service.store.tables import ApiToken, AuditEntry, FhirIndex, NoteVersion, OutboxEntry
 
 _NOTE = NoteVersion.__table__  # type: ignore[attr-defined]
@@ -53,15 +54,6 @@ class TokenRow:
 
     label: str
     role: str
-
-
-@dataclass(frozen=True, slots=True)
-class EarlierSession:
-    """An earlier session on the same eye, as the store holds it."""
-
-    note_key: str
-    started_at: datetime
-    total_energy_mj: float
 
 
 @dataclass(frozen=True, slots=True)
@@ -139,9 +131,12 @@ STATEMENTS: dict[str, ClauseElement] = {
     "hashes": select(_NOTE.c.content_hash)
     .where(_NOTE.c.note_key == bindparam("key"))
     .order_by(_NOTE.c.version),
-    # Latest versions of the patient's notes on this eye that started earlier: the inputs to
-    # cumulative energy (a note amended onto another patient counts under its newest one).
-    "earlier": select(_NOTE.c.note_key, _NOTE.c.started_at, _NOTE.c.total_energy_mj, _NOTE.c.status)
+    # Latest versions of the patient's notes on this eye, earlier and later: the inputs to
+    # cumulative energy, and the later sessions whose totals a new or changed session moves
+    # (a note amended onto another patient counts under its newest one).
+    "eye_sessions": select(
+        _NOTE.c.note_key, _NOTE.c.started_at, _NOTE.c.total_energy_mj, _NOTE.c.status
+    )
     .join(
         _newest_of_patient,
         and_(
@@ -149,7 +144,7 @@ STATEMENTS: dict[str, ClauseElement] = {
             _NOTE.c.version == _newest_of_patient.c.v,
         ),
     )
-    .where(_NOTE.c.eye == bindparam("eye"), _NOTE.c.started_at < bindparam("before"))
+    .where(_NOTE.c.eye == bindparam("eye"))
     .order_by(_NOTE.c.started_at, _NOTE.c.note_key)
     .limit(10_000),
     "latest": select(*(_NOTE.c[name] for name in VERSION_COLUMNS))
@@ -244,17 +239,18 @@ class Ledger(ABC):
 
     @abstractmethod
     async def before_write(
-        self, key: str, patient: tuple[str, str], eye: str, before: datetime
-    ) -> tuple[list[str], list[EarlierSession]]:
+        self, key: str, patient: tuple[str, str], eye: str
+    ) -> tuple[list[str], list[PriorSession]]:
         """For a submission: the content digests of the note's stored versions (none for a
-        new note) and the eye's earlier sessions (excluding this note and voided ones)."""
+        new note) and the eye's other sessions, earlier and later, in session order
+        (excluding this note and voided ones)."""
 
-    async def earlier_sessions(
-        self, key: str, patient: tuple[str, str], eye: str, before: datetime
-    ) -> list[EarlierSession]:
-        """The eye's earlier sessions (see before_write); for amendments and voids."""
-        _hashes, earlier = await self.before_write(key, patient, eye, before)
-        return earlier
+    async def eye_sessions(
+        self, key: str, patient: tuple[str, str], eye: str
+    ) -> list[PriorSession]:
+        """The eye's other sessions (see before_write); for amendments and voids."""
+        _hashes, sessions = await self.before_write(key, patient, eye)
+        return sessions
 
     async def latest(self, key: str) -> VersionRow | None:
         """The newest version of a note, or None."""
@@ -289,11 +285,11 @@ def token_row(row: Sequence[Any] | None, digest: str) -> TokenRow | None:
     return TokenRow(label=row[1], role=row[2])
 
 
-def earlier_from_rows(key: str, rows: Sequence[Sequence[Any]]) -> list[EarlierSession]:
-    """EarlierSession from (note_key, started_at, total_energy_mj, status) rows, leaving out
+def sessions_from_rows(key: str, rows: Sequence[Sequence[Any]]) -> list[PriorSession]:
+    """PriorSession from (note_key, started_at, total_energy_mj, status) rows, leaving out
     the note itself and voided notes."""
     return [
-        EarlierSession(k, read_moment(started), energy or 0.0)
+        PriorSession(read_moment(started), energy or 0.0, k)
         for k, started, energy, status in rows
         if k != key and status != "void"
     ]

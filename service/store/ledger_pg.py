@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import asyncio
 from collections.abc import Sequence
-from datetime import UTC, datetime
+from datetime import UTC
 from typing import Any
 
 import psycopg
@@ -22,17 +22,17 @@ from psycopg_pool import AsyncConnectionPool, PoolTimeout
 from sqlalchemy.dialects.postgresql import psycopg as pg_dialect
 from sqlalchemy.engine import make_url
 
+from service.derive import PriorSession
 from service.errors import UnavailableError
 from service.store.ledger import (
     VERSION_COLUMNS,
     DuplicateVersionError,
-    EarlierSession,
     Ledger,
     NewVersion,
     TokenRow,
     VersionRow,
     compiled,
-    earlier_from_rows,
+    sessions_from_rows,
     token_row,
     version_row,
 )
@@ -43,19 +43,19 @@ POOL_SIZE = 8
 POOL_WAIT_S = 5.0
 
 # A submission's reads in one statement: the note's stored digests ('hash' rows) and the
-# latest versions of the patient's other notes on this eye that started earlier ('earlier'
+# latest versions of the patient's other notes on this eye earlier and later ('session'
 # rows; a note amended onto another patient counts under its newest one).
 _BEFORE_WRITE = """
 SELECT 'hash', content_hash, NULL::timestamptz, NULL::float8, NULL::varchar
 FROM note_version WHERE note_key = %(key)s
 UNION ALL
-(SELECT 'earlier', v.note_key, v.started_at, v.total_energy_mj, v.status
+(SELECT 'session', v.note_key, v.started_at, v.total_energy_mj, v.status
  FROM note_version v
  JOIN (SELECT note_key, max(version) AS newest FROM note_version
        WHERE patient_system = %(patient_system)s AND patient_value = %(patient_value)s
        GROUP BY note_key) n
    ON v.note_key = n.note_key AND v.version = n.newest
- WHERE v.eye = %(eye)s AND v.started_at < %(before)s
+ WHERE v.eye = %(eye)s
  ORDER BY v.started_at, v.note_key
  LIMIT 10000)
 """
@@ -159,19 +159,13 @@ class PostgresLedger(Ledger):
         return token_row(rows[0] if rows else None, digest)
 
     async def before_write(
-        self, key: str, patient: tuple[str, str], eye: str, before: datetime
-    ) -> tuple[list[str], list[EarlierSession]]:
-        """The note's stored digests and the eye's earlier sessions, in one statement."""
-        params = {
-            "key": key,
-            "patient_system": patient[0],
-            "patient_value": patient[1],
-            "eye": eye,
-            "before": before.astimezone(UTC),
-        }
+        self, key: str, patient: tuple[str, str], eye: str
+    ) -> tuple[list[str], list[PriorSession]]:
+        """The note's stored digests and the eye's other sessions, in one statement."""
+        params = {"key": key, "patient_system": patient[0], "patient_value": patient[1], "eye": eye}
         rows = await self._rows(_BEFORE_WRITE, params)
         hashes = [row[1] for row in rows if row[0] == "hash"]
-        return hashes, earlier_from_rows(key, [row[1:] for row in rows if row[0] == "earlier"])
+        return hashes, sessions_from_rows(key, [row[1:] for row in rows if row[0] == "session"])
 
     async def _versions(self, statement: str, params: dict[str, Any]) -> list[VersionRow]:
         sql = self._sql[statement]

@@ -23,18 +23,18 @@ from typing import Any, TypeVar
 from sqlalchemy.dialects import sqlite as sqlite_dialect
 from sqlalchemy.engine import make_url
 
+from service.derive import PriorSession
 from service.errors import UnavailableError
 from service.store.ledger import (
     VERSION_COLUMNS,
     DuplicateVersionError,
-    EarlierSession,
     Ledger,
     NewVersion,
     Sql,
     TokenRow,
     VersionRow,
     compiled,
-    earlier_from_rows,
+    sessions_from_rows,
     token_row,
     version_row,
 )
@@ -137,20 +137,15 @@ class SqliteLedger(Ledger):
         return await self._run(work)
 
     async def before_write(
-        self, key: str, patient: tuple[str, str], eye: str, before: datetime
-    ) -> tuple[list[str], list[EarlierSession]]:
-        """The note's stored digests and the eye's earlier sessions (see Ledger)."""
-        hashes_sql, earlier_sql = self._sql["hashes"], self._sql["earlier"]
-        params = {
-            "patient_system": patient[0],
-            "patient_value": patient[1],
-            "eye": eye,
-            "before": _moment(before),
-        }
+        self, key: str, patient: tuple[str, str], eye: str
+    ) -> tuple[list[str], list[PriorSession]]:
+        """The note's stored digests and the eye's other sessions (see Ledger)."""
+        hashes_sql, earlier_sql = self._sql["hashes"], self._sql["eye_sessions"]
+        params = {"patient_system": patient[0], "patient_value": patient[1], "eye": eye}
 
-        def work(connection: sqlite3.Connection) -> tuple[list[str], list[EarlierSession]]:
+        def work(connection: sqlite3.Connection) -> tuple[list[str], list[PriorSession]]:
             hashes = [digest for (digest,) in _all(connection, hashes_sql, {"key": key})]
-            return hashes, earlier_from_rows(key, _all(connection, earlier_sql, params))
+            return hashes, sessions_from_rows(key, _all(connection, earlier_sql, params))
 
         return await self._run(work)
 
