@@ -8,10 +8,18 @@ trade's own terms; see schemas/README.md for the contract's rules.
 
 from __future__ import annotations
 
+import math
 from datetime import date
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StringConstraints
+from pydantic import (
+    AwareDatetime,
+    BaseModel,
+    ConfigDict,
+    Field,
+    StringConstraints,
+    model_validator,
+)
 
 # Control characters (NUL above all) are refused everywhere: databases cannot store some,
 # and none belongs in a clinical note.
@@ -199,10 +207,28 @@ class Series(Contract):
 
 
 class Focus(Contract):
-    """Where the treatment beam was focused relative to the capsule."""
+    """Where the treatment beam was focused relative to the capsule.
+
+    The distance is stored in millimetres; a sender may give it in micrometres instead, as
+    lasers display the posterior offset (distance_um: 150 is stored as distance_mm 0.15).
+    """
 
     method: FocusMethod
     distance_mm: float | None = None
+    distance_um: float | None = None
+
+    @model_validator(mode="before")
+    @classmethod
+    def _one_unit(cls, data: Any) -> Any:
+        # Only a bare micrometre number is moved; anything else (both units, a string) is
+        # left for the type checks and the rules to name at the field the sender used.
+        if not isinstance(data, dict) or "distance_mm" in data:
+            return data
+        um = data.get("distance_um")
+        if isinstance(um, bool) or not isinstance(um, int | float) or not math.isfinite(um):
+            return data
+        rest = {k: v for k, v in data.items() if k != "distance_um"}
+        return {**rest, "distance_mm": round(um / 1000, 6)}
 
 
 class ContactLens(Contract):

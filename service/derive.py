@@ -79,6 +79,10 @@ class RiskReason:
 
     code: str
     text: str
+    # What the reason changes in the follow-up, and why: from the policy's [risk_reasons],
+    # shown beside the due dates so nobody has to guess why a review came early.
+    changes: str = ""
+    source: str = ""
 
 
 @dataclass(frozen=True, slots=True)
@@ -316,7 +320,8 @@ def risk(factors: RiskFactors, course: IopCourse, band: EnergyBand, policy: Poli
     reasons: list[RiskReason] = []
 
     def add(code: str, text: str) -> None:
-        reasons.append(RiskReason(code=code, text=text))
+        entry = policy.risk_reasons[code]  # the policy has an entry for every code
+        reasons.append(RiskReason(code, text, entry.changes, entry.source))
 
     if factors.glaucoma in t.glaucoma_severities.values:
         add("glaucoma", f"glaucoma ({factors.glaucoma})")

@@ -22,7 +22,9 @@ from typing import Any
 import pytest
 
 from service.assess import Assessment, Assessor
-from tests.conftest import NOW
+from service.errors import PolicyError
+from service.policy import load_policy
+from tests.conftest import NOW, Api
 
 DAY = "2026-11-25"  # a Wednesday, an open clinic day in the default calendar
 
@@ -287,3 +289,128 @@ def test_burst_mode_needs_its_count(assessor: Assessor) -> None:
     note["laser"]["mode"] = "burst"
     a = run(assessor, note)
     assert ("missing-field", "laser.pulses_per_burst") in {(f.code, f.location) for f in a.findings}
+
+
+def test_focus_offset_in_micrometres_is_stored_in_millimetres(assessor: Assessor) -> None:
+    # Lasers display the posterior offset in um; 100-200 um protects the IOL (CRST Europe
+    # clinical article), inside the usual 0.1-0.5 mm (common practice).
+    note = uncomplicated()
+    note["laser"]["focus"] = {"method": "posterior-offset", "distance_um": 150}
+    a = run(assessor, note)
+    assert a.accepted
+    assert a.note is not None
+    assert a.note.laser.focus is not None
+    assert a.note.laser.focus.distance_mm == 0.15
+    assert "distance_um" not in a.note.model_dump_json(exclude_none=True)  # one stored unit
+    assert "focus-outside-usual" not in codes_of(a, "warning")
+    # 800 um is outside the usual offsets: the warning names the stored field.
+    note["laser"]["focus"] = {"method": "posterior-offset", "distance_um": 800}
+    (f,) = [f for f in run(assessor, note).findings if f.code == "focus-outside-usual"]
+    assert f.location == "laser.focus.distance_mm"
+    # Both units at once is refused at the micrometre field.
+    note["laser"]["focus"] = {"method": "posterior-offset", "distance_mm": 0.15, "distance_um": 150}
+    a = run(assessor, note)
+    assert not a.accepted
+    assert ("field-not-allowed", "laser.focus.distance_um") in {
+        (f.code, f.location) for f in a.findings
+    }
+
+
+def test_lens_magnification_and_burst_count_limits_come_from_the_policy(
+    assessor: Assessor, tmp_path: Any
+) -> None:
+    # Defaults (from memory): lenses magnify the laser spot 1 to 3 times; bursts of 2 or 3.
+    note = uncomplicated()
+    note["laser"]["contact_lens"] = {"used": True, "lens": "site lens A", "magnification": 3.5}
+    note["laser"]["mode"] = "burst"
+    note["laser"]["pulses_per_burst"] = 4
+    found = {(f.code, f.location): f for f in run(assessor, note).findings}
+    magnification = found["out-of-range", "laser.contact_lens.magnification"]
+    assert magnification.allowed == ">= 1 and <= 3 times"
+    assert found["out-of-range", "laser.pulses_per_burst"].allowed == ">= 2 and <= 3 pulses"
+    # A site with a four-pulse laser and a 4x lens sets its own limits.
+    site = tmp_path / "site.toml"
+    site.write_text("[limits.pulses_per_burst]\nmax = 4\n[limits.lens_magnification]\nmax = 4\n")
+    local = Assessor(load_policy(site))
+    assert not {f.location for f in run(local, note).findings if f.severity.value == "error"} & {
+        "laser.pulses_per_burst",
+        "laser.contact_lens.magnification",
+    }
+
+
+def test_a_site_lens_outside_the_magnification_limits_is_refused_at_start(tmp_path: Any) -> None:
+    site = tmp_path / "site.toml"
+    site.write_text('[[contact_lenses]]\nname = "lens B"\nmagnification = 7\nsource = "site"\n')
+    with pytest.raises(PolicyError, match=r"lens B.*outside limits\.lens_magnification"):
+        load_policy(site)
+
+
+def test_each_risk_reason_says_what_it_changes_and_why(assessor: Assessor) -> None:
+    note = uncomplicated()
+    note["before"]["risk_factors"]["high_myopia"] = True
+    a = run(assessor, note)
+    assert a.derived is not None
+    (reason,) = a.derived.risk.reasons
+    assert reason.code == "high-myopia"
+    # default.toml [risk_reasons]: the raised review window is 5-10 days, routine 21-42.
+    assert reason.changes == "review at 5-10 days instead of 21-42 days"
+    assert "AAO Preferred Practice Pattern" in reason.source
+    review = next(d for d in a.due if d.kind == "review")
+    assert (review.target.date() - a.note.ended_at.date()).days == 7  # type: ignore[union-attr]
+
+
+# -- the three scenarios over HTTP, on SQLite and PostgreSQL -------------------------------
+
+
+def _post(api: Api, note: dict[str, Any]) -> Any:
+    return api.client.post("/notes", content=json.dumps(note), headers=api.headers("clinician"))
+
+
+def test_scenario_1_over_the_api_stores_only_what_was_entered(api: Api) -> None:
+    r = _post(api, uncomplicated())
+    assert r.status_code == 201
+    body = r.json()
+    assert [f for f in body["findings"] if f["severity"] in ("error", "warning")] == []
+    assert body["derived"]["risk"] == {"level": "routine", "reasons": []}
+    # Stored as sent: nothing the sender did not give (no IOL position, no centring).
+    stored = api.client.get(f"/notes/{body['id']}", headers=api.headers("analyst")).json()
+    assert stored["note"]["before"]["iol"] == {"optic_diameter_mm": 6.0}
+    assert "centred" not in stored["note"]["result"]["opening"]
+
+
+def test_scenario_2_over_the_api_books_the_next_day_check(api: Api) -> None:
+    r = _post(api, spike())
+    assert r.status_code == 201
+    body = r.json()
+    warnings = {f["code"] for f in body["findings"] if f["severity"] == "warning"}
+    assert {"glaucoma-total-energy", "glaucoma-no-prophylaxis", "iop-rise-severe"} <= warnings
+    assert "iop-action-unresolved" not in warnings
+    kinds = {d["kind"]: d for d in body["due"]}
+    assert kinds["iop-recheck"]["done_by_reading"] == 1  # the 2 h reading, not the 30
+    assert "next-day-iop" in kinds
+    reasons = {r["code"]: r for r in body["derived"]["risk"]["reasons"]}
+    assert "next-day IOP check" in reasons["iop-high"]["changes"]
+
+
+def test_scenario_3_over_the_api_refuses_to_sign_until_glaucoma_is_recorded(api: Api) -> None:
+    refused = _post(api, spike(glaucoma=None))
+    assert refused.status_code == 422
+    assert refused.headers["content-type"].startswith("application/fhir+json")
+    (issue,) = [
+        i
+        for i in refused.json()["issue"]
+        if i["details"]["coding"][0]["code"] == "glaucoma-status-required-to-sign"
+    ]
+    assert issue["expression"] == ["before.risk_factors.glaucoma"]
+    draft = _post(api, spike(glaucoma=None, status="draft"))
+    assert draft.status_code == 201
+    codes = {f["code"] for f in draft.json()["findings"]}
+    assert "glaucoma-not-recorded" in codes
+    assert not {"glaucoma-total-energy", "glaucoma-no-prophylaxis"} & codes
+    signed = api.client.put(
+        f"/notes/{draft.json()['id']}",
+        content=json.dumps({"note": spike()}),
+        headers=api.headers("clinician", **{"If-Match": 'W/"1"'}),
+    )
+    assert signed.status_code == 200
+    assert signed.json()["status"] == "final"

@@ -73,7 +73,12 @@ def test_defaults_come_from_the_policy_without_a_token(client: TestClient) -> No
     assert body["review_days_raised"] == 7  # [schedule.review_raised] 7 d
     assert body["wavelength_nm"] == 1064  # the Nd:YAG wavelength (Steinert, AAO)
     # Not recorded until entered: the contract assumes no optic diameter (schemas/note.py Iol).
-    assert body["iol_optic_mm"] is None
+    assert "iol_optic_mm" not in body  # no optic size is assumed: it is entered or not
+    # The shipped lens list is one placeholder in the magnification limits (from memory:
+    # capsulotomy lenses magnify the laser spot about 1.2 to 2 times).
+    assert body["contact_lenses"] == [
+        {"name": "Capsulotomy lens (example, 1.6x)", "magnification": 1.6}
+    ]
     assert "not a certified medical device" in body["caution"]
 
 

@@ -13,7 +13,7 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import FileResponse, Response
 
-from schemas.note import Iol, LaserSettings
+from schemas.note import LaserSettings
 from service.api.media import json_response
 from service.errors import NotFoundError
 from service.policy.model import Policy, Window
@@ -73,12 +73,16 @@ def form_defaults(policy: Policy) -> dict[str, Any]:
         "holiday_country": policy.calendar.holiday_country,
         "holiday_subdivision": policy.calendar.holiday_subdivision,
         "wavelength_nm": LaserSettings.model_fields["wavelength_nm"].default,
-        "iol_optic_mm": Iol.model_fields["optic_diameter_mm"].default,
         "iop_recheck_minutes": _minutes(schedule.iop_recheck),
         "review_days_routine": _days(schedule.review_routine),
         "review_days_raised": _days(schedule.review_raised),
         "usual_pulse_energy_max_mj": policy.thresholds.usual_pulse_energy_max_mj.value,
         "opening_min_mm": policy.thresholds.opening_min_mm.value,
+        # The site's lens list: choosing one fills its magnification into the note.
+        "contact_lenses": [
+            {"name": lens.name, "magnification": lens.magnification}
+            for lens in policy.contact_lenses
+        ],
         "note_id_system": FORM_NOTE_SYSTEM,
         "caution": FORM_CAUTION,
         "service_caution": CAUTION,

@@ -26,7 +26,13 @@ class PolicyPart(BaseModel):
 
 
 # UCUM codes that read badly in a sentence, and what people write instead.
-_SPOKEN_UNITS = {"mm[Hg]": "mmHg", "{pulses}": "pulses", "{logMAR}": "logMAR", "/d": "per day"}
+_SPOKEN_UNITS = {
+    "mm[Hg]": "mmHg",
+    "{pulses}": "pulses",
+    "{logMAR}": "logMAR",
+    "/d": "per day",
+    "1": "times",
+}
 
 
 def spoken_unit(ucum: str) -> str:
@@ -115,6 +121,8 @@ class Limits(PolicyPart):
     pulses_per_series: Range
     wavelength_nm: Range
     focus_distance_mm: Range
+    lens_magnification: Range
+    pulses_per_burst: Range
     cone_angle_deg: Range
     opening_mm: Range
     iol_optic_mm: Range
@@ -271,6 +279,15 @@ class RiskReasonPolicy(PolicyPart):
     source: str
 
 
+class ContactLensPolicy(PolicyPart):
+    """One capsulotomy contact lens the site keeps: the name the form offers and its
+    laser-spot magnification, which steepens the focal cone (service.derive)."""
+
+    name: str = Field(min_length=1, max_length=100)
+    magnification: float | None = None
+    source: str
+
+
 def _unknown(found: Iterable[str], known: frozenset[str], what: str) -> None:
     unknown = sorted(set(found) - known)
     if unknown:
@@ -289,6 +306,9 @@ class Policy(PolicyPart):
     severity: dict[str, SeverityPolicy] = {}
     # Risk reason code -> what it means and changes; every code of derive.risk() is here.
     risk_reasons: dict[str, RiskReasonPolicy]
+    # The site's capsulotomy contact lenses, as the form offers them; a site file's list
+    # replaces this one.
+    contact_lenses: list[ContactLensPolicy] = []
 
     @field_validator("severity")
     @classmethod
@@ -304,6 +324,17 @@ class Policy(PolicyPart):
         if missing:
             raise ValueError(f"risk reasons without an entry: {', '.join(missing)}")
         return value
+
+    @model_validator(mode="after")
+    def _lenses_in_limits(self) -> Policy:
+        bounds = self.limits.lens_magnification
+        for lens in self.contact_lenses:
+            if lens.magnification is not None and not bounds.contains(lens.magnification):
+                raise ValueError(
+                    f"contact lens {lens.name!r}: magnification {lens.magnification:g} is "
+                    f"outside limits.lens_magnification ({bounds.describe()})"
+                )
+        return self
 
     def level_of(self, code: str) -> SeverityLevel | None:
         """The site's level for a clinical finding code, or None when the policy has none."""
