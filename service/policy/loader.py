@@ -88,6 +88,6 @@ def load_policy(site_file: Path | None = None) -> Policy:
         return Policy.model_validate(data)
     except ValidationError as exc:
         problems = "; ".join(
-            f"{'.'.join(str(p) for p in e['loc'])}: {e['msg']}" for e in exc.errors()
+            f"{'.'.join(str(p) for p in e['loc']) or 'policy'}: {e['msg']}" for e in exc.errors()
         )
         raise PolicyError(f"site policy is invalid: {problems}") from exc
