@@ -3,6 +3,7 @@ processes, load runs (wrk, or bench/loadgen.py without it), notes to send, and t
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import importlib.metadata
 import json
@@ -23,11 +24,9 @@ ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:  # run as `python bench/run.py`: the repository is the root
     sys.path.insert(0, str(ROOT))
 
-from sqlmodel import Session  # noqa: E402
 
 from bench import wrk  # noqa: E402
-from service.store import repository  # noqa: E402
-from service.store.database import make_engine, upgrade  # noqa: E402
+from service.store.database import migrate, open_store  # noqa: E402
 
 PYTHON = sys.executable
 CAPNOTE = [PYTHON, "-c", "from service.cli import main; main()"]
@@ -223,13 +222,17 @@ def write_ndjson(path: Path, lines: int) -> None:
 
 def token(url: str, role: str) -> str:
     """A fresh bearer token in the database at url (migrated first)."""
-    engine = make_engine(url)
-    upgrade(engine)
-    with Session(engine) as session:
-        text, _row = repository.new_token(session, role, f"bench {role}", NOW)
-        session.commit()
-    engine.dispose()
-    return text
+    migrate(url)
+
+    async def make() -> str:
+        store = open_store(url)
+        try:
+            text, _id = await store.new_token(role, f"bench {role}", NOW)
+            return text
+        finally:
+            await store.aclose()
+
+    return asyncio.run(make())
 
 
 def auth(tok: str) -> dict[str, str]:

@@ -42,7 +42,6 @@ if __package__ in (None, ""):  # run as `python bench/run.py`: the repository is
     sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import orjson
-from sqlalchemy import event
 
 from bench.harness import (
     CAPNOTE_ENTRY,
@@ -74,7 +73,7 @@ from service.fhir.validate import validate_resource
 from service.notes import Change, NoteService, Principal, note_key
 from service.policy import load_policy
 from service.rules import Context, check_payload
-from service.store.database import make_engine, open_ledger
+from service.store.database import migrate, open_store
 
 
 @dataclass(frozen=True)
@@ -314,7 +313,7 @@ def _note_text(template: str, i: int) -> str:
 def fill(service: NoteService, start: int, stop: int, template: str) -> None:
     """Store notes start..stop-1: the first through NoteService.submit (POST /notes' path),
     the rest prepared by the same code (NoteService.prepare) and written 500 to a
-    transaction (Ledger.write_many), checked against the first.
+    transaction (Store.write_many), checked against the first.
 
     Submitting 100,000 notes one transaction each would take most of the run's time; the
     reads measured afterwards see the same rows either way.
@@ -334,7 +333,7 @@ def fill(service: NoteService, start: int, stop: int, template: str) -> None:
                 _prepared(service, _note_text(template, i).encode(), who)[0]
                 for i in range(first, min(first + 500, stop))
             ]
-            await service.ledger.write_many(batch, forward=False)
+            await service.store.write_many(batch, forward=False)
 
     asyncio.run(load_all())
 
@@ -348,12 +347,6 @@ def _prepared(service: NoteService, payload: bytes, who: Principal) -> Any:
         note_key(note), note, note_json, findings, (), Version(1), note.status, None, "create"
     )
     return service.prepare(change, who)
-
-
-def _no_sync(dbapi_connection: Any, _record: Any) -> None:
-    cursor = dbapi_connection.cursor()
-    cursor.execute("PRAGMA synchronous=OFF")
-    cursor.close()
 
 
 _READS = {
@@ -401,12 +394,9 @@ def part_store(plan: Plan, report: Report, work: Path) -> None:
     path = work / "store.sqlite3"
     url = f"sqlite:///{path}"
     tok = token(url, "clinician")
-    engine = make_engine(url)
-    # Loading is set-up, not measurement: the loader's own connections skip the fsyncs of
-    # WAL checkpoints (the server measured afterwards opens its own, as configured).
-    event.listen(engine, "connect", _no_sync)
-    ledger = open_ledger(url)
-    service = NoteService(engine, ledger, Assessor(load_policy()), lambda: NOW)
+    migrate(url)
+    store = open_store(url)
+    service = NoteService(store, Assessor(load_policy()), lambda: NOW)
     template = note_template()
     stores: dict[int, Path] = {}
     stored = 0
@@ -426,8 +416,7 @@ def part_store(plan: Plan, report: Report, work: Path) -> None:
         "A stored Bundle read back after loading validates with the R4B models and the "
         f"required bindings: {'yes' if not problems else f'NO, {problems[:3]}'}."
     )
-    asyncio.run(ledger.aclose())
-    engine.dispose()
+    asyncio.run(store.aclose())
     # Every size is served at once. Each read is measured at every size back to back, in short
     # runs, round after round: the machine's speed drifts (by half, between spells of tens of
     # seconds), so sizes are compared within a round, where they ran seconds apart, and the

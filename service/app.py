@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
+import asyncio
 import gc
-import threading
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 from datetime import UTC, datetime
@@ -12,15 +12,18 @@ from fastapi import FastAPI
 from fastapi.middleware.cors import CORSMiddleware
 
 from service import __version__
+from service.access import Access
 from service.api import audit, docs, errors, fhir, health, notes, web
 from service.api.guard import Guard
 from service.api.headers import SecurityHeaders
 from service.api.limits import BodyLimit
 from service.assess import Assessor
+from service.audit_trail import AuditTrail
 from service.config import Settings, effective_policy
 from service.delivery import DeliveryWorker
+from service.fhir_reads import FhirReads
 from service.notes import Clock, NoteService
-from service.store.database import make_engine, open_ledger, upgrade
+from service.store.database import migrate, open_store
 
 DESCRIPTION = (
     "Structured, checked records of Nd:YAG laser posterior capsulotomy sessions, emitted as "
@@ -38,11 +41,10 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     """The whole service for these settings."""
     settings = settings or Settings()
     policy = effective_policy(settings)
-    engine = make_engine(settings.database_url)
     if settings.migrate_on_start:
-        upgrade(engine)
+        migrate(settings.database_url)
     receiver = settings.receiver()
-    ledger = open_ledger(settings.database_url)
+    store = open_store(settings.database_url)
 
     @asynccontextmanager
     async def lifespan(_app: FastAPI) -> AsyncIterator[None]:
@@ -51,21 +53,23 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         # collection, which otherwise costs about a tenth of each request's time.
         gc.collect()
         gc.freeze()
-        await ledger.start()
-        # Delivery runs beside the service when forwarding is on; claims in the database keep
-        # several processes from sending one entry twice.
-        stop = threading.Event()
-        worker = thread = None
+        await store.start()
+        # Delivery runs beside the service when forwarding is on, as a task on the same
+        # store; claims in the database keep several processes from sending one entry twice.
+        stop = asyncio.Event()
+        worker = task = None
         if receiver is not None and settings.deliver_in_service:
-            worker = DeliveryWorker(engine, receiver, clock)
-            thread = threading.Thread(target=worker.run_forever, args=(stop,), daemon=True)
-            thread.start()
+            worker = DeliveryWorker(store, receiver, clock)
+            task = asyncio.create_task(worker.run_forever(stop))
         yield
         stop.set()
-        if thread is not None and worker is not None:
-            thread.join(timeout=10)
-            worker.close()
-        await ledger.aclose()
+        if task is not None and worker is not None:
+            try:
+                await asyncio.wait_for(task, timeout=10)
+            except TimeoutError:
+                task.cancel()
+            await worker.aclose()
+        await store.aclose()
 
     # No /docs or /redoc: both pages load their scripts from a CDN, which the CSP (and many
     # hospital networks) refuse; the OpenAPI document itself is at /openapi.json.
@@ -77,10 +81,12 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         docs_url=None,
         redoc_url=None,
     )
-    app.state.engine = engine
-    app.state.ledger = ledger
+    # The services routes ask for (service.api.deps); nothing else is kept on the app.
     assessor = Assessor(policy, output_check=settings.output_check)
-    app.state.notes = NoteService(engine, ledger, assessor, clock, forward=receiver is not None)
+    app.state.notes = NoteService(store, assessor, clock, forward=receiver is not None)
+    app.state.fhir_reads = FhirReads(store)
+    app.state.audit_trail = AuditTrail(store)
+    app.state.access = Access(store)
     app.state.settings = settings
     errors.install(app)
     docs.install(app)

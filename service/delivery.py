@@ -8,9 +8,10 @@ longer); any other 4xx parks the entry with the receiver's OperationOutcome for 
 
 from __future__ import annotations
 
+import asyncio
+import contextlib
 import logging
 import random
-import threading
 import time
 import uuid
 from collections.abc import Callable
@@ -19,11 +20,9 @@ from datetime import UTC, datetime, timedelta
 from email.utils import parsedate_to_datetime
 
 import httpx
-import orjson
-from sqlalchemy import Engine
-from sqlmodel import Session
 
-from service.store import outbox
+from service.store.base import Store
+from service.store.codec import unpack_bundle
 
 log = logging.getLogger("capnote.delivery")
 FHIR_JSON = "application/fhir+json"
@@ -44,17 +43,17 @@ class Receiver:
 class Credentials:
     """A bearer token: the configured one, or one fetched by OAuth2 client credentials."""
 
-    def __init__(self, receiver: Receiver, client: httpx.Client) -> None:
+    def __init__(self, receiver: Receiver, client: httpx.AsyncClient) -> None:
         self.receiver = receiver
         self.client = client
         self._token: str | None = receiver.token
         self._expires = 0.0
 
-    def header(self) -> dict[str, str]:
+    async def header(self) -> dict[str, str]:
         """The Authorization header, fetching or renewing an OAuth2 token when needed."""
         r = self.receiver
         if r.token_url and (self._token is None or time.monotonic() >= self._expires):
-            answer = self.client.post(
+            answer = await self.client.post(
                 r.token_url,
                 data={"grant_type": "client_credentials"},
                 auth=(r.client_id or "", r.client_secret or ""),
@@ -105,10 +104,10 @@ class DeliveryWorker:
 
     def __init__(
         self,
-        engine: Engine,
+        store: Store,
         receiver: Receiver,
         clock: Callable[[], datetime] = lambda: datetime.now(UTC),
-        client: httpx.Client | None = None,
+        client: httpx.AsyncClient | None = None,
         *,
         max_attempts: int = 12,
         base_delay_s: float = 1.0,
@@ -116,11 +115,11 @@ class DeliveryWorker:
         lease: timedelta = timedelta(seconds=120),
         rng: random.Random | None = None,
     ) -> None:
-        self.engine = engine
+        self.store = store
         self.receiver = receiver
         self.clock = clock
         self._own_client = client is None
-        self.client = client or httpx.Client()
+        self.client = client or httpx.AsyncClient()
         self.credentials = Credentials(receiver, self.client)
         self.worker_id = f"worker-{uuid.uuid4().hex[:12]}"
         self.max_attempts = max_attempts
@@ -135,46 +134,45 @@ class DeliveryWorker:
         delay *= 0.5 + self.rng.random() / 2
         return timedelta(seconds=max(delay, asked or 0.0))
 
-    def run_once(self, limit: int = 20) -> int:
+    async def run_once(self, limit: int = 20) -> int:
         """Deliver what is due now; the number of entries tried."""
-        with Session(self.engine) as session:
-            entries = outbox.claim(session, self.worker_id, self.clock(), self.lease, limit)
-            for entry in entries:
-                assert entry.id is not None
-                self._deliver(session, entry.id, entry.attempts, outbox.bundle_of(session, entry))
+        entries = await self.store.claim(self.worker_id, self.clock(), self.lease, limit)
+        for entry in entries:
+            bundle = unpack_bundle(await self.store.bundle_of(entry))
+            await self._deliver(entry.id, entry.attempts, bundle)
         return len(entries)
 
-    def _deliver(self, session: Session, entry_id: int, attempts: int, bundle: bytes) -> None:
+    async def _deliver(self, entry_id: int, attempts: int, bundle: bytes) -> None:
         now = self.clock()
         try:
-            headers = {"Content-Type": FHIR_JSON, "Accept": FHIR_JSON, **self.credentials.header()}
-            answer = self.client.post(
+            credentials = await self.credentials.header()
+            headers = {"Content-Type": FHIR_JSON, "Accept": FHIR_JSON, **credentials}
+            answer = await self.client.post(
                 self.receiver.base_url,
                 content=bundle,
                 headers=headers,
                 timeout=self.receiver.timeout_s,
             )
         except httpx.HTTPError as exc:
-            self._again(session, entry_id, attempts, None, f"network: {type(exc).__name__}", None)
+            await self._again(entry_id, attempts, None, f"network: {type(exc).__name__}", None)
             return
         status = answer.status_code
         if 200 <= status < 300 and all_entries_succeeded(answer):
-            outbox.delivered(session, entry_id, self.worker_id, status, now)
+            await self.store.delivered(entry_id, self.worker_id, status, now)
             return
         if status == 401:
             self.credentials.forget()
         if status == 429 or status >= 500:
-            self._again(
-                session, entry_id, attempts, status, answer.text[:2000], retry_after(answer, now)
+            await self._again(
+                entry_id, attempts, status, answer.text[:2000], retry_after(answer, now)
             )
             return
         # A 4xx (or a 2xx that is no successful transaction-response) will not mend by itself.
-        outbox.park(session, entry_id, self.worker_id, status, answer.text[:4000])
+        await self.store.park(entry_id, self.worker_id, status, answer.text[:4000])
         log.warning("delivery parked: outbox entry %s answered %s", entry_id, status)
 
-    def _again(
+    async def _again(
         self,
-        session: Session,
         entry_id: int,
         attempts: int,
         status: int | None,
@@ -182,8 +180,7 @@ class DeliveryWorker:
         asked: float | None,
     ) -> None:
         if attempts >= self.max_attempts:
-            outbox.park(
-                session,
+            await self.store.park(
                 entry_id,
                 self.worker_id,
                 status,
@@ -191,30 +188,21 @@ class DeliveryWorker:
             )
             return
         at = self.clock() + self.backoff(attempts, asked)
-        outbox.retry_later(session, entry_id, self.worker_id, status, error, at)
+        await self.store.retry_later(entry_id, self.worker_id, status, error, at)
 
-    def close(self) -> None:
+    async def aclose(self) -> None:
         """Close the HTTP client this worker made (a caller's own client stays open)."""
         if self._own_client:
-            self.client.close()
+            await self.client.aclose()
 
-    def run_forever(self, stop: threading.Event, idle_s: float = 1.0) -> None:
+    async def run_forever(self, stop: asyncio.Event, idle_s: float = 1.0) -> None:
         """Deliver until stop is set; never dies on a passing error."""
         while not stop.is_set():
             try:
-                busy = self.run_once()
+                busy = await self.run_once()
             except Exception:  # a database outage: wait and try again
                 log.warning("delivery loop error", exc_info=False)
                 busy = 0
             if not busy:
-                stop.wait(idle_s)
-
-
-def outcome_text(entry_error: str | None) -> object:
-    """The receiver's stored answer, as JSON when it was JSON."""
-    if not entry_error:
-        return None
-    try:
-        return orjson.loads(entry_error)
-    except orjson.JSONDecodeError:
-        return entry_error
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(stop.wait(), idle_s)

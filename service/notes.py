@@ -4,7 +4,7 @@ Idempotency and uniqueness rest on the database: the note key is derived from th
 note identifier, and (note key, version) is unique, so two processes racing to store the same
 note make one row and the loser reads the winner's.
 
-The methods are coroutines because the store's calls are (service.store.ledger); the
+The methods are coroutines because the store's calls are (service.store.base); the
 clinical work between them (checks, derived values, schedule, Bundle) is plain computation
 and runs where it is called.
 """
@@ -18,8 +18,6 @@ from datetime import datetime
 from typing import Any
 
 import orjson
-from sqlalchemy import Engine
-from sqlmodel import Session
 
 from schemas.note import Note
 from service.assess import Assessment, Assessor
@@ -30,16 +28,15 @@ from service.fhir.readmodel import read_references, searchables
 from service.findings import Finding, has_errors
 from service.note_input import check_match, json_object, known_key, problem, reason_text
 from service.rules import Context, check_payload
-from service.store import repository as repo
-from service.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
-from service.store.ledger import (
+from service.store.base import (
     AuditRow,
     DuplicateVersionError,
     IndexRow,
-    Ledger,
     NewVersion,
+    Store,
     VersionRow,
 )
+from service.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
 from service.views import assessment_view
 
 Clock = Callable[[], datetime]
@@ -181,17 +178,13 @@ class NoteService:
 
     def __init__(
         self,
-        engine: Engine,
-        ledger: Ledger,
+        store: Store,
         assessor: Assessor,
         clock: Clock,
         *,
         forward: bool = False,
     ) -> None:
-        # The engine serves listings (SQLAlchemy sessions); the ledger everything a single
-        # note needs, submissions first.
-        self.engine = engine
-        self.ledger = ledger
+        self.store = store
         self.assessor = assessor
         self.clock = clock
         # With forwarding on, every stored version gets an outbox entry in its own transaction.
@@ -207,7 +200,7 @@ class NoteService:
 
     async def _others(self, note: Note, key: str) -> list[PriorSession]:
         """The eye's other sessions, earlier and later (cumulative() counts the earlier)."""
-        return await self.ledger.eye_sessions(
+        return await self.store.eye_sessions(
             key, (note.patient.system, note.patient.value), note.eye
         )
 
@@ -288,7 +281,7 @@ class NoteService:
             for other in recounted(before, after)
             if other != change.key
         ]
-        await self.ledger.write_many(
+        await self.store.write_many(
             [new, *(c for c in corrections if c is not None)], forward=self.forward
         )
         return stored
@@ -298,7 +291,7 @@ class NoteService:
     ) -> NewVersion | None:
         """A new version of a later session with its totals counted again: the same note, a
         system reason, and a Bundle that amends what the hospital record holds."""
-        latest = await self.ledger.latest(key)
+        latest = await self.store.latest(key)
         if latest is None or latest.status == "void":
             return None
         note = Note.model_validate_json(latest.note_json)
@@ -335,7 +328,7 @@ class NoteService:
         patient = (note.patient.system, note.patient.value)
         for _attempt in range(_ATTEMPTS):
             # One call for both reads: on PostgreSQL that is one trip to the server.
-            digests, others = await self.ledger.before_write(key, patient, note.eye)
+            digests, others = await self.store.before_write(key, patient, note.eye)
             if digests:
                 return False, await self._resent(key, digest, digests)
             change = Change(
@@ -353,7 +346,7 @@ class NoteService:
         """For a resend: the record as it stands now when any stored version has this content;
         a conflict when the note is stored with other content."""
         if digest in digests:
-            latest = await self.ledger.latest(key)
+            latest = await self.store.latest(key)
             if latest is not None:  # rows are never deleted: it is there
                 return _stored(latest)
         raise ConflictError(
@@ -440,7 +433,7 @@ class NoteService:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
     async def _latest(self, key: str) -> VersionRow:
-        latest = await self.ledger.latest(key)
+        latest = await self.store.latest(key)
         if latest is None:
             raise NotFoundError("no note with this id")
         return latest
@@ -451,9 +444,9 @@ class NoteService:
         """The latest version, or the one asked for."""
         key = known_key(key)
         row = (
-            await self.ledger.latest(key)
+            await self.store.latest(key)
             if version is None
-            else await self.ledger.version(key, version)
+            else await self.store.version(key, version)
         )
         if row is None:
             raise NotFoundError("no such note or version")
@@ -462,7 +455,7 @@ class NoteService:
     async def versions(self, key: str) -> list[dict[str, Any]]:
         """Every version's summary, oldest first."""
         key = known_key(key)
-        rows = await self.ledger.versions(key)
+        rows = await self.store.versions(key)
         if not rows:
             raise NotFoundError("no note with this id")
         return [
@@ -476,7 +469,7 @@ class NoteService:
             for r in rows
         ]
 
-    def search(
+    async def search(
         self,
         patient: tuple[str, str],
         eye: str | None,
@@ -486,6 +479,42 @@ class NoteService:
         limit: int,
     ) -> tuple[int, Sequence[StoredNote]]:
         """The latest version of each matching note, in session order."""
-        with Session(self.engine) as session:
-            total, rows = repo.latest_per_note(session, patient, eye, start, end, offset, limit)
-            return total, [_stored(repo.version_row(r)) for r in rows]
+        total, rows = await self.store.latest_per_note(patient, eye, start, end, offset, limit)
+        return total, [_stored(r) for r in rows]
+
+    async def delivery(self, key: str) -> dict[str, Any]:
+        """Where each version's Bundle stands on its way to the hospital's FHIR server."""
+        key = known_key(key)
+        entries = await self.store.outbox_of_note(key)
+        if not entries and not await self.store.note_exists(key):
+            raise NotFoundError("no note with this id")
+        return {
+            "id": key,
+            "forwarding": self.forward,
+            "deliveries": [
+                {
+                    "version": e.version,
+                    "state": e.state,
+                    "attempts": e.attempts,
+                    "last_status": e.last_status,
+                    "receiver_answer": receiver_answer(e.last_error),
+                    "next_attempt_at": e.next_attempt_at.isoformat(),
+                    "delivered_at": e.delivered_at.isoformat() if e.delivered_at else None,
+                }
+                for e in entries
+            ],
+        }
+
+    async def ready(self) -> None:
+        """UnavailableError when the store does not answer."""
+        await self.store.ping()
+
+
+def receiver_answer(entry_error: str | None) -> object:
+    """The receiver's stored answer, as JSON when it was JSON."""
+    if not entry_error:
+        return None
+    try:
+        return orjson.loads(entry_error)
+    except orjson.JSONDecodeError:
+        return entry_error

@@ -12,15 +12,14 @@ from typing import Any, TypeVar
 
 import pytest
 from fastapi.testclient import TestClient
-from sqlmodel import Session
 
 from service.app import create_app
 from service.assess import Assessor
 from service.config import Settings
 from service.notes import NoteService, Principal, StoredNote
 from service.policy import Policy, load_policy
-from service.store import repository
-from service.store.database import make_engine, open_ledger, upgrade
+from service.store.base import Store
+from service.store.database import migrate, open_store
 from tests.pg_cluster import PgCluster
 from tests.pg_fixtures import postgres_cluster  # noqa: F401
 
@@ -67,12 +66,37 @@ def database_url(request: pytest.FixtureRequest, tmp_path: Path) -> str:
     return cluster.fresh_database(f"capnote_{next(_databases)}")
 
 
+def on_store(url: str, work: Callable[[Store], Coroutine[Any, Any, T]]) -> T:
+    """Run work on a store of the (migrated) database at url, in a loop of its own."""
+
+    async def run() -> T:
+        store = open_store(url)
+        try:
+            return await work(store)
+        finally:
+            await store.aclose()
+
+    return asyncio.run(run())
+
+
+def new_token(url: str, role: str, label: str, now: datetime = NOW) -> tuple[str, int]:
+    """A token in the database at url: (the token, its id)."""
+    migrate(url)
+    return on_store(url, lambda store: store.new_token(role, label, now))
+
+
+def revoke_token(url: str, token_id: int, now: datetime = NOW) -> bool:
+    """Revoke a token in the database at url."""
+    return on_store(url, lambda store: store.revoke_token(token_id, now))
+
+
 class Api:
     """A test client with a token per role."""
 
-    def __init__(self, client: TestClient, tokens: dict[str, str]) -> None:
+    def __init__(self, client: TestClient, tokens: dict[str, str], url: str) -> None:
         self.client = client
         self.tokens = tokens
+        self.url = url
 
     def headers(self, role: str | None, **extra: str) -> dict[str, str]:
         base = {"content-type": "application/json", **extra}
@@ -85,19 +109,17 @@ class Api:
 def api(database_url: str) -> Iterator[Api]:
     """The whole app on an empty database, with the clock at NOW."""
     app = create_app(Settings(database_url=database_url), clock=lambda: NOW)
-    tokens = {}
-    with Session(app.state.engine) as session:
-        for role in ("submitter", "clinician", "analyst", "auditor"):
-            tokens[role], _ = repository.new_token(session, role, f"test {role}", NOW)
-        session.commit()
+    tokens = {
+        role: new_token(database_url, role, f"test {role}")[0]
+        for role in ("submitter", "clinician", "analyst", "auditor")
+    }
     with TestClient(app) as client:
-        yield Api(client, tokens)
-    app.state.engine.dispose()
+        yield Api(client, tokens, database_url)
 
 
 class SyncNotes:
     """A NoteService called from plain test code: every call runs in one event loop of its
-    own (a PostgreSQL ledger's pool belongs to the loop that opened it)."""
+    own (a PostgreSQL store's pool belongs to the loop that opened it)."""
 
     def __init__(self, service: NoteService) -> None:
         self.service = service
@@ -122,16 +144,18 @@ class SyncNotes:
     def versions(self, key: str) -> list[dict[str, Any]]:
         return self.run(self.service.versions(key))
 
+    @property
+    def store(self) -> Store:
+        return self.service.store
+
     def close(self) -> None:
-        """Close the ledger (in its loop), the loop and the engine."""
-        self.run(self.service.ledger.aclose())
+        """Close the store (in its loop) and the loop."""
+        self.run(self.service.store.aclose())
         self._runner.close()
-        self.service.engine.dispose()
 
 
 def sync_notes(url: str, clock: Callable[[], datetime] = lambda: NOW, **kw: Any) -> SyncNotes:
     """A migrated database at url and a NoteService over it, called synchronously."""
-    engine = make_engine(url)
-    upgrade(engine)
-    service = NoteService(engine, open_ledger(url), Assessor(load_policy()), clock, **kw)
+    migrate(url)
+    service = NoteService(open_store(url), Assessor(load_policy()), clock, **kw)
     return SyncNotes(service)

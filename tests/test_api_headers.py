@@ -22,7 +22,6 @@ def client(tmp_path: Path) -> Iterator[TestClient]:
     app = create_app(settings, clock=lambda: NOW)
     with TestClient(app) as c:
         yield c
-    app.state.engine.dispose()
 
 
 def test_security_headers_on_every_answer(client: TestClient) -> None:
@@ -52,4 +51,3 @@ def test_no_cors_by_default(tmp_path: Path) -> None:
     with TestClient(app) as c:
         r = c.get("/healthz", headers={"origin": "https://elsewhere.example"})
         assert "access-control-allow-origin" not in r.headers
-    app.state.engine.dispose()

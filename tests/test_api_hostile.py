@@ -10,10 +10,8 @@ from typing import Any
 
 import pytest
 from fastapi.testclient import TestClient
-from sqlmodel import Session
 
-from service.store import repository
-from tests.conftest import EXAMPLES, NOW, VALID, Api, routine
+from tests.conftest import EXAMPLES, NOW, VALID, Api, new_token, revoke_token, routine
 
 ROUTINE = (EXAMPLES / "notes" / "right-routine.json").read_text()
 
@@ -74,12 +72,8 @@ def call(api: Api, method: str, path: str, token: str | None) -> Any:
 
 
 def test_only_the_allowed_roles_get_through(api: Api) -> None:
-    with Session(api.client.app.state.engine) as session:  # type: ignore[attr-defined]
-        revoked, row = repository.new_token(session, "submitter", "old", NOW)
-        session.commit()
-        assert row.id is not None
-        repository.revoke_token(session, row.id, NOW)
-        session.commit()
+    revoked, token_id = new_token(api.url, "submitter", "old")
+    assert revoke_token(api.url, token_id)
     for (method, path), allowed in ALLOWED.items():
         if allowed is None:
             assert call(api, method, path, None).status_code < 400, (method, path)
@@ -215,18 +209,18 @@ def test_unexpected_errors_answer_500_with_only_an_incident_id(
 
 
 def test_database_down_answers_503_with_retry_after(api: Api) -> None:
+    from service.access import Access
+    from service.api import deps
+    from service.notes import NoteService
+    from service.store.database import open_store
+
     app = api.client.app  # type: ignore[attr-defined]
-    app.state.engine.dispose()
-    from sqlalchemy import create_engine
-
-    from service.store.database import open_ledger
-
-    nowhere = "postgresql+psycopg://nobody@127.0.0.1:1/none"
-    dead = create_engine(nowhere, pool_pre_ping=False)
-    dead_ledger = open_ledger(nowhere)
-    app.state.engine = dead
-    app.state.notes.engine = dead
-    app.state.ledger = app.state.notes.ledger = dead_ledger
+    dead_store = open_store("postgresql+psycopg://nobody@127.0.0.1:1/none")
+    live: NoteService = app.state.notes
+    dead = NoteService(dead_store, live.assessor, live.clock)
+    # The services are dependencies: swapped here for ones on a database that is not there.
+    app.dependency_overrides[deps.notes_service] = lambda: dead
+    app.dependency_overrides[deps.access] = lambda: Access(dead_store)
     try:
         for r in (
             api.client.get("/readyz"),
@@ -238,8 +232,8 @@ def test_database_down_answers_503_with_retry_after(api: Api) -> None:
         assert ready.status_code == 503
         assert ready.headers["retry-after"]
     finally:
-        dead.dispose()
-        api.client.portal.call(dead_ledger.aclose)  # in the app's loop, which opened it
+        app.dependency_overrides.clear()
+        api.client.portal.call(dead_store.aclose)  # in the app's loop, which opened it
 
 
 def test_a_real_server_logs_no_traceback_for_an_unexpected_error(
@@ -260,9 +254,7 @@ def test_a_real_server_logs_no_traceback_for_an_unexpected_error(
     app = create_app(
         Settings(database_url=f"sqlite:///{tmp_path / 'g.sqlite3'}"), clock=lambda: NOW
     )
-    with Session(app.state.engine) as session:
-        secret, _ = repository.new_token(session, "auditor", "guard", NOW)
-        session.commit()
+    secret, _ = new_token(f"sqlite:///{tmp_path / 'g.sqlite3'}", "auditor", "guard")
 
     def broken(*_args: object) -> None:
         raise RuntimeError("HX100234 secret detail")
@@ -286,7 +278,6 @@ def test_a_real_server_logs_no_traceback_for_an_unexpected_error(
     finally:
         server.should_exit = True
         thread.join(timeout=20)
-        app.state.engine.dispose()
     assert r.status_code == 500
     assert "incident" in r.json()["issue"][0]["diagnostics"]
     assert "HX100234" not in caplog.text

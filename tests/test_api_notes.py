@@ -8,13 +8,11 @@ from typing import Any
 import pytest
 from fastapi.testclient import TestClient
 from pydantic import ValidationError
-from sqlmodel import Session
 
 from service.app import create_app
 from service.config import Settings
 from service.fhir.bundle import OutputCheck
-from service.store import repository
-from tests.conftest import EXAMPLES, INVALID, NOW, VALID, Api, routine
+from tests.conftest import EXAMPLES, INVALID, NOW, VALID, Api, new_token, revoke_token, routine
 from tests.fhir_r4_check import r4_problems
 
 ROUTINE = (EXAMPLES / "notes" / "right-routine.json").read_text()
@@ -407,17 +405,8 @@ def test_naive_dates_in_a_listing_are_refused(api: Api) -> None:
 
 
 def test_a_revoked_token_is_401(api: Api) -> None:
-    from sqlmodel import Session
-
-    from service.store import repository
-
-    engine = api.client.app.state.engine  # type: ignore[attr-defined]
-    with Session(engine) as session:
-        token, row = repository.new_token(session, "submitter", "leaving", NOW)
-        session.commit()
-        assert row.id is not None
-        repository.revoke_token(session, row.id, NOW)
-        session.commit()
+    token, token_id = new_token(api.url, "submitter", "leaving")
+    assert revoke_token(api.url, token_id)
     r = api.client.get("/notes/x", headers={"authorization": f"Bearer {token}"})
     assert r.status_code == 401
 
@@ -428,16 +417,13 @@ def test_the_r4b_output_check_setting_serves_the_same_notes(database_url: str) -
     app = create_app(
         Settings(database_url=database_url, output_check=OutputCheck.R4B), clock=lambda: NOW
     )
-    with Session(app.state.engine) as session:
-        token, _ = repository.new_token(session, "submitter", "r4b", NOW)
-        session.commit()
+    token, _ = new_token(database_url, "submitter", "r4b")
     with TestClient(app) as client:
         r = client.post(
             "/notes",
             content=VALID[0].read_bytes(),
             headers={"authorization": f"Bearer {token}", "content-type": "application/json"},
         )
-    app.state.engine.dispose()
     assert r.status_code == 201
     assert r.json()["bundle"]["type"] == "transaction"
 

@@ -17,11 +17,10 @@ from datetime import UTC, datetime
 import schemathesis
 from hypothesis import HealthCheck, given, seed, settings
 from schemathesis.specs.openapi import checks as openapi_checks
-from sqlmodel import Session
 
 from service.app import create_app
 from service.config import Settings
-from service.store import repository
+from tests.conftest import new_token
 
 NOW = datetime(2026, 12, 1, 12, tzinfo=UTC)
 EXAMPLES = int(os.environ.get("CAPNOTE_SCHEMATHESIS_EXAMPLES", "15"))
@@ -29,12 +28,12 @@ _folder = tempfile.TemporaryDirectory()
 app = create_app(
     Settings(database_url=f"sqlite:///{_folder.name}/schemathesis.sqlite3"), clock=lambda: NOW
 )
-with Session(app.state.engine) as _session:
-    TOKENS = {
-        role: repository.new_token(_session, role, f"schemathesis {role}", NOW)[0]
-        for role in ("submitter", "clinician", "analyst", "auditor")
-    }
-    _session.commit()
+TOKENS = {
+    role: new_token(f"sqlite:///{_folder.name}/schemathesis.sqlite3", role, f"schemathesis {role}")[
+        0
+    ]
+    for role in ("submitter", "clinician", "analyst", "auditor")
+}
 schema = schemathesis.openapi.from_asgi("/openapi.json", app)
 
 

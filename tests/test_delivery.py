@@ -3,22 +3,20 @@ however the receiver fails, on both databases."""
 
 from __future__ import annotations
 
+import asyncio
 import json
-import threading
 from collections import Counter
 from collections.abc import Iterator
 from datetime import datetime, timedelta
 from typing import Any
 
-import httpx
 import pytest
 from sqlalchemy import text
-from sqlmodel import Session
 
 from service.delivery import DeliveryWorker, Receiver
 from service.notes import Principal
-from service.store import outbox
-from tests.conftest import NOW, SyncNotes, routine, sync_notes
+from service.store.database import make_engine
+from tests.conftest import NOW, SyncNotes, new_token, routine, sync_notes
 from tests.fhir_receiver import Dropper, Store, running
 
 WHO = Principal("delivery test", "submitter")
@@ -35,10 +33,10 @@ class Clock:
 
 
 @pytest.fixture
-def setup(database_url: str) -> Iterator[tuple[SyncNotes, Any, Clock]]:
+def setup(database_url: str) -> Iterator[tuple[SyncNotes, str, Clock]]:
     clock = Clock()
     service = sync_notes(database_url, clock, forward=True)
-    yield service, service.service.engine, clock
+    yield service, database_url, clock
     service.close()
 
 
@@ -51,15 +49,14 @@ def notes(n: int) -> list[bytes]:
     return out
 
 
-def drain(worker: DeliveryWorker, clock: Clock, rounds: int = 40) -> None:
+def drain(service: SyncNotes, worker: DeliveryWorker, clock: Clock, rounds: int = 40) -> None:
     for _ in range(rounds):
-        worker.run_once()
+        service.run(worker.run_once())
         clock.now += timedelta(minutes=30)  # every back-off has passed
 
 
-def states(engine: Any) -> Counter[str]:
-    with Session(engine) as session:
-        return Counter(e.state for e in outbox.listing(session, None, 1000))
+def states(service: SyncNotes) -> Counter[str]:
+    return Counter(e.state for e in service.run(service.store.outbox(None, 1000)))
 
 
 def identifiers(store: Store) -> Counter[str]:
@@ -71,27 +68,29 @@ def identifiers(store: Store) -> Counter[str]:
     return seen
 
 
-def worker_for(engine: Any, url: str, clock: Clock, timeout_s: float = 1.0) -> DeliveryWorker:
+def worker_for(
+    service: SyncNotes, url: str, clock: Clock, timeout_s: float = 1.0
+) -> DeliveryWorker:
+    """A worker on the service's store (its own HTTP client: closed by aclose)."""
     return DeliveryWorker(
-        engine,
+        service.store,
         Receiver(url, token="receiver-secret", timeout_s=timeout_s),
         clock,
-        httpx.Client(),
         base_delay_s=0.01,
     )
 
 
 def test_every_bundle_arrives_exactly_once_despite_failures(setup: Any) -> None:
-    service, engine, clock = setup
+    service, _url, clock = setup
     for body in notes(6):
         service.submit(body, WHO)
     receiver = Store()
     receiver.faults = ["500-before", "500-after", "late", "429", "500-after", "late"]
     with running(receiver, late_s=2.0) as url:
-        worker = worker_for(engine, url, clock)
-        drain(worker, clock)
-        worker.client.close()
-    assert states(engine) == Counter({"delivered": 6})
+        worker = worker_for(service, url, clock)
+        drain(service, worker, clock)
+        service.run(worker.aclose())
+    assert states(service) == Counter({"delivered": 6})
     assert receiver.count("Procedure") == 6
     assert all(n == 1 for n in identifiers(receiver).values())  # nothing twice
     assert receiver.transactions > 6  # the failures really happened and were retried
@@ -101,7 +100,7 @@ def test_dropped_connections_deliver_every_bundle_exactly_once(setup: Any) -> No
     # The connection cut with the request unsent, and cut after the receiver applied it
     # (the answer lost): ifNoneExist makes the resend harmless (FHIR R4 3.1.0.8.1,
     # conditional create: a match answers 200 and creates nothing).
-    service, engine, clock = setup
+    service, _url, clock = setup
     for body in notes(4):
         service.submit(body, WHO)
     receiver = Store()
@@ -110,27 +109,26 @@ def test_dropped_connections_deliver_every_bundle_exactly_once(setup: Any) -> No
         dropper = Dropper(port)
         dropper.faults = ["drop-before", "drop-after", "drop-after", "", "drop-before"]
         with dropper.running() as proxied:
-            worker = worker_for(engine, proxied, clock)
-            drain(worker, clock)
-            worker.client.close()
+            worker = worker_for(service, proxied, clock)
+            drain(service, worker, clock)
+            service.run(worker.aclose())
     assert dropper.dropped == 4
-    assert states(engine) == Counter({"delivered": 4})
+    assert states(service) == Counter({"delivered": 4})
     assert receiver.count("Procedure") == 4
     assert all(n == 1 for n in identifiers(receiver).values())  # nothing twice
     assert receiver.applied == 6  # 8 requests, 2 cut before the receiver; 2 answers lost
 
 
 def test_a_refusal_is_parked_with_the_receivers_answer(setup: Any) -> None:
-    service, engine, clock = setup
+    service, _url, clock = setup
     service.submit(notes(1)[0], WHO)
     receiver = Store()
     receiver.faults = ["400"]
     with running(receiver) as url:
-        worker = worker_for(engine, url, clock)
-        drain(worker, clock, rounds=3)
-        worker.client.close()
-    with Session(engine) as session:
-        [entry] = outbox.listing(session, None, 10)
+        worker = worker_for(service, url, clock)
+        drain(service, worker, clock, rounds=3)
+        service.run(worker.aclose())
+    [entry] = service.run(service.store.outbox(None, 10))
     assert entry.state == "failed"
     assert entry.last_status == 400
     assert json.loads(entry.last_error or "")["resourceType"] == "OperationOutcome"
@@ -138,46 +136,47 @@ def test_a_refusal_is_parked_with_the_receivers_answer(setup: Any) -> None:
 
 
 def test_an_amendment_updates_what_the_receiver_holds(setup: Any) -> None:
-    service, engine, clock = setup
+    service, _url, clock = setup
     _, stored = service.submit(notes(1)[0], WHO)
     receiver = Store()
     with running(receiver) as url:
-        worker = worker_for(engine, url, clock)
-        drain(worker, clock, rounds=2)
+        worker = worker_for(service, url, clock)
+        drain(service, worker, clock, rounds=2)
         changed = json.loads(notes(1)[0])
         changed["result"]["opening"]["horizontal_mm"] = 4.0
         body = json.dumps({"reason": "re-measured", "note": changed}).encode()
         service.amend(stored.key, body, WHO, None)
-        drain(worker, clock, rounds=2)
-        worker.client.close()
-    assert states(engine) == Counter({"delivered": 2})
+        drain(service, worker, clock, rounds=2)
+        service.run(worker.aclose())
+    assert states(service) == Counter({"delivered": 2})
     assert receiver.count("Procedure") == 1
     [versions] = receiver.resources["Procedure"].values()
     assert len(versions) == 2  # created, then updated in place
 
 
 def test_two_workers_never_deliver_one_entry_twice(setup: Any) -> None:
-    service, engine, clock = setup
+    service, _url, clock = setup
     for body in notes(10):
         service.submit(body, WHO)
     receiver = Store()
     with running(receiver) as url:
-        workers = [worker_for(engine, url, clock, timeout_s=10) for _ in range(2)]
-        threads = [threading.Thread(target=w.run_once, kwargs={"limit": 10}) for w in workers]
-        for t in threads:
-            t.start()
-        for t in threads:
-            t.join(timeout=60)
-        for w in workers:
-            w.client.close()
-    assert states(engine) == Counter({"delivered": 10})
+        workers = [worker_for(service, url, clock, timeout_s=10) for _ in range(2)]
+
+        async def both() -> None:
+            await asyncio.gather(*(w.run_once(limit=10) for w in workers))
+            for w in workers:
+                await w.aclose()
+
+        service.run(both())
+    assert states(service) == Counter({"delivered": 10})
     assert receiver.transactions == 10
 
 
 def test_each_note_version_has_exactly_one_outbox_entry(setup: Any) -> None:
-    service, engine, _clock = setup
+    service, url, _clock = setup
     for body in notes(3):
         service.submit(body, WHO)
+    engine = make_engine(url)  # the tables themselves, as a database administrator sees them
     with engine.connect() as connection:
         orphans = connection.execute(
             text(
@@ -186,6 +185,7 @@ def test_each_note_version_has_exactly_one_outbox_entry(setup: Any) -> None:
             )
         ).scalar()
         entries = connection.execute(text("select count(*) from outbox_entry")).scalar()
+    engine.dispose()
     assert (orphans, entries) == (0, 3)
 
 
@@ -196,7 +196,6 @@ def test_the_service_forwards_and_shows_the_delivery(database_url: str) -> None:
 
     from service.app import create_app
     from service.config import Settings
-    from service.store import repository
 
     receiver = Store()
     with running(receiver) as url:
@@ -207,9 +206,7 @@ def test_the_service_forwards_and_shows_the_delivery(database_url: str) -> None:
             forward_timeout_s=5,
         )
         app = create_app(settings)  # the real clock: the worker delivers at once
-        with Session(app.state.engine) as session:
-            token, _ = repository.new_token(session, "submitter", "forward test", NOW)
-            session.commit()
+        token, _ = new_token(database_url, "submitter", "forward test")
         headers = {"authorization": f"Bearer {token}", "content-type": "application/json"}
         with TestClient(app) as client:
             key = client.post("/notes", content=notes(1)[0], headers=headers).json()["id"]
@@ -219,7 +216,6 @@ def test_the_service_forwards_and_shows_the_delivery(database_url: str) -> None:
                 if state["deliveries"] and state["deliveries"][0]["state"] == "delivered":
                     break
                 time.sleep(0.2)
-        app.state.engine.dispose()
     assert state["forwarding"] is True
     assert state["deliveries"][0]["state"] == "delivered"
     assert receiver.count("Procedure") == 1
@@ -232,7 +228,7 @@ def test_operator_commands_deliver_list_retry_park(setup: Any, database_url: str
 
     from tests.conftest import ROOT
 
-    service, _engine, _clock = setup
+    service, _url, _clock = setup
     service.submit(notes(1)[0], WHO)
     receiver = Store()
     receiver.faults = ["400"]

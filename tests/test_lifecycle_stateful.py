@@ -18,8 +18,8 @@ from service.assess import Assessor
 from service.errors import ConflictError, InputError, NotFoundError, PreconditionError
 from service.notes import NoteService, Principal, StoredNote
 from service.policy import load_policy
-from service.store.database import make_engine, upgrade
-from service.store.ledger_sqlite import SqliteLedger
+from service.store.database import migrate
+from service.store.sqlite import SqliteStore
 from tests.conftest import NOW, routine
 
 WHO = Principal("stateful test", "submitter")
@@ -53,16 +53,15 @@ class Lifecycle(RuleBasedStateMachine):
     @initialize()
     def start(self) -> None:
         self.folder = tempfile.TemporaryDirectory()
-        self.engine = make_engine(f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}")
-        upgrade(self.engine)
-        self.ledger = SqliteLedger(f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}")
-        self.service = NoteService(self.engine, self.ledger, Assessor(load_policy()), lambda: NOW)
+        url = f"sqlite:///{Path(self.folder.name) / 'state.sqlite3'}"
+        migrate(url)
+        self.store = SqliteStore(url)
+        self.service = NoteService(self.store, Assessor(load_policy()), lambda: NOW)
         self.model: dict[str, list[tuple[float, str]]] = {}
         self.keys: dict[str, str] = {}
 
     def teardown(self) -> None:
-        self.ledger.close()
-        self.engine.dispose()
+        self.store.close()
         self.folder.cleanup()
 
     @rule(

@@ -9,10 +9,8 @@ from collections.abc import Iterator
 from typing import Any
 
 import pytest
-from sqlmodel import Session
 
 from service.notes import SYSTEM, Principal, StoredNote
-from service.store import outbox
 from tests.conftest import Api, SyncNotes, routine, sync_notes
 
 WHO = Principal("order test", "submitter")
@@ -70,8 +68,8 @@ def test_a_late_arrival_recounts_the_later_session(notes: SyncNotes) -> None:
     assert now.recorded_by == SYSTEM.label
     assert totals(notes.get(later.key, 1))["session_number"] == 1
     # The correction is forwarded like any version: one outbox entry per stored version.
-    with Session(notes.service.engine) as db:
-        assert [e.version for e in outbox.for_note(db, later.key)] == [1, 2]
+    entries = notes.run(notes.store.outbox_of_note(later.key))
+    assert [(e.version, e.state) for e in entries] == [(1, "pending"), (2, "pending")]
     # Its Bundle amends what the receiver holds: the cumulative Observation says so.
     bundle = json.loads(now.bundle_json)
     [obs] = [

@@ -21,7 +21,6 @@ def client(tmp_path: Path) -> Iterator[TestClient]:
     app = build_app(f"sqlite:///{tmp_path / 'capnote.sqlite3'}", lambda: NOW)
     with TestClient(app) as c:
         yield c
-    app.state.engine.dispose()
 
 
 def test_the_page_is_served_at_the_root_with_the_security_headers(client: TestClient) -> None:

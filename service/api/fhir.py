@@ -9,21 +9,18 @@ from typing import Annotated
 import orjson
 from fastapi import APIRouter, Depends, Path, Query, Request
 from fastapi.responses import Response
-from sqlmodel import Session
 
 from service.api.auth import CHECK, READ, allow
 from service.api.capability import capability_statement
+from service.api.deps import Reads
 from service.api.docs import responses
 from service.api.media import FHIR_JSON, fhir_response, json_body
-from service.errors import InputError, NotFoundError
+from service.errors import InputError
 from service.fhir.outcome import outcome
-from service.fhir.readmodel import READABLE, StoredBundle, parse_id
 from service.fhir.validate import validate_resource
+from service.fhir_reads import SearchPage
 from service.findings import Finding, Severity
 from service.notes import Principal
-from service.store import repository as repo
-from service.store.codec import unpack_bundle, unpack_roles
-from service.store.ledger import Ledger, VersionRow
 
 router = APIRouter(prefix="/fhir", tags=["fhir"])
 _DATE = re.compile(r"^(eq|ne|gt|lt|ge|le)?(\d{4}-\d{2}-\d{2}(T[0-9:.]+(Z|[+-]\d{2}:\d{2}))?)$")
@@ -47,34 +44,6 @@ def _problem(location: str, message: str, value: str | None = None) -> InputErro
     )
 
 
-def _kind(kind: str) -> str:
-    if kind not in READABLE:
-        raise NotFoundError("capnote serves no resources of this type")
-    return kind
-
-
-def _id(resource_id: str) -> tuple[str, str]:
-    """(note id, role) of a resource id; anything else names nothing (and never reaches SQL)."""
-    parsed = parse_id(resource_id)
-    if parsed is None:
-        raise NotFoundError("no record with this id")
-    return parsed
-
-
-def _stored(key: str, version: int, at: datetime, bundle: bytes, roles: str) -> StoredBundle:
-    bundle_data = orjson.loads(unpack_bundle(bundle))
-    return StoredBundle(key, version, at, bundle_data, tuple(r for _k, r in unpack_roles(roles)))
-
-
-def _from_row(row: VersionRow) -> StoredBundle:
-    return _stored(row.note_key, row.version, row.recorded_at, row.bundle, row.roles)
-
-
-def _ledger(request: Request) -> Ledger:
-    ledger: Ledger = request.app.state.ledger
-    return ledger
-
-
 @router.get("/metadata", responses=responses(200, media=FHIR_JSON))
 def metadata(request: Request) -> Response:
     """The CapabilityStatement: what this server really supports (no token needed)."""
@@ -83,11 +52,10 @@ def metadata(request: Request) -> Response:
 
 def _date_range(
     values: list[str], name: str
-) -> tuple[datetime | None, datetime | None, bool, bool]:
-    """FHIR date prefixes to (after, before, include_after, include_before)."""
-    after: datetime | None = None
-    before: datetime | None = None
-    inc_after = inc_before = True
+) -> tuple[tuple[str, datetime] | None, tuple[str, datetime] | None]:
+    """FHIR date prefixes to (after, before): ("ge" | "gt", time) and ("le" | "lt", time)."""
+    after: tuple[str, datetime] | None = None
+    before: tuple[str, datetime] | None = None
     for raw in values:
         match = _DATE.match(raw)
         if match is None:
@@ -104,12 +72,12 @@ def _date_range(
         except ValueError as exc:
             raise _problem(name, f"{name} is not a date that exists", raw[:40]) from exc
         if prefix in ("eq", "ge", "gt"):
-            after, inc_after = (end, False) if prefix == "gt" else (start, True)
+            after = ("gt", end) if prefix == "gt" else ("ge", start)
         if prefix in ("eq", "le", "lt"):
-            before, inc_before = (start, False) if prefix == "lt" else (end, True)
+            before = ("lt", start) if prefix == "lt" else ("le", end)
         if prefix == "ne":
             raise _problem(name, "the ne prefix is not supported", raw[:40])
-    return after, before, inc_after, inc_before
+    return after, before
 
 
 def _patient(value: str | None) -> tuple[str, str] | None:
@@ -121,46 +89,18 @@ def _patient(value: str | None) -> tuple[str, str] | None:
     return system, ident
 
 
-def _searchset(
-    request: Request, kind: str, total: int, rows: list[repo.Found], page: int, count: int
-) -> Response:
-    base = str(request.base_url).rstrip("/") + "/fhir"
-    resources = []
-    for r in rows:
-        resource = _stored(r.note_key, r.version, r.recorded_at, r.bundle, r.roles).served(
-            r.role, kind
-        )
-        if resource is not None:  # the index and the Bundle are written together: always
-            resources.append(resource)
-    self_link = str(request.url)
-    links = [{"relation": "self", "url": self_link}]
-    if page * count < total:
-        query = dict(request.query_params) | {"_page": str(page + 1), "_count": str(count)}
-        links.append({"relation": "next", "url": str(request.url.replace_query_params(**query))})
-    bundle = {
-        "resourceType": "Bundle",
-        "type": "searchset",
-        "total": total,
-        "link": links,
-        "entry": [
-            {
-                "fullUrl": f"{base}/{kind}/{resource['id']}",
-                "resource": resource,
-                "search": {"mode": "match"},
-            }
-            for resource in resources
-        ],
-    }
-    return fhir_response(bundle)
-
-
 Page = Annotated[int, Query(alias="_page", ge=1, le=100_000)]
 Count = Annotated[int, Query(alias="_count", ge=1, le=200)]
 PatientIdentifier = Annotated[str | None, Query(alias="patient:identifier")]
 
 
-def _search(
+def _base(request: Request) -> str:
+    return str(request.base_url).rstrip("/") + "/fhir"
+
+
+async def _search(
     request: Request,
+    reads: Reads,
     kind: str,
     patient: str | None,
     dates: list[str],
@@ -170,26 +110,21 @@ def _search(
     count: int,
 ) -> Response:
     """One searchset for a type: patient, a date parameter with prefixes, status; paged."""
-    after, before, inc_a, inc_b = _date_range(dates, name)
-    with Session(request.app.state.engine) as session:
-        total, rows = repo.fhir_search(
-            session,
-            kind,
-            patient=_patient(patient),
-            status=status,
-            after=after,
-            before=before,
-            include_after=inc_a,
-            include_before=inc_b,
-            offset=(page - 1) * count,
-            limit=count,
-        )
-    return _searchset(request, kind, total, list(rows), page, count)
+    after, before = _date_range(dates, name)
+    wanted = SearchPage(_patient(patient), status, after, before, page, count)
+
+    def page_url(number: int) -> str:
+        query = dict(request.query_params) | {"_page": str(number), "_count": str(count)}
+        return str(request.url.replace_query_params(**query))
+
+    bundle = await reads.search(kind, wanted, _base(request), str(request.url), page_url)
+    return fhir_response(bundle)
 
 
 @router.get("/Procedure", responses=responses(200, 422, media=FHIR_JSON))
-def search_procedures(
+async def search_procedures(
     request: Request,
+    reads: Reads,
     _who: Reader,
     patient_identifier: PatientIdentifier = None,
     date_: Annotated[list[str] | None, Query(alias="date")] = None,
@@ -197,12 +132,15 @@ def search_procedures(
     count: Count = 50,
 ) -> Response:
     """Procedures by patient identifier and performed date (prefixes ge, le, gt, lt, eq)."""
-    return _search(request, "Procedure", patient_identifier, date_ or [], "date", None, page, count)
+    return await _search(
+        request, reads, "Procedure", patient_identifier, date_ or [], "date", None, page, count
+    )
 
 
 @router.get("/ServiceRequest", responses=responses(200, 422, media=FHIR_JSON))
-def search_service_requests(
+async def search_service_requests(
     request: Request,
+    reads: Reads,
     _who: Reader,
     status: Annotated[str | None, Query(pattern="^[a-z-]+$")] = None,
     occurrence: Annotated[list[str] | None, Query()] = None,
@@ -211,8 +149,9 @@ def search_service_requests(
     count: Count = 50,
 ) -> Response:
     """Follow-up requests by status, target date and patient: what is due."""
-    return _search(
+    return await _search(
         request,
+        reads,
         "ServiceRequest",
         patient_identifier,
         occurrence or [],
@@ -224,70 +163,32 @@ def search_service_requests(
 
 
 @router.get("/{kind}/{resource_id}", responses=responses(200, 404, media=FHIR_JSON))
-async def read_resource(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
+async def read_resource(reads: Reads, kind: str, resource_id: str, _who: Reader) -> Response:
     """The current version of a resource."""
-    key, role = _id(resource_id)
-    row = await _ledger(request).latest(key)
-    resource = _from_row(row).served(role, _kind(kind)) if row is not None else None
-    if resource is None:
-        raise NotFoundError(f"no {kind} with this id")
+    resource = await reads.read(kind, resource_id)
     return fhir_response(resource, headers={"ETag": f'W/"{resource["meta"]["versionId"]}"'})
 
 
 @router.get("/{kind}/{resource_id}/_history", responses=responses(200, 404, media=FHIR_JSON))
-async def history(request: Request, kind: str, resource_id: str, _who: Reader) -> Response:
+async def history(
+    request: Request, reads: Reads, kind: str, resource_id: str, _who: Reader
+) -> Response:
     """Every version of a resource, newest first."""
-    key, role = _id(resource_id)
-    kind = _kind(kind)
-    found = []
-    for row in reversed(await _ledger(request).versions(key)):
-        resource = _from_row(row).served(role, kind)
-        if resource is not None:
-            found.append((row.version, resource))
-    if not found:
-        raise NotFoundError(f"no {kind} with this id")
-    # The first version this resource appeared in created it; later ones updated it.
-    first = found[-1][0]
-    base = str(request.base_url).rstrip("/") + "/fhir"
-    bundle = {
-        "resourceType": "Bundle",
-        "type": "history",
-        "total": len(found),
-        "entry": [
-            {
-                "fullUrl": f"{base}/{kind}/{resource_id}",
-                "resource": resource,
-                "request": {
-                    "method": "POST" if version == first else "PUT",
-                    "url": kind if version == first else f"{kind}/{resource_id}",
-                },
-                "response": {
-                    "status": "201 Created" if version == first else "200 OK",
-                    "etag": f'W/"{version}"',
-                },
-            }
-            for version, resource in found
-        ],
-    }
-    return fhir_response(bundle)
+    return fhir_response(await reads.history(kind, resource_id, _base(request)))
 
 
 @router.get(
     "/{kind}/{resource_id}/_history/{version}", responses=responses(200, 404, media=FHIR_JSON)
 )
 async def version_read(
-    request: Request,
+    reads: Reads,
     kind: str,
     resource_id: str,
     version: Annotated[int, Path(ge=1, le=2**31 - 1)],
     _who: Reader,
 ) -> Response:
     """One version of a resource (vread)."""
-    key, role = _id(resource_id)
-    row = await _ledger(request).version(key, version)
-    resource = _from_row(row).served(role, _kind(kind)) if row is not None else None
-    if resource is None:
-        raise NotFoundError(f"no version {version} of this {kind}")
+    resource = await reads.vread(kind, resource_id, version)
     return fhir_response(resource, headers={"ETag": f'W/"{version}"'})
 
 

@@ -2,13 +2,12 @@
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Request
+from fastapi import APIRouter
 from fastapi.responses import Response
-from starlette.concurrency import run_in_threadpool
 
+from service.api.deps import Notes
 from service.api.docs import responses
 from service.api.media import json_response
-from service.store.database import ping
 
 router = APIRouter(tags=["health"])
 
@@ -20,7 +19,8 @@ def healthz() -> Response:
 
 
 @router.get("/readyz", responses=responses(200, 503))
-async def readyz(request: Request) -> Response:
-    """The database answers (503 with an OperationOutcome when it does not)."""
-    await run_in_threadpool(ping, request.app.state.engine)
+async def readyz(notes: Notes) -> Response:
+    """The database answers, on the connections that serve requests (503 with an
+    OperationOutcome when it does not)."""
+    await notes.ready()
     return json_response({"status": "ready"})

@@ -10,10 +10,11 @@ from __future__ import annotations
 import re
 from typing import Any
 
-from fastapi import APIRouter, Request
+from fastapi import APIRouter
 from fastapi.responses import FileResponse, Response
 
 from schemas.note import LaserSettings
+from service.api.deps import SitePolicy
 from service.api.media import json_response
 from service.errors import NotFoundError
 from service.policy.model import Policy, Window
@@ -90,6 +91,6 @@ def form_defaults(policy: Policy) -> dict[str, Any]:
 
 
 @router.get("/web/defaults")
-def defaults(request: Request) -> Response:
+def defaults(policy: SitePolicy) -> Response:
     """The form's defaults from the site policy (token-free: no patient data)."""
-    return json_response(form_defaults(request.app.state.notes.assessor.policy))
+    return json_response(form_defaults(policy))

@@ -3,6 +3,7 @@
 The store's libraries (SQLAlchemy, the migrations, httpx for delivery) are imported by the
 commands that use them, not with this module: every command of the command line loads it,
 and `capnote check` on one file should not wait half a second for a database it never opens.
+Each command runs its store calls in one event loop of its own (asyncio.run).
 """
 
 from __future__ import annotations
@@ -10,20 +11,19 @@ from __future__ import annotations
 import asyncio
 import os
 import signal
-import threading
-from collections.abc import Iterator
-from contextlib import contextmanager
+from collections.abc import Awaitable, Callable
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import TYPE_CHECKING, Annotated, TypeVar
 
 import typer
 
 from service.config import Settings
 
 if TYPE_CHECKING:
-    from sqlalchemy import Engine
-    from sqlmodel import Session
+    from service.store.base import Store
+
+T = TypeVar("T")
 
 DEMO_NOTES = Path(__file__).resolve().parents[2] / "examples" / "notes"
 ROLES = ("submitter", "clinician", "analyst", "auditor")
@@ -33,28 +33,35 @@ db_app = typer.Typer(help="The database: upgrade to the newest schema.", no_args
 outbox_app = typer.Typer(help="Forwarding outbox: list, retry, park.", no_args_is_help=True)
 
 
-def _engine(url: str | None = None, *, migrate: bool = False) -> Engine:
-    """An engine on the settings' database (or url), migrated to the newest schema if asked."""
-    from service.store.database import make_engine, upgrade
+def _migrated(url: str | None = None) -> str:
+    """The settings' database URL (or url), migrated to the newest schema."""
+    from service.store.database import migrate
 
-    engine = make_engine(url or Settings().database_url)
-    if migrate:
-        upgrade(engine)
-    return engine
+    url = url or Settings().database_url
+    migrate(url)
+    return url
 
 
-@contextmanager
-def _session(*, migrate: bool = False) -> Iterator[Session]:
-    from sqlmodel import Session
+def _with_store(work: Callable[[Store], Awaitable[T]], *, migrate: bool = False) -> T:
+    """Run work on a store of the settings' database, then close it."""
+    from service.store.database import open_store
 
-    with Session(_engine(migrate=migrate)) as session:
-        yield session
+    url = _migrated() if migrate else Settings().database_url
+
+    async def run() -> T:
+        store = open_store(url)
+        try:
+            return await work(store)
+        finally:
+            await store.aclose()
+
+    return asyncio.run(run())
 
 
 @db_app.command("upgrade")
 def db_upgrade() -> None:
     """Apply every migration the database lacks (the service also does this on start)."""
-    _engine(migrate=True)
+    _migrated()
     typer.echo("database is at the newest schema")
 
 
@@ -66,36 +73,27 @@ def token_new(
     """Create a token and print it once; only its hash is kept."""
     if role not in ROLES:
         raise typer.BadParameter(f"use one of {', '.join(ROLES)}", param_hint="--role")
-    from service.store import repository
-
-    with _session(migrate=True) as session:
-        token, row = repository.new_token(session, role, label, datetime.now(UTC))
-        session.commit()
-        typer.echo(f"token {row.id} ({role}, {label}); shown once, keep it safe:")
+    token, token_id = _with_store(
+        lambda store: store.new_token(role, label, datetime.now(UTC)), migrate=True
+    )
+    typer.echo(f"token {token_id} ({role}, {label}); shown once, keep it safe:")
     typer.echo(token)
 
 
 @token_app.command("list")
 def token_list() -> None:
     """Every token: id, role, label, created, revoked (never the token itself)."""
-    from service.store import repository
-
-    with _session(migrate=True) as session:
-        for row in repository.list_tokens(session):
-            state = f"revoked {row.revoked_at:%Y-%m-%d}" if row.revoked_at else "live"
-            typer.echo(f"{row.id}\t{row.role}\t{row.label}\t{row.created_at:%Y-%m-%d}\t{state}")
+    for row in _with_store(lambda store: store.tokens(), migrate=True):
+        state = f"revoked {row.revoked_at:%Y-%m-%d}" if row.revoked_at else "live"
+        typer.echo(f"{row.id}\t{row.role}\t{row.label}\t{row.created_at:%Y-%m-%d}\t{state}")
 
 
 @token_app.command("revoke")
 def token_revoke(token_id: Annotated[int, typer.Argument(help="The id from token list.")]) -> None:
     """Revoke a token: it answers 401 from now on."""
-    from service.store import repository
-
-    with _session() as session:
-        if not repository.revoke_token(session, token_id, datetime.now(UTC)):
-            typer.echo(f"no live token {token_id}", err=True)
-            raise typer.Exit(1)
-        session.commit()
+    if not _with_store(lambda store: store.revoke_token(token_id, datetime.now(UTC))):
+        typer.echo(f"no live token {token_id}", err=True)
+        raise typer.Exit(1)
     typer.echo(f"token {token_id} revoked")
 
 
@@ -107,30 +105,23 @@ def outbox_list(
     limit: Annotated[int, typer.Option(min=1, max=10_000)] = 50,
 ) -> None:
     """Outbox entries, newest first: id, note, version, state, attempts, last answer."""
-    from service.store import outbox
-
-    with _session() as session:
-        for e in outbox.listing(session, state, limit):
-            typer.echo(
-                f"{e.id}\t{e.note_key}\tv{e.version}\t{e.state}\t{e.attempts}\t"
-                f"{e.last_status or ''}"
-            )
+    for e in _with_store(lambda store: store.outbox(state, limit)):
+        typer.echo(
+            f"{e.id}\t{e.note_key}\tv{e.version}\t{e.state}\t{e.attempts}\t{e.last_status or ''}"
+        )
 
 
 def _set_entry(entry_id: int, state: str) -> None:
-    from service.store import outbox
-
-    with _session() as session:
-        if not outbox.operator_set(session, entry_id, state, datetime.now(UTC)):
-            typer.echo(f"no undelivered outbox entry {entry_id}", err=True)
-            raise typer.Exit(1)
+    if not _with_store(lambda store: store.operator_set(entry_id, state, datetime.now(UTC))):
+        typer.echo(f"no undelivered outbox entry {entry_id}", err=True)
+        raise typer.Exit(1)
     typer.echo(f"outbox entry {entry_id}: {state}")
 
 
 @outbox_app.command("retry")
 def outbox_retry(entry_id: Annotated[int, typer.Argument(help="The id from outbox list.")]) -> None:
     """Send a parked or waiting entry again, now."""
-    from service.store.outbox import PENDING
+    from service.store.base import PENDING
 
     _set_entry(entry_id, PENDING)
 
@@ -138,7 +129,7 @@ def outbox_retry(entry_id: Annotated[int, typer.Argument(help="The id from outbo
 @outbox_app.command("park")
 def outbox_park(entry_id: Annotated[int, typer.Argument(help="The id from outbox list.")]) -> None:
     """Stop trying an entry; it stays, marked failed, for a person to look at."""
-    from service.store.outbox import FAILED
+    from service.store.base import FAILED
 
     _set_entry(entry_id, FAILED)
 
@@ -153,20 +144,23 @@ def deliver(
         raise typer.BadParameter("set CAPNOTE_FORWARD_URL first", param_hint="settings")
     from service.delivery import DeliveryWorker
 
-    worker = DeliveryWorker(_engine(settings.database_url, migrate=True), receiver)
-    try:
-        if once:
-            typer.echo(f"{worker.run_once()} entries tried")
-            return
-        stop = threading.Event()
-        signal.signal(signal.SIGTERM, lambda *_: stop.set())
-        typer.echo(f"delivering to {receiver.base_url} (Ctrl-C to stop)")
+    async def run(store: Store) -> None:
+        worker = DeliveryWorker(store, receiver)
         try:
-            worker.run_forever(stop)
-        except KeyboardInterrupt:
-            stop.set()
-    finally:
-        worker.close()
+            if once:
+                typer.echo(f"{await worker.run_once()} entries tried")
+                return
+            stop = asyncio.Event()
+            asyncio.get_running_loop().add_signal_handler(signal.SIGTERM, stop.set)
+            typer.echo(f"delivering to {receiver.base_url} (Ctrl-C to stop)")
+            await worker.run_forever(stop)
+        finally:
+            await worker.aclose()
+
+    try:
+        _with_store(run, migrate=True)
+    except KeyboardInterrupt:
+        typer.echo("stopped")
 
 
 def serve(
@@ -180,9 +174,9 @@ def serve(
 
     settings = Settings()
     # Migrated once, here, so that workers never race to migrate.
-    engine = _engine(settings.database_url, migrate=True)
+    _migrated(settings.database_url)
     if demo:
-        _load_demo(settings, engine)
+        _load_demo(settings)
     os.environ["CAPNOTE_MIGRATE_ON_START"] = "false"
     # The service has no /docs page (its script would come from a CDN, which the service's
     # CSP and many hospital networks refuse); the OpenAPI document is served as JSON.
@@ -190,13 +184,10 @@ def serve(
     serving.run("service.app:app_from_environment", host, port, workers)
 
 
-def _load_demo(settings: Settings, engine: Engine) -> None:
+def _load_demo(settings: Settings) -> None:
     """Store the example notes and print a clinician token to try the API with."""
-    from sqlmodel import Session
-
     from service.app import create_app
     from service.notes import Principal
-    from service.store import repository
 
     notes = create_app(settings.model_copy(update={"migrate_on_start": False})).state.notes
     who = Principal(label="demo loader", role="submitter")
@@ -206,15 +197,14 @@ def _load_demo(settings: Settings, engine: Engine) -> None:
             f"no demo notes in {DEMO_NOTES}; run from a checkout", param_hint="--demo"
         )
 
-    async def load() -> None:
+    async def load() -> str:
         try:
             for path in demo:
                 await notes.submit(path.read_bytes(), who)
+            token, _id = await notes.store.new_token("clinician", "demo", datetime.now(UTC))
+            return str(token)
         finally:
-            await notes.ledger.aclose()
+            await notes.store.aclose()
 
-    asyncio.run(load())
-    with Session(engine) as session:
-        token, _row = repository.new_token(session, "clinician", "demo", datetime.now(UTC))
-        session.commit()
+    token = asyncio.run(load())
     typer.echo(f"demo notes loaded; demo clinician token: {token}")

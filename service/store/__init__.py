@@ -1,1 +1,1 @@
-"""Storage: tables, migrations and repository functions (SQLite or PostgreSQL)."""
+"""Storage: the Store (base.py) with a driver per engine, its tables and migrations."""

@@ -1,4 +1,7 @@
-"""Engines and migrations: SQLite (WAL, busy timeout) by default, PostgreSQL in production."""
+"""Opening a store, and migrating its schema: SQLite by default, PostgreSQL in production.
+
+The SQLAlchemy engine here serves Alembic's migrations only; everything the service reads
+and writes goes through the Store (service.store.base)."""
 
 from __future__ import annotations
 
@@ -10,10 +13,9 @@ from alembic.config import Config
 from sqlalchemy import Engine, create_engine, event, text
 from sqlalchemy.engine import make_url
 
-from service.errors import UnavailableError
-from service.store.ledger import Ledger
-from service.store.ledger_pg import PostgresLedger
-from service.store.ledger_sqlite import SqliteLedger
+from service.store.base import Store
+from service.store.postgres import PostgresStore
+from service.store.sqlite import SqliteStore
 
 MIGRATIONS = Path(__file__).parent / "migrations"
 # How long SQLite waits for another writer before giving up (ms): writers queue, clients
@@ -22,7 +24,7 @@ SQLITE_BUSY_MS = 15000
 
 
 def make_engine(url: str) -> Engine:
-    """An engine for the URL, set up for concurrent use."""
+    """An engine for the URL, for migrations (and tests that look at the tables)."""
     parsed = make_url(url)
     if parsed.get_backend_name() == "sqlite":
         engine = create_engine(
@@ -33,11 +35,20 @@ def make_engine(url: str) -> Engine:
     return create_engine(url, pool_pre_ping=True, pool_size=5, max_overflow=10)
 
 
-def open_ledger(url: str) -> Ledger:
-    """The request path's store for the URL (service.store.ledger)."""
+def open_store(url: str) -> Store:
+    """The store for the URL (service.store.base)."""
     if make_url(url).get_backend_name() == "sqlite":
-        return SqliteLedger(url)
-    return PostgresLedger(url)
+        return SqliteStore(url)
+    return PostgresStore(url)
+
+
+def migrate(url: str) -> None:
+    """Bring the database at url to the newest schema, then let its engine go."""
+    engine = make_engine(url)
+    try:
+        upgrade(engine)
+    finally:
+        engine.dispose()
 
 
 def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
@@ -59,12 +70,3 @@ def upgrade(engine: Engine) -> None:
             connection.execute(text("select pg_advisory_xact_lock(5150011)"))
         config.attributes["connection"] = connection
         command.upgrade(config, "head")
-
-
-def ping(engine: Engine) -> None:
-    """Raise UnavailableError when the database does not answer."""
-    try:
-        with engine.connect() as connection:
-            connection.execute(text("select 1"))
-    except Exception as exc:  # any driver error means "not ready"
-        raise UnavailableError("the database is not reachable") from exc

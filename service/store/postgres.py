@@ -1,4 +1,4 @@
-"""The ledger on PostgreSQL: asynchronous psycopg on a pool, one statement per call.
+"""The store on PostgreSQL: asynchronous psycopg on a pool, one statement per call.
 
 Every call is one statement and so one round trip, awaited on the event loop (no thread
 hop): psycopg spends more of the request's time per statement than the server does, so
@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import asyncio
 from collections.abc import Sequence
-from datetime import UTC
+from datetime import UTC, datetime
 from typing import Any
 
 import psycopg
@@ -24,17 +24,13 @@ from sqlalchemy.engine import make_url
 
 from service.derive import PriorSession
 from service.errors import UnavailableError
-from service.store.ledger import (
+from service.store.base import (
     VERSION_COLUMNS,
     DuplicateVersionError,
-    Ledger,
     NewVersion,
-    TokenRow,
-    VersionRow,
-    compiled,
+    Sql,
+    Store,
     sessions_from_rows,
-    token_row,
-    version_row,
 )
 
 # Connections per process: enough for the requests one event loop has in flight.
@@ -97,16 +93,16 @@ _WRITES = {
 }
 
 
-class PostgresLedger(Ledger):
-    """The ledger on one PostgreSQL database (see the module docstring)."""
+class PostgresStore(Store):
+    """The store on one PostgreSQL database (see the module docstring)."""
 
     def __init__(self, url: str) -> None:
+        super().__init__(pg_dialect.dialect())  # type: ignore[no-untyped-call]
         # libpq takes SQLAlchemy's URL once the driver name is dropped (host and port may
         # sit in its query, as for a socket directory).
         self._conninfo = (
             make_url(url).set(drivername="postgresql").render_as_string(hide_password=False)
         )
-        self._sql = compiled(pg_dialect.dialect())  # type: ignore[no-untyped-call]
         self._pool: AsyncConnectionPool[Any] | None = None
         self._loop: asyncio.AbstractEventLoop | None = None
 
@@ -128,7 +124,7 @@ class PostgresLedger(Ledger):
             await pool.open()
             self._pool, self._loop = pool, loop
         elif self._loop is not loop:
-            raise RuntimeError("this ledger's connections belong to another event loop")
+            raise RuntimeError("this store's connections belong to another event loop")
         return self._pool
 
     async def _rows(self, sql: str, params: dict[str, Any]) -> list[Any]:
@@ -152,11 +148,11 @@ class PostgresLedger(Ledger):
 
     # -- the operations -----------------------------------------------------------------------
 
-    async def token(self, digest: str) -> TokenRow | None:
-        """The live token with this SHA-256 digest, or None."""
-        sql = self._sql["token"]
-        rows = await self._rows(sql.text, sql.params({"digest": digest}))
-        return token_row(rows[0] if rows else None, digest)
+    async def _fetch(self, sql: Sql, params: dict[str, Any]) -> list[Any]:
+        return await self._rows(sql.text, sql.params(params))
+
+    def _time(self, moment: datetime) -> datetime:
+        return moment.astimezone(UTC)
 
     async def before_write(
         self, key: str, patient: tuple[str, str], eye: str
@@ -166,10 +162,6 @@ class PostgresLedger(Ledger):
         rows = await self._rows(_BEFORE_WRITE, params)
         hashes = [row[1] for row in rows if row[0] == "hash"]
         return hashes, sessions_from_rows(key, [row[1:] for row in rows if row[0] == "session"])
-
-    async def _versions(self, statement: str, params: dict[str, Any]) -> list[VersionRow]:
-        sql = self._sql[statement]
-        return [version_row(r) for r in await self._rows(sql.text, sql.params(params))]
 
     async def write_many(self, versions: Sequence[NewVersion], *, forward: bool) -> None:
         """Store the versions: one statement each, in one transaction when several."""

@@ -1,4 +1,4 @@
-"""The ledger on SQLite: statements on the event loop, checkpoints in a thread of their own.
+"""The store on SQLite: statements on the event loop, checkpoints in a thread of their own.
 
 SQLite statements take microseconds, so they run on the loop itself, on one connection per
 process: no thread hop, no lock hand-over. Writers of several processes take turns on
@@ -25,18 +25,13 @@ from sqlalchemy.engine import make_url
 
 from service.derive import PriorSession
 from service.errors import UnavailableError
-from service.store.ledger import (
+from service.store.base import (
     VERSION_COLUMNS,
     DuplicateVersionError,
-    Ledger,
     NewVersion,
     Sql,
-    TokenRow,
-    VersionRow,
-    compiled,
+    Store,
     sessions_from_rows,
-    token_row,
-    version_row,
 )
 
 log = logging.getLogger("capnote.store")
@@ -46,12 +41,12 @@ T = TypeVar("T")
 LOCK_WAIT_S = 15.0
 
 
-class SqliteLedger(Ledger):
-    """The ledger on one SQLite file (see the module docstring)."""
+class SqliteStore(Store):
+    """The store on one SQLite file (see the module docstring)."""
 
     def __init__(self, url: str) -> None:
+        super().__init__(sqlite_dialect.dialect(paramstyle="named"))
         self._path = make_url(url).database or ":memory:"
-        self._sql = compiled(sqlite_dialect.dialect(paramstyle="named"))
         self._connection: sqlite3.Connection | None = None
         self._checkpointer: Checkpointer | None = None
         # A sqlite3 connection must not be used by two threads at once: calls run on the
@@ -126,15 +121,11 @@ class SqliteLedger(Ledger):
 
     # -- the operations -----------------------------------------------------------------------
 
-    async def token(self, digest: str) -> TokenRow | None:
-        """The live token with this SHA-256 digest, or None."""
-        sql = self._sql["token"]
+    async def _fetch(self, sql: Sql, params: dict[str, Any]) -> list[Any]:
+        return await self._run(lambda connection: _all(connection, sql, params))
 
-        def work(connection: sqlite3.Connection) -> TokenRow | None:
-            rows = _all(connection, sql, {"digest": digest})
-            return token_row(rows[0] if rows else None, digest)
-
-        return await self._run(work)
+    def _time(self, moment: datetime) -> str:
+        return _moment(moment)
 
     async def before_write(
         self, key: str, patient: tuple[str, str], eye: str
@@ -148,10 +139,6 @@ class SqliteLedger(Ledger):
             return hashes, sessions_from_rows(key, _all(connection, earlier_sql, params))
 
         return await self._run(work)
-
-    async def _versions(self, statement: str, params: dict[str, Any]) -> list[VersionRow]:
-        sql = self._sql[statement]
-        return await self._run(lambda c: [version_row(r) for r in _all(c, sql, params)])
 
     async def write_many(self, versions: Sequence[NewVersion], *, forward: bool) -> None:
         """Store the versions in one transaction (see Ledger)."""

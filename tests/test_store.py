@@ -1,7 +1,8 @@
-"""The request path's store (service.store.ledger) on real databases: what it writes reads back
-through the ORM, a SQLite writer that meets a held lock waits without stopping the event
-loop, WAL checkpoints run off the request path, and stored rows from the previous layout
-are converted by migration 0003."""
+"""The store (service.store.base) on real databases: what it writes reads back through the
+ORM's table definitions, tokens, the audit trail and the outbox keep their promises on both
+engines, a SQLite writer that meets a held lock waits without stopping the event loop, WAL
+checkpoints run off the request path, and stored rows from the previous layout are
+converted by migration 0003."""
 
 from __future__ import annotations
 
@@ -10,6 +11,7 @@ import json
 import sqlite3
 import threading
 import time
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 
 import orjson
@@ -26,36 +28,41 @@ from service.config import Settings
 from service.fhir.readmodel import ROLE_MAX, parse_id, resource_id
 from service.notes import NoteService, Principal, content_hash, note_key
 from service.policy import load_policy
-from service.store import repository
+from service.store.base import FAILED, PENDING, Store
 from service.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
-from service.store.database import MIGRATIONS, make_engine, upgrade
-from service.store.ledger_sqlite import SqliteLedger
+from service.store.database import MIGRATIONS, make_engine, migrate, open_store, upgrade
+from service.store.sqlite import SqliteStore
 from service.store.tables import FhirIndex, NoteVersion
-from tests.conftest import NOW, VALID, routine, sync_notes
+from tests.conftest import NOW, VALID, on_store, routine, sync_notes
 
-WHO = Principal("ledger test", "submitter")
+WHO = Principal("store test", "submitter")
 
 
 def service_on(url: str) -> NoteService:
     """A NoteService on a SQLite file (these tests are SQLite's own)."""
-    engine = make_engine(url)
-    upgrade(engine)
-    return NoteService(engine, SqliteLedger(url), Assessor(load_policy()), lambda: NOW)
+    migrate(url)
+    return NoteService(SqliteStore(url), Assessor(load_policy()), lambda: NOW)
+
+
+def utc(moment: datetime) -> datetime:
+    """A time the ORM read back, as aware UTC (SQLite keeps it naive)."""
+    return moment.replace(tzinfo=UTC) if moment.tzinfo is None else moment.astimezone(UTC)
 
 
 def test_a_written_version_reads_back_through_the_orm(database_url: str) -> None:
     notes = sync_notes(database_url)
     service = notes.service
+    engine = make_engine(database_url)
     try:
         _created, stored = notes.submit(VALID[0].read_bytes(), WHO)
-        with Session(service.engine) as session:
+        with Session(engine) as session:
             row = session.exec(select(NoteVersion)).one()
             index = session.exec(select(FhirIndex)).all()
-        latest = notes.run(service.ledger.latest(stored.key))
+        latest = notes.run(service.store.latest(stored.key))
         assert latest is not None
         # Times as the ORM reads what the driver wrote, and back.
-        assert repository.from_db(row.recorded_at) == NOW == latest.recorded_at
-        assert repository.from_db(row.started_at) == latest.started_at
+        assert utc(row.recorded_at) == NOW == latest.recorded_at
+        assert utc(row.started_at) == latest.started_at
         assert unpack_bundle(bytes(row.bundle)) == stored.bundle_json
         assert {(i.resource_type, i.latest) for i in index} == {
             ("Procedure", True),
@@ -63,6 +70,84 @@ def test_a_written_version_reads_back_through_the_orm(database_url: str) -> None
         }
     finally:
         notes.close()
+        engine.dispose()
+
+
+def test_tokens_audit_and_outbox_on_both_engines(database_url: str) -> None:
+    notes = sync_notes(database_url, forward=True)
+    store = notes.store
+    try:
+        token, token_id = notes.run(store.new_token("auditor", "desk 3", NOW))
+        assert token.startswith("cap_")
+        [info] = notes.run(store.tokens())
+        assert (info.id, info.role, info.label, info.created_at) == (
+            token_id,
+            "auditor",
+            "desk 3",
+            NOW,
+        )
+        assert notes.run(store.revoke_token(token_id, NOW))
+        assert not notes.run(store.revoke_token(token_id, NOW))  # already revoked
+        assert notes.run(store.tokens())[0].revoked_at == NOW
+        _created, stored = notes.submit(routine_bytes(), WHO)
+        [entry] = notes.run(store.audit_entries(stored.key, 0, 10))
+        assert (entry.actor, entry.action, entry.version, entry.at) == (WHO.label, "create", 1, NOW)
+        assert notes.run(store.audit_entries(None, 1, 10)) == []  # the second page is empty
+        # The outbox: claimed once, then not again while the lease holds.
+        claimed = notes.run(store.claim("w1", NOW, timedelta(minutes=2), 10))
+        assert [(e.note_key, e.state, e.attempts) for e in claimed] == [
+            (stored.key, "delivering", 1)
+        ]
+        assert notes.run(store.claim("w2", NOW, timedelta(minutes=2), 10)) == []
+        later = NOW + timedelta(minutes=3)  # the lease ran out: another worker may take it
+        [again] = notes.run(store.claim("w2", later, timedelta(minutes=2), 10))
+        assert again.attempts == 2
+        assert not notes.run(store.delivered(again.id, "w1", 200, later))  # w1 lost it
+        assert notes.run(store.retry_later(again.id, "w2", 503, "busy", later))
+        assert notes.run(store.outbox(PENDING, 10))[0].last_error == "busy"
+        assert notes.run(store.operator_set(again.id, FAILED, later))
+        assert [e.state for e in notes.run(store.outbox_of_note(stored.key))] == ["failed"]
+        assert notes.run(store.operator_set(again.id, PENDING, later))
+        [last] = notes.run(store.claim("w3", later, timedelta(minutes=2), 10))
+        assert notes.run(store.delivered(last.id, "w3", 200, later))
+        assert not notes.run(store.operator_set(last.id, PENDING, later))  # delivered stays
+        bundle = notes.run(store.bundle_of(last))
+        assert unpack_bundle(bundle) == stored.bundle_json
+    finally:
+        notes.close()
+
+
+def test_two_stores_never_claim_one_entry_twice(database_url: str) -> None:
+    # Two stores are two connections (two processes' workers): the claim is one statement
+    # whose condition is checked on the row (and, on PostgreSQL, SKIP LOCKED).
+    notes = sync_notes(database_url, forward=True)
+    try:
+        for i in range(20):
+            data = routine()
+            data["note_id"]["value"] = f"LN-CLAIM-{i}"
+            notes.submit(json.dumps(data).encode(), WHO)
+    finally:
+        notes.close()
+
+    async def race() -> list[int]:
+        stores: list[Store] = [open_store(database_url) for _ in range(3)]
+        try:
+            batches = await asyncio.gather(
+                *(
+                    s.claim(f"w{n}-{k}", NOW, timedelta(minutes=2), 3)
+                    for k in range(4)
+                    for n, s in enumerate(stores)
+                )
+            )
+            return [e.id for batch in batches for e in batch]
+        finally:
+            for s in stores:
+                await s.aclose()
+
+    ids = asyncio.run(race())
+    assert len(ids) == len(set(ids))  # nobody got an entry another had
+    assert len(ids) == 20  # 12 claims of up to 3 took every one of the 20
+    assert on_store(database_url, lambda s: s.outbox(PENDING, 100)) == []
 
 
 def test_a_held_write_lock_is_waited_for_without_stopping_the_loop(tmp_path: Path) -> None:
@@ -97,13 +182,12 @@ def test_a_held_write_lock_is_waited_for_without_stopping_the_loop(tmp_path: Pat
         assert ticks >= 10  # ... and the loop went on meanwhile
     finally:
         other.close()
-        ledger_of(service).close()
-        service.engine.dispose()
+        sqlite_of(service).close()
 
 
-def ledger_of(service: NoteService) -> SqliteLedger:
-    assert isinstance(service.ledger, SqliteLedger)
-    return service.ledger
+def sqlite_of(service: NoteService) -> SqliteStore:
+    assert isinstance(service.store, SqliteStore)
+    return service.store
 
 
 def routine_bytes() -> bytes:
@@ -113,14 +197,13 @@ def routine_bytes() -> bytes:
 def test_checkpoints_copy_the_log_into_the_database(tmp_path: Path) -> None:
     path = tmp_path / "ckpt.sqlite3"
     service = service_on(f"sqlite:///{path}")
-    asyncio.run(service.ledger.start())
+    asyncio.run(service.store.start())
     before = path.stat().st_size
     for i in range(30):
         data = routine()
         data["note_id"]["value"] = f"LN-CKPT-{i}"
         asyncio.run(service.submit(json.dumps(data).encode(), WHO))
-    ledger_of(service).close()  # stops the checkpoints, with a last one
-    service.engine.dispose()
+    sqlite_of(service).close()  # stops the checkpoints, with a last one
     assert path.stat().st_size > before  # pages reached the database file
     with sqlite3.connect(path) as connection:
         # A reader that opens the file finds every note.
@@ -138,7 +221,6 @@ def test_the_app_checkpoints_in_a_thread_of_its_own(tmp_path: Path) -> None:
         mine = checkpoint_threads() - others
         assert len(mine) == 1
     assert not mine & checkpoint_threads()  # stopped with the app
-    app.state.engine.dispose()
 
 
 @pytest.mark.parametrize("path", VALID, ids=lambda p: p.name)
