@@ -26,8 +26,9 @@ from service.errors import ConflictError, InputError, NotFoundError, Preconditio
 from service.fhir.common import Emitted, Version, stable_uuid
 from service.fhir.readmodel import read_references, searchables
 from service.findings import Finding, has_errors
-from service.note_input import check_match, json_object, known_key, problem, reason_text
-from service.rules import Context, check_payload
+from service.note_input import json_object, known_key, problem, reason_text
+from service.rules import Context, check_payload, lifecycle
+from service.rules.lifecycle import Latest
 from service.store.base import (
     AuditRow,
     DuplicateVersionError,
@@ -119,26 +120,6 @@ SYSTEM = Principal("capnote (system)", "system")
 def _session(change: Change) -> PriorSession:
     """The change's session as the eye's totals count it."""
     return PriorSession(change.note.started_at, total_energy_mj(change.note.laser), change.key)
-
-
-def _same_chart(old: Note, new: Note) -> None:
-    """An amendment stays on its patient and eye: moving a note would move its results
-    between charts at every receiver."""
-    for field, before, after in (
-        (
-            "note.patient",
-            (old.patient.system, old.patient.value),
-            (new.patient.system, new.patient.value),
-        ),
-        ("note.eye", old.eye, new.eye),
-    ):
-        if before != after:
-            raise problem(
-                "identity-change",
-                field,
-                f"an amendment cannot change {field.removeprefix('note.')}",
-                "void this note with a reason, then send a new note for the right patient and eye",
-            )
 
 
 def note_key(note: Note) -> str:
@@ -378,32 +359,15 @@ class NoteService:
             )
         note_json = note.model_dump_json(exclude_none=True)
         latest = await self._latest(key)
-        if latest.content_hash == content_hash(note_json) and latest.status != "void":
+        old = Note.model_validate_json(latest.note_json)
+        facts = Latest(latest.version, latest.status, latest.content_hash, old)
+        if lifecycle.amendment(facts, note, content_hash(note_json), reason, if_match) != "store":
             return _stored(latest)  # a retry of an amendment that already landed
-        check_match(latest.version, if_match)
-        if latest.status == "void":
-            raise ConflictError("the note was voided; it cannot be amended")
-        if latest.status == "final" and not reason:
-            raise problem(
-                "missing-field",
-                "reason",
-                "amending a signed note needs a reason",
-                "a final note is amended only with a reason",
-            )
-        if latest.status == "final" and note.status == "draft":
-            raise problem(
-                "status-regression",
-                "note.status",
-                "a signed note cannot go back to draft",
-                "once final, later versions are final",
-            )
         emitted = Version(
             latest.version + 1,
             amends_final=latest.status == "final",
             previous=emitted_before(latest),
         )
-        old = Note.model_validate_json(latest.note_json)
-        _same_chart(old, note)
         others = await self._others(note, key)
         change = Change(
             key, note, note_json, findings, others, emitted, note.status, reason, "amend"
@@ -419,10 +383,10 @@ class NoteService:
         key = known_key(key)
         reason = reason_text(json_object(body, allowed={"reason"}).get("reason"), required=True)
         latest = await self._latest(key)
-        if latest.status == "void":
-            return _stored(latest)  # voided already (a retry, or someone else did)
-        check_match(latest.version, if_match)
         note = Note.model_validate_json(latest.note_json)
+        facts = Latest(latest.version, latest.status, latest.content_hash, note)
+        if lifecycle.voiding(facts, if_match) != "store":
+            return _stored(latest)  # voided already (a retry, or someone else did)
         emitted = Version(latest.version + 1, voided=True, amends_final=latest.status == "final")
         others = await self._others(note, key)
         change = Change(key, note, latest.note_json, [], others, emitted, "void", reason, "void")
