@@ -12,7 +12,17 @@ from pydantic import ValidationError
 from service.app import create_app
 from service.config import Settings
 from service.fhir.bundle import OutputCheck
-from tests.conftest import EXAMPLES, INVALID, NOW, VALID, Api, new_token, revoke_token, routine
+from tests.conftest import (
+    EXAMPLES,
+    INVALID,
+    NOW,
+    ROOT,
+    VALID,
+    Api,
+    new_token,
+    revoke_token,
+    routine,
+)
 from tests.fhir_r4_check import r4_problems
 
 ROUTINE = (EXAMPLES / "notes" / "right-routine.json").read_text()
@@ -431,3 +441,54 @@ def test_the_r4b_output_check_setting_serves_the_same_notes(database_url: str) -
 def test_an_unknown_output_check_is_refused() -> None:
     with pytest.raises(ValidationError):
         Settings(output_check="everything")  # type: ignore[arg-type]
+
+
+def answers_validator(name: str) -> Any:
+    """A validator for one answer of the published schemas/answers.schema.json."""
+    from jsonschema import Draft202012Validator
+
+    schema = json.loads((ROOT / "schemas" / "answers.schema.json").read_text())
+    return Draft202012Validator({**schema, "$ref": f"#/$defs/{name}"})
+
+
+def test_every_answer_has_the_published_shape(api: Api) -> None:
+    # An independent validator (jsonschema) against the committed file: a field renamed
+    # inside capnote fails here rather than changing the API silently.
+    created = post(api, ROUTINE)
+    key = created.json()["id"]
+    changed = routine()
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    patient = routine()["patient"]
+    h = api.headers("auditor")
+    answers = {
+        "NoteAnswer": [
+            created.json(),
+            api.client.get(f"/notes/{key}", headers=h).json(),
+            amend(api, key, changed, reason="re-measured").json(),
+        ],
+        "CheckAnswer": [
+            api.client.post("/notes/check", content=ROUTINE, headers=api.headers("analyst")).json(),
+        ],
+        "NoteListAnswer": [
+            api.client.get(
+                "/notes", params={"patient": f"{patient['system']}|{patient['value']}"}, headers=h
+            ).json()
+        ],
+        "VersionsAnswer": [api.client.get(f"/notes/{key}/versions", headers=h).json()],
+        "DeliveryAnswer": [api.client.get(f"/notes/{key}/delivery", headers=h).json()],
+        "AuditAnswer": [api.client.get("/audit", headers=h).json()],
+        "StatusAnswer": [api.client.get("/readyz").json()],
+    }
+    for name, bodies in answers.items():
+        validator = answers_validator(name)
+        for body in bodies:
+            assert [e.message for e in validator.iter_errors(body)] == [], name
+    # And the OpenAPI document names the same shapes.
+    spec = api.client.get("/openapi.json").json()
+    created_schema = spec["paths"]["/notes"]["post"]["responses"]["201"]["content"]
+    assert created_schema["application/json"]["schema"] == {
+        "$ref": "#/components/schemas/NoteAnswer"
+    }
+    assert {"bundle", "resources", "due"} <= set(
+        spec["components"]["schemas"]["NoteAnswer"]["properties"]
+    )

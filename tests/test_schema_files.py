@@ -9,21 +9,22 @@ from pathlib import Path
 import pytest
 from jsonschema import Draft202012Validator
 
-from schemas.export import CODE_SYSTEM, NOTE_SCHEMA, generated
+from schemas.export import ANSWERS_SCHEMA, CODE_SYSTEM, NOTE_SCHEMA, generated
 from tests.conftest import INVALID, ROOT, VALID
 from tests.fhir_r4_check import r4_problems
 
 SCHEMAS = ROOT / "schemas"
 
 
-@pytest.mark.parametrize("name", [NOTE_SCHEMA, CODE_SYSTEM])
+@pytest.mark.parametrize("name", [NOTE_SCHEMA, ANSWERS_SCHEMA, CODE_SYSTEM])
 def test_committed_file_matches_the_models(name: str) -> None:
     committed = (SCHEMAS / name).read_bytes()
     assert committed == generated()[name], f"schemas/{name} is stale: run `capnote schema`"
 
 
-def test_schema_is_valid_draft_2020_12() -> None:
-    Draft202012Validator.check_schema(json.loads((SCHEMAS / NOTE_SCHEMA).read_text()))
+@pytest.mark.parametrize("name", [NOTE_SCHEMA, ANSWERS_SCHEMA])
+def test_schema_is_valid_draft_2020_12(name: str) -> None:
+    Draft202012Validator.check_schema(json.loads((SCHEMAS / name).read_text()))
 
 
 @pytest.mark.parametrize("path", VALID, ids=lambda p: p.name)

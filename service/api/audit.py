@@ -7,6 +7,7 @@ from typing import Annotated
 from fastapi import APIRouter, Depends, Query
 from fastapi.responses import Response
 
+from service.api.answers import AuditAnswer
 from service.api.auth import AUDIT, allow
 from service.api.deps import Audit
 from service.api.docs import responses
@@ -16,7 +17,7 @@ from service.notes import Principal
 router = APIRouter(tags=["audit"])
 
 
-@router.get("/audit", responses=responses(200))
+@router.get("/audit", responses=responses(200, model=AuditAnswer))
 async def audit_trail(
     trail: Audit,
     _who: Annotated[Principal, Depends(allow(*AUDIT))],

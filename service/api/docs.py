@@ -8,8 +8,11 @@ from typing import Any
 
 from fastapi import FastAPI
 from fastapi.openapi.utils import get_openapi
+from pydantic import BaseModel
+from pydantic.json_schema import models_json_schema
 
 from schemas.note import Note
+from service.api.answers import ANSWERS
 
 _NOTE_REF = {"$ref": "#/components/schemas/Note"}
 _OUTCOME_REF = {"$ref": "#/components/schemas/OperationOutcome"}
@@ -77,12 +80,18 @@ _MEANING = {
 }
 
 
-def responses(*codes: int, media: str = "application/json") -> dict[int | str, dict[str, Any]]:
-    """The documented answers of a route: its successes (in media) and every error it can give."""
+def responses(
+    *codes: int, media: str = "application/json", model: type[BaseModel] | None = None
+) -> dict[int | str, dict[str, Any]]:
+    """The documented answers of a route: its successes (in media, shaped as model when
+    given: service.api.answers) and every error it can give."""
     out: dict[int | str, dict[str, Any]] = {}
+    success = (
+        {} if model is None else {"schema": {"$ref": f"#/components/schemas/{model.__name__}"}}
+    )
     for code in sorted({*codes, 401, 403, 413, 415, 422, 500, 503}):
         if code < 400:
-            out[code] = {"description": _MEANING[code], "content": {media: {}}}
+            out[code] = {"description": _MEANING[code], "content": {media: success}}
         else:
             out[code] = {
                 "description": _MEANING[code],
@@ -136,6 +145,12 @@ def install(app: FastAPI) -> None:
             title=app.title, version=app.version, description=app.description, routes=app.routes
         )
         schemas = spec.setdefault("components", {}).setdefault("schemas", {})
+        _keys, answers = models_json_schema(
+            [(model, "serialization") for model in ANSWERS],
+            ref_template="#/components/schemas/{model}",
+        )
+        schemas.update(answers["$defs"])
+        # The note as a request body: the contract as the service validates it.
         note = Note.model_json_schema(ref_template="#/components/schemas/{model}")
         schemas.update(note.pop("$defs", {}))
         schemas["Note"] = note

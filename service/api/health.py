@@ -5,6 +5,7 @@ from __future__ import annotations
 from fastapi import APIRouter
 from fastapi.responses import Response
 
+from service.api.answers import StatusAnswer
 from service.api.deps import Notes
 from service.api.docs import responses
 from service.api.media import json_response
@@ -12,13 +13,13 @@ from service.api.media import json_response
 router = APIRouter(tags=["health"])
 
 
-@router.get("/healthz", responses=responses(200))
+@router.get("/healthz", responses=responses(200, model=StatusAnswer))
 def healthz() -> Response:
     """The process is up."""
     return json_response({"status": "ok"})
 
 
-@router.get("/readyz", responses=responses(200, 503))
+@router.get("/readyz", responses=responses(200, 503, model=StatusAnswer))
 async def readyz(notes: Notes) -> Response:
     """The database answers, on the connections that serve requests (503 with an
     OperationOutcome when it does not)."""

@@ -9,6 +9,13 @@ from fastapi import APIRouter, Depends, Header, Path, Query, Request
 from fastapi.responses import Response
 from pydantic import AwareDatetime
 
+from service.api.answers import (
+    CheckAnswer,
+    DeliveryAnswer,
+    NoteAnswer,
+    NoteListAnswer,
+    VersionsAnswer,
+)
 from service.api.auth import CHECK, READ, WRITE, allow
 from service.api.deps import Notes
 from service.api.docs import AMEND_BODY, CHECK_BODY, NOTE_BODY, VOID_BODY, responses
@@ -52,7 +59,12 @@ def _if_match(value: str | None) -> int | None:
     return int(text)
 
 
-@router.post("", status_code=201, openapi_extra=NOTE_BODY, responses=responses(200, 201, 409, 422))
+@router.post(
+    "",
+    status_code=201,
+    openapi_extra=NOTE_BODY,
+    responses=responses(200, 201, 409, 422, model=NoteAnswer),
+)
 async def submit_note(
     request: Request, notes: Notes, who: Annotated[Principal, Depends(allow(*WRITE))]
 ) -> Response:
@@ -64,7 +76,7 @@ async def submit_note(
     return _answer(stored, 201 if created else 200)
 
 
-@router.post("/check", openapi_extra=CHECK_BODY, responses=responses(200))
+@router.post("/check", openapi_extra=CHECK_BODY, responses=responses(200, model=CheckAnswer))
 async def check_note(
     request: Request, notes: Notes, _who: Annotated[Principal, Depends(allow(*CHECK))]
 ) -> Response:
@@ -89,7 +101,7 @@ async def check_note(
     return json_response(await notes.check(body))
 
 
-@router.get("", responses=responses(200, 422))
+@router.get("", responses=responses(200, 422, model=NoteListAnswer))
 async def list_notes(
     notes: Notes,
     _who: Annotated[Principal, Depends(allow(*READ))],
@@ -112,7 +124,7 @@ async def list_notes(
     return json_response(body)
 
 
-@router.get("/{note_id}", responses=responses(200, 404))
+@router.get("/{note_id}", responses=responses(200, 404, model=NoteAnswer))
 async def read_note(
     notes: Notes, note_id: str, _who: Annotated[Principal, Depends(allow(*READ))]
 ) -> Response:
@@ -120,7 +132,7 @@ async def read_note(
     return _answer(await notes.get(note_id))
 
 
-@router.get("/{note_id}/versions", responses=responses(200, 404))
+@router.get("/{note_id}/versions", responses=responses(200, 404, model=VersionsAnswer))
 async def list_versions(
     notes: Notes, note_id: str, _who: Annotated[Principal, Depends(allow(*READ))]
 ) -> Response:
@@ -129,7 +141,7 @@ async def list_versions(
     return json_response({"id": note_id, "versions": versions})
 
 
-@router.get("/{note_id}/versions/{version}", responses=responses(200, 404))
+@router.get("/{note_id}/versions/{version}", responses=responses(200, 404, model=NoteAnswer))
 async def read_version(
     notes: Notes,
     note_id: str,
@@ -140,7 +152,7 @@ async def read_version(
     return _answer(await notes.get(note_id, version))
 
 
-@router.get("/{note_id}/delivery", responses=responses(200, 404))
+@router.get("/{note_id}/delivery", responses=responses(200, 404, model=DeliveryAnswer))
 async def delivery_state(
     notes: Notes, note_id: str, _who: Annotated[Principal, Depends(allow(*READ))]
 ) -> Response:
@@ -162,7 +174,11 @@ async def _change(
     return _answer(await change(note_id, body, who, _if_match(if_match)))
 
 
-@router.put("/{note_id}", openapi_extra=AMEND_BODY, responses=responses(200, 404, 409, 412, 422))
+@router.put(
+    "/{note_id}",
+    openapi_extra=AMEND_BODY,
+    responses=responses(200, 404, 409, 412, 422, model=NoteAnswer),
+)
 async def amend_note(
     request: Request,
     notes: Notes,
@@ -174,7 +190,11 @@ async def amend_note(
     return await _change(request, notes, "amend", note_id, who, if_match)
 
 
-@router.post("/{note_id}/void", openapi_extra=VOID_BODY, responses=responses(200, 404, 412, 422))
+@router.post(
+    "/{note_id}/void",
+    openapi_extra=VOID_BODY,
+    responses=responses(200, 404, 412, 422, model=NoteAnswer),
+)
 async def void_note(
     request: Request,
     notes: Notes,
