@@ -10,6 +10,8 @@ from collections.abc import Iterable
 from dataclasses import dataclass
 from enum import StrEnum
 
+from service.errors import InputError
+
 
 class Severity(StrEnum):
     """How much a finding matters; only errors block saving."""
@@ -27,7 +29,7 @@ _IDENTIFYING_PREFIXES = ("patient", "patient_details", "encounter")
 WITHHELD = "(withheld: identifying data)"
 
 
-@dataclass(frozen=True, slots=True)
+@dataclass(frozen=True, slots=True, kw_only=True)
 class Finding:
     """One problem or remark at one location.
 
@@ -81,3 +83,29 @@ _ORDER = {Severity.ERROR: 0, Severity.WARNING: 1, Severity.INFORMATION: 2}
 def ordered(findings: Iterable[Finding]) -> list[Finding]:
     """Errors first, then warnings, then information; stable within each."""
     return sorted(findings, key=lambda f: _ORDER[f.severity])
+
+
+def refusal(
+    code: str,
+    location: str,
+    message: str,
+    rule: str,
+    *,
+    value: str | None = None,
+    allowed: str | None = None,
+    issue_type: IssueType = "invalid",
+) -> InputError:
+    """A request refused for one reason: an InputError with the one error finding that
+    names the field, the value, the rule and the allowed range (answered as 422 with an
+    OperationOutcome). The one way to build such a refusal."""
+    finding = Finding(
+        severity=Severity.ERROR,
+        code=code,
+        location=location,
+        message=message,
+        rule=rule,
+        value=value,
+        allowed=allowed,
+        issue_type=issue_type,
+    )
+    return InputError(message, [finding])

@@ -32,7 +32,17 @@ def _no_duplicates(pairs: list[tuple[str, Any]]) -> dict[str, Any]:
 
 def _refuse(code: str, message: str, rule: str) -> InputError:
     return InputError(
-        message, [Finding(Severity.ERROR, code, "", message, rule, issue_type="structure")]
+        message,
+        [
+            Finding(
+                severity=Severity.ERROR,
+                code=code,
+                location="",
+                message=message,
+                rule=rule,
+                issue_type="structure",
+            )
+        ],
     )
 
 

@@ -12,7 +12,7 @@ from typing import Any
 import orjson
 
 from service.errors import InputError, NotFoundError, PreconditionError
-from service.findings import Finding, Severity
+from service.findings import refusal
 
 
 def known_key(key: str) -> str:
@@ -28,8 +28,8 @@ def _no_such_note() -> str:
 
 
 def problem(code: str, location: str, message: str, rule: str) -> InputError:
-    finding = Finding(Severity.ERROR, code, location, message, rule, issue_type="required")
-    return InputError(message, [finding])
+    """A refusal of a missing or misplaced part of a request (service.findings.refusal)."""
+    return refusal(code, location, message, rule, issue_type="required")
 
 
 def check_match(latest: int, if_match: int | None) -> None:

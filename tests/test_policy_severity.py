@@ -210,21 +210,45 @@ def test_errors_are_never_changed(policy: Policy) -> None:
     found = findings(note, policy)
     assert any(f.severity is Severity.ERROR and f.code == "out-of-range" for f in found)
     # Even an error that carried a listed code would stay an error.
-    err = Finding(Severity.ERROR, "total-energy-band", "laser.series", "m", "r")
+    err = Finding(
+        severity=Severity.ERROR,
+        code="total-energy-band",
+        location="laser.series",
+        message="m",
+        rule="r",
+    )
     assert graded(err, Context(policy, NOW)) is err
 
 
 def test_a_code_the_table_lacks_keeps_its_checks_severity(policy: Policy) -> None:
     ctx = Context(policy, NOW)
-    new = Finding(Severity.WARNING, "a-code-added-later", "laser", "m", "r")
+    new = Finding(
+        severity=Severity.WARNING,
+        code="a-code-added-later",
+        location="laser",
+        message="m",
+        rule="r",
+    )
     assert graded(new, ctx) is new
     bare = Context(policy.model_copy(update={"severity": {}}), NOW)
-    band = Finding(Severity.WARNING, "total-energy-band", "laser.series", "m", "r")
+    band = Finding(
+        severity=Severity.WARNING,
+        code="total-energy-band",
+        location="laser.series",
+        message="m",
+        rule="r",
+    )
     assert graded(band, bare) is band
 
 
 def test_a_finding_already_at_its_level_is_left_as_it_is(policy: Policy) -> None:
-    f = Finding(Severity.WARNING, "consent-not-recorded", "consent.given", "m", "r")
+    f = Finding(
+        severity=Severity.WARNING,
+        code="consent-not-recorded",
+        location="consent.given",
+        message="m",
+        rule="r",
+    )
     assert graded(f, Context(policy, NOW)) is f
 
 

@@ -60,11 +60,11 @@ async def _validation_error(_request: Request, exc: Exception) -> Response:
         issues.append(
             finding_issue(
                 Finding(
-                    Severity.ERROR,
-                    "request-invalid",
-                    where,
-                    f"{where or 'request'}: {e.get('msg')}",
-                    "the request's parameters",
+                    severity=Severity.ERROR,
+                    code="request-invalid",
+                    location=where,
+                    message=f"{where or 'request'}: {e.get('msg')}",
+                    rule="the request's parameters",
                     issue_type="invalid",
                 )
             )

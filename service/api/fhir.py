@@ -19,7 +19,7 @@ from service.errors import InputError
 from service.fhir.outcome import outcome
 from service.fhir.validate import validate_resource
 from service.fhir_reads import SearchPage
-from service.findings import Finding, Severity
+from service.findings import Finding, Severity, refusal
 from service.notes import Principal
 
 router = APIRouter(prefix="/fhir", tags=["fhir"])
@@ -28,20 +28,7 @@ Reader = Annotated[Principal, Depends(allow(*READ))]
 
 
 def _problem(location: str, message: str, value: str | None = None) -> InputError:
-    return InputError(
-        message,
-        [
-            Finding(
-                Severity.ERROR,
-                "search-invalid",
-                location,
-                message,
-                "FHIR R4 search parameters",
-                value=value,
-                issue_type="invalid",
-            )
-        ],
-    )
+    return refusal("search-invalid", location, message, "FHIR R4 search parameters", value=value)
 
 
 @router.get("/metadata", responses=responses(200, media=FHIR_JSON))
@@ -208,11 +195,12 @@ async def validate(
         findings.insert(
             0,
             Finding(
-                Severity.ERROR,
-                "fhir-type-mismatch",
-                "resourceType",
-                f"resourceType {data.get('resourceType')!r} does not match the URL's {kind}",
-                "POST [base]/[type]/$validate takes a resource of that type",
+                severity=Severity.ERROR,
+                code="fhir-type-mismatch",
+                location="resourceType",
+                message=f"resourceType {data.get('resourceType')!r} does not match the URL's "
+                f"{kind}",
+                rule="POST [base]/[type]/$validate takes a resource of that type",
                 issue_type="invalid",
             ),
         )

@@ -20,8 +20,7 @@ from service.api.auth import CHECK, READ, WRITE, allow
 from service.api.deps import Notes
 from service.api.docs import AMEND_BODY, CHECK_BODY, NOTE_BODY, VOID_BODY, responses
 from service.api.media import JSON, json_body, json_response
-from service.errors import InputError
-from service.findings import Finding, Severity
+from service.findings import refusal
 from service.notes import Principal, StoredNote
 
 router = APIRouter(prefix="/notes", tags=["notes"])
@@ -42,19 +41,13 @@ def _if_match(value: str | None) -> int | None:
         return None
     text = value.strip().removeprefix("W/").strip('"')
     if not text.isdigit():
-        raise InputError(
-            "If-Match is not a version",
-            [
-                Finding(
-                    Severity.ERROR,
-                    "if-match-invalid",
-                    "If-Match",
-                    "If-Match must name a version",
-                    'If-Match: W/"<version>"',
-                    value=value[:40],
-                    issue_type="value",
-                )
-            ],
+        raise refusal(
+            "if-match-invalid",
+            "If-Match",
+            "If-Match must name a version",
+            'If-Match: W/"<version>"',
+            value=value[:40],
+            issue_type="value",
         )
     return int(text)
 
@@ -85,18 +78,12 @@ async def check_note(
     body = await json_body(request)
     if not body.lstrip().startswith(b"{"):
         # Anything but a JSON object is no note at all: refused, not reported on.
-        raise InputError(
+        raise refusal(
+            "wrong-type",
+            "",
             "the body must be a JSON object",
-            [
-                Finding(
-                    Severity.ERROR,
-                    "wrong-type",
-                    "",
-                    "the body must be a JSON object",
-                    "POST /notes/check takes a note (a JSON object)",
-                    issue_type="structure",
-                )
-            ],
+            "POST /notes/check takes a note (a JSON object)",
+            issue_type="structure",
         )
     return json_response(await notes.check(body))
 

@@ -105,22 +105,22 @@ def expand(
 def unreadable(reason: str) -> Finding:
     """The finding for an input that cannot be read."""
     return Finding(
-        Severity.ERROR,
-        "file-unreadable",
-        "",
-        reason,
-        "input files are readable",
+        severity=Severity.ERROR,
+        code="file-unreadable",
+        location="",
+        message=reason,
+        rule="input files are readable",
         issue_type="exception",
     )
 
 
 def _too_long() -> Finding:
     return Finding(
-        Severity.ERROR,
-        "line-too-long",
-        "",
-        f"the line is longer than {MAX_LINE_BYTES // (1024 * 1024)} MiB; not read",
-        "an NDJSON line holds one note or resource",
+        severity=Severity.ERROR,
+        code="line-too-long",
+        location="",
+        message=f"the line is longer than {MAX_LINE_BYTES // (1024 * 1024)} MiB; not read",
+        rule="an NDJSON line holds one note or resource",
         issue_type="too-costly",
     )
 

@@ -35,7 +35,14 @@ _RULE = "FHIR R4 structure (checked with R4B models)"
 
 
 def _error(code: str, location: str, message: str, rule: str, issue_type: str) -> Finding:
-    return Finding(Severity.ERROR, code, location, message, rule, issue_type=issue_type)
+    return Finding(
+        severity=Severity.ERROR,
+        code=code,
+        location=location,
+        message=message,
+        rule=rule,
+        issue_type=issue_type,
+    )
 
 
 def _structure(kind: str, data: dict[str, Any]) -> list[Finding]:
@@ -61,11 +68,11 @@ def _structure(kind: str, data: dict[str, Any]) -> list[Finding]:
             where = kind + ("." + json_path(e["loc"]) if e["loc"] else "")
             out.append(
                 Finding(
-                    Severity.ERROR,
-                    "fhir-structure",
-                    where,
-                    f"{where}: {e['msg']}",
-                    _RULE,
+                    severity=Severity.ERROR,
+                    code="fhir-structure",
+                    location=where,
+                    message=f"{where}: {e['msg']}",
+                    rule=_RULE,
                     value=show_value("", e.get("input")) if e["type"] != "missing" else None,
                     issue_type="required" if e["type"] == "missing" else "structure",
                 )
@@ -129,11 +136,11 @@ def _codes(resource: dict[str, Any], prefix: str) -> list[Finding]:
         location = prefix + where.removeprefix(kind)
         out.append(
             Finding(
-                Severity.ERROR,
-                "fhir-code-not-in-value-set",
-                location,
-                f"{location}: {value!r} is not in the required value set {value_set}",
-                f"required binding to http://hl7.org/fhir/ValueSet/{value_set}",
+                severity=Severity.ERROR,
+                code="fhir-code-not-in-value-set",
+                location=location,
+                message=f"{location}: {value!r} is not in the required value set {value_set}",
+                rule=f"required binding to http://hl7.org/fhir/ValueSet/{value_set}",
                 value=show_value("", value),
                 issue_type="code-invalid",
             )
@@ -162,11 +169,11 @@ def validate_resource(data: object) -> list[Finding]:
     if kind not in SAME_IN_R4 and not found:
         found.append(
             Finding(
-                Severity.INFORMATION,
-                "fhir-checked-as-r4b",
-                "resourceType",
-                f"{kind} was checked against R4B, which may differ from R4 for this type",
-                _RULE,
+                severity=Severity.INFORMATION,
+                code="fhir-checked-as-r4b",
+                location="resourceType",
+                message=f"{kind} was checked against R4B, which may differ from R4 for this type",
+                rule=_RULE,
                 issue_type="informational",
             )
         )

@@ -35,15 +35,15 @@ def error(
 ) -> Finding:
     """A blocking finding."""
     return Finding(
-        Severity.ERROR,
-        code,
-        location,
-        message,
-        rule,
-        show_value(location, value),
-        allowed,
-        source,
-        issue_type,
+        severity=Severity.ERROR,
+        code=code,
+        location=location,
+        message=message,
+        rule=rule,
+        value=show_value(location, value),
+        allowed=allowed,
+        source=source,
+        issue_type=issue_type,
     )
 
 
@@ -59,15 +59,15 @@ def warning(
 ) -> Finding:
     """A finding that raises a question but never blocks saving."""
     return Finding(
-        Severity.WARNING,
-        code,
-        location,
-        message,
-        rule,
-        show_value(location, value),
-        allowed,
-        source,
-        "business-rule",
+        severity=Severity.WARNING,
+        code=code,
+        location=location,
+        message=message,
+        rule=rule,
+        value=show_value(location, value),
+        allowed=allowed,
+        source=source,
+        issue_type="business-rule",
     )
 
 
@@ -76,7 +76,15 @@ def information(
 ) -> Finding:
     """A remark for the record."""
     return Finding(
-        Severity.INFORMATION, code, location, message, rule, None, None, source, "informational"
+        severity=Severity.INFORMATION,
+        code=code,
+        location=location,
+        message=message,
+        rule=rule,
+        value=None,
+        allowed=None,
+        source=source,
+        issue_type="informational",
     )
 
 
