@@ -150,6 +150,41 @@ def test_two_stores_never_claim_one_entry_twice(database_url: str) -> None:
     assert on_store(database_url, lambda s: s.outbox(PENDING, 100)) == []
 
 
+def test_concurrent_writes_share_one_commit_and_a_duplicate_fails_alone(tmp_path: Path) -> None:
+    # Group commit: the submissions that reach the store in one turn of the event loop are
+    # one transaction, each in a savepoint; a second writer of the same note loses alone.
+    service = service_on(f"sqlite:///{tmp_path / 'group.sqlite3'}")
+    store = sqlite_of(service)
+    statements: list[str] = []
+
+    def bodies() -> list[bytes]:
+        out = []
+        for i in range(8):
+            data = routine()
+            data["note_id"]["value"] = f"LN-GROUP-{i}"
+            data["patient"]["value"] = f"PT-GROUP-{i}"
+            out.append(json.dumps(data).encode())
+        return [*out, out[0]]  # the first note twice
+
+    async def scenario() -> list[bool]:
+        await store.ping()  # the connection exists, so the trace sees every statement
+        store._open().set_trace_callback(statements.append)
+        results = await asyncio.gather(*(service.submit(b, WHO) for b in bodies()))
+        store._open().set_trace_callback(None)
+        return [created for created, _stored in results]
+
+    try:
+        created = asyncio.run(scenario())
+    finally:
+        store.close()
+    assert created == [True] * 8 + [False]  # the repeat is a resend, answered as such
+    commits = [s for s in statements if s == "COMMIT"]
+    assert len(commits) == 1, statements  # all nine writes in one transaction
+    assert sum(s == "ROLLBACK TO one_write" for s in statements) == 1
+    with sqlite3.connect(tmp_path / "group.sqlite3") as connection:
+        assert connection.execute("select count(*) from note_version").fetchone() == (8,)
+
+
 def test_a_held_write_lock_is_waited_for_without_stopping_the_loop(tmp_path: Path) -> None:
     url = f"sqlite:///{tmp_path / 'locked.sqlite3'}"
     service = service_on(url)
