@@ -14,12 +14,12 @@ from collections.abc import Iterator
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, get_args
 
 import httpx
 import pytest
 
-from schemas.note import Note
+from schemas.note import ComplicationKind, Note
 from tests.conftest import EXAMPLES, VALID, load
 from tests.web_helpers import (
     ARTIFACTS,
@@ -169,6 +169,14 @@ def pick(page: Page, group: str, option: str) -> None:
     expect(radio).to_be_checked()
 
 
+def tick(page: Page, label: str) -> None:
+    """A checkbox: focus it and press Space."""
+    box = page.get_by_label(label, exact=True)
+    box.focus()
+    page.keyboard.press("Space")
+    expect(box).to_be_checked()
+
+
 def press(page: Page, button: str) -> None:
     page.get_by_role("button", name=button, exact=True).focus()
     page.keyboard.press("Enter")
@@ -229,7 +237,7 @@ def fill_routine(page: Page, *, patient: bool = True) -> None:
 
     choose(page, "Pattern", "Cruciate", exact=True)
     choose(page, "Focus", "Posterior offset", exact=True)
-    type_label(page, "Offset or focus depth", "0.15")
+    type_label(page, "Offset or focus depth", "150")  # µm, as the laser shows it
     pick(page, "Capsulotomy contact lens", "Used")
     type_label(page, "Setting 1: Energy per pulse", "1.6")
     type_label(page, "Setting 1: Pulses", "18")
@@ -690,6 +698,14 @@ def test_axe_finds_no_serious_or_critical_violations(browser: Browser, tmp_path:
             sign_in(page, token)
             fill_routine(page)
             key_in(page, page.get_by_label("Setting 1: Energy per pulse"), "8", replace=True)
+            choose(page, "Pulse mode", "Burst")
+            type_label(page, "Pulses per burst", "2")
+            choose(page, "Which contact lens", "Another lens")
+            type_label(page, "Lens name", "wide-view lens")
+            tick(page, "Glare")
+            press(page, "Add a dilating drop")
+            type_label(page, "Dilating drop 1: Drop and strength", "tropicamide 1 %")
+            pick(page, "High myopia", "Yes")
             press(page, "Add a complication")
             choose(page, "Complication 1: Kind", "IOL pits or marks")
             press(page, "Add a pit position (complication 1)")
@@ -777,11 +793,16 @@ NOT_RECORDED_KEYS = {
     "before.iol": ["optic_diameter_mm", "position"],
     "plan": ["further_session_planned"],
     "result": ["pressure_treatment", "discharge", "opening", "visual_acuity_after"],
+    "": ["patient_details", "assistant", "indication"],
+    "before": ["topical_anaesthetic", "dilating_drops"],
+    "consent": ["kind"],
+    "laser": ["mode", "pulses_per_burst", "focus"],
+    "laser.contact_lens": ["lens", "magnification"],
 }
 
 
 def part(note: dict[str, Any], path: str) -> dict[str, Any]:
-    for key in path.split("."):
+    for key in filter(None, path.split(".")):
         note = note.get(key) or {}
     return note
 
@@ -793,13 +814,44 @@ def test_an_untouched_form_records_nothing_it_was_not_told(clinic: Clinic) -> No
     for path, keys in NOT_RECORDED_KEYS.items():
         assert [k for k in keys if k in part(sent, path)] == [], path
     assert "visual_acuity" not in sent["before"]
-    # Every three-way item starts on "Not recorded".
+    # Every three-way item starts on "Not recorded" (the radios are built at start-up; their
+    # ids stay NAME-yes / NAME-no / NAME-not-recorded).
     for factor in RISK_FACTORS:
         group = page.get_by_role("group", name=factor)
         expect(group.get_by_label("Not recorded", exact=True)).to_be_checked()
+        expect(group.get_by_role("radio")).to_have_count(3)
+    expect(page.locator("#rf-myopia-not-recorded")).to_be_checked()
     expect(page.get_by_label("Glaucoma", exact=True)).to_have_value("")
     expect(page.get_by_label("IOL position")).to_have_value("")
     expect(page.get_by_label("IOL optic diameter")).to_have_value("")
+    # The new controls start unanswered too: nothing ticked, every list on "Not recorded",
+    # every text empty, and the controls that depend on another answer not shown yet.
+    for label in ("Kind of opacification", "Pulse mode", "Consent taken as"):
+        expect(page.get_by_label(label)).to_have_value("")
+        expect(page.get_by_label(label).locator("option:checked")).to_have_text("Not recorded")
+    symptoms = page.get_by_role("group", name="Symptoms reported").get_by_role("checkbox")
+    expect(symptoms).to_have_count(5)
+    for box in symptoms.all():
+        expect(box).not_to_be_checked()
+    for label in (
+        "Patient name",
+        "Date of birth",
+        "Assistant or nurse present",
+        "Symptoms in words",
+        "Topical anaesthetic",
+        "Offset or focus depth",
+    ):
+        expect(page.get_by_label(label)).to_have_value("")
+    expect(page.locator("#dilating-rows > li")).to_have_count(0)
+    expect(page.get_by_label("Pulses per burst")).to_be_hidden()
+    expect(page.get_by_label("Which contact lens")).to_be_hidden()
+    expect(page.get_by_label("Lens name")).to_be_hidden()
+    # Saying that a lens was used asks which, and still sends no lens until one is chosen.
+    pick(page, "Capsulotomy contact lens", "Used")
+    expect(page.get_by_label("Which contact lens")).to_be_visible()
+    expect(page.get_by_label("Which contact lens")).to_have_value("")
+    expect(page.get_by_label("Lens name")).to_be_hidden()
+    assert clinic.last_check()["laser"]["contact_lens"] == {"used": True}
     # An opening and an acuity, typed with nothing else: no centring, no correction, no
     # vertical diameter is invented for them.
     type_label(page, "Opening, horizontal diameter", "4.5")
@@ -1009,15 +1061,55 @@ def test_a_stored_draft_keeps_not_recorded_apart_from_no(clinic: Clinic) -> None
     )
 
 
-def test_opening_a_note_keeps_what_the_form_has_no_control_for(clinic: Clinic) -> None:
-    # Opening and saving from the form must never drop what the sender recorded.
+# The site's lens list as /web/defaults gives it (service/policy/default.toml, a placeholder).
+LISTED_LENS = "Capsulotomy lens (example, 1.6x)"
+LISTED_HINT = "Magnification 1.6\N{MULTIPLICATION SIGN} (site lens list)."
+
+
+def with_new_fields(lens: dict[str, Any]) -> dict[str, Any]:
+    """The routine note as a draft with every part that the form gained a control for."""
     note = json.loads(json.dumps(ROUTINE))
     note["status"] = "draft"
-    note["assistant"] = "Nurse Test"
-    note["indication"] = {"opacification": "pearl", "symptoms": ["glare"]}
+    note["patient_details"] = {"name": "Mereana Holt", "birth_date": "1950-03-12"}
+    note["assistant"] = "Nurse Tam Rivers"
+    note["consent"]["kind"] = "verbal"
+    note["indication"] = {
+        "opacification": "pearl",
+        "symptoms": ["reduced-vision", "glare", "other"],
+        "symptoms_text": "haloes round lights at night",
+    }
+    note["before"]["topical_anaesthetic"] = "proxymetacaine 0.5 %"
+    note["before"]["dilating_drops"] = ["tropicamide 1 %", "phenylephrine 2,5 %"]
     note["laser"]["mode"] = "burst"
     note["laser"]["pulses_per_burst"] = 2
-    note["laser"]["contact_lens"]["lens"] = "site lens A"
+    note["laser"]["contact_lens"] = {"used": True, **lens}
+    note["result"]["complications"] = [{"kind": "anterior-uveitis", "text": "mild flare"}]
+    # Still without a control of its own: kept from the stored note.
+    note["result"]["discharge"] = {
+        "at": "2026-11-27T12:30:00+00:00",
+        "cleared_by": "Dr Ilona Marsh",
+        "cleared_by_identifier": {
+            "system": "https://harbourside-eye.example/fhir/sid/staff",
+            "value": "S-0042",
+        },
+    }
+    return note
+
+
+@pytest.mark.parametrize(
+    ("lens", "shown"),
+    [
+        ({"lens": LISTED_LENS, "magnification": 1.6}, LISTED_LENS),
+        # Not on the site's list (or listed with other figures): shown as another lens.
+        ({"lens": "site lens A", "magnification": 1.5}, "Another lens (type it in)"),
+        ({"lens": LISTED_LENS, "magnification": 1.4}, "Another lens (type it in)"),
+    ],
+    ids=["listed", "not-listed", "listed-name-other-figures"],
+)
+def test_opening_a_note_shows_the_new_fields_and_saves_them_back_unchanged(
+    clinic: Clinic, lens: dict[str, Any], shown: str
+) -> None:
+    note = with_new_fields(lens)
     with clinic.api() as api:
         stored = api.post("/notes", json=note)
         assert stored.status_code == 201, stored.text
@@ -1027,9 +1119,307 @@ def test_opening_a_note_keeps_what_the_form_has_no_control_for(clinic: Clinic) -
     type_label(page, "Open a stored note by record id", key)
     page.keyboard.press("Enter")
     expect(page.locator("#record-id")).to_have_text(key)
+    same_note(clinic.last_check(), note)
+    # Each part is in its own control.
+    expect(page.get_by_label("Patient name")).to_have_value("Mereana Holt")
+    expect(page.get_by_label("Date of birth")).to_have_value("1950-03-12")
+    expect(page.get_by_label("Assistant or nurse present")).to_have_value("Nurse Tam Rivers")
+    expect(page.get_by_label("Consent taken as")).to_have_value("verbal")
+    expect(page.get_by_label("Kind of opacification")).to_have_value("pearl")
+    for label, ticked in (
+        ("Reduced vision", True),
+        ("Glare", True),
+        ("Reduced contrast", False),
+        ("Double vision in this eye alone", False),
+        ("Other symptom", True),
+    ):
+        box = page.get_by_label(label, exact=True)
+        expect(box).to_be_checked() if ticked else expect(box).not_to_be_checked()
+    expect(page.get_by_label("Symptoms in words")).to_have_value("haloes round lights at night")
+    expect(page.get_by_label("Topical anaesthetic")).to_have_value("proxymetacaine 0.5 %")
+    expect(page.get_by_label("Dilating drop 2: Drop and strength")).to_have_value(
+        "phenylephrine 2,5 %"
+    )
+    expect(page.get_by_label("Pulse mode")).to_have_value("burst")
+    expect(page.get_by_label("Pulses per burst")).to_have_value("2")
+    expect(page.get_by_label("Offset or focus depth")).to_have_value("150")  # 0.15 mm
+    expect(page.get_by_label("Complication 1: Kind")).to_have_value("anterior-uveitis")
+    lens_list = page.get_by_label("Which contact lens")
+    expect(lens_list.locator("option:checked")).to_have_text(shown)
+    if shown == LISTED_LENS:
+        expect(page.get_by_label("Lens name")).to_be_hidden()
+        expect(page.locator("#lens-hint")).to_have_text(LISTED_HINT)
+    else:
+        expect(page.get_by_label("Lens name")).to_have_value(lens["lens"])
+        expect(page.get_by_label("Lens magnification")).to_have_value(str(lens["magnification"]))
+    # Changed elsewhere and saved from the form, the new version keeps all of it.
+    key_in(page, page.get_by_label("Place (unit and room)"), "laser room 3", replace=True)
+    press(page, "Save as draft")
+    expect(page.locator("#notice")).to_contain_text("Saved as draft: version 2")
+    with clinic.api() as api:
+        again = api.get(f"/notes/{key}").json()["note"]
+    same_note(again, {**note, "location": {"name": "laser room 3"}})
+    assert again["laser"]["contact_lens"] == {"used": True, **lens}
+    assert again["result"]["discharge"]["cleared_by_identifier"]["value"] == "S-0042"
+
+
+# --- the controls for the rest of the contract ------------------------------------------------
+
+
+def fill_new_fields(page: Page) -> None:
+    """Every control the form gained, typed and picked by its label."""
+    type_label(page, "Patient name", "Mereana Holt")
+    type_label(page, "Date of birth", "12031950")
+    type_label(page, "Assistant or nurse present", "Nurse Tam Rivers")
+    choose(page, "Consent taken as", "Verbal")
+    choose(page, "Kind of opacification", "Pearls")
+    tick(page, "Reduced vision")
+    tick(page, "Glare")
+    tick(page, "Other symptom")
+    type_label(page, "Symptoms in words", "haloes round lights at night")
+    type_label(page, "Topical anaesthetic", "proxymetacaine 0.5 %")
+    press(page, "Add a dilating drop")
+    type_label(page, "Dilating drop 1: Drop and strength", "tropicamide 1 %")
+    press(page, "Add a dilating drop")
+    # A decimal comma inside a drop's name is the clinic's text, kept as typed.
+    type_label(page, "Dilating drop 2: Drop and strength", "phenylephrine 2,5 %")
+    choose(page, "Pulse mode", "Burst")
+    type_label(page, "Pulses per burst", "2")
+    choose(page, "Which contact lens", LISTED_LENS)
+    press(page, "Add a complication")
+    choose(page, "Complication 1: Kind", "Anterior uveitis")
+    type_label(page, "Complication 1: Details", "mild flare")
+
+
+def test_the_new_controls_typed_by_label_are_the_note_the_server_stores(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    fill_new_fields(page)
     sent = clinic.last_check()
-    assert sent["assistant"] == "Nurse Test"
-    assert sent["indication"] == {"opacification": "pearl", "symptoms": ["glare"]}
-    assert sent["laser"]["mode"] == "burst"
-    assert sent["laser"]["pulses_per_burst"] == 2
-    assert sent["laser"]["contact_lens"]["lens"] == "site lens A"
+    # The parts as sent, key for key (nothing added that was not entered).
+    assert sent["patient_details"] == {"name": "Mereana Holt", "birth_date": "1950-03-12"}
+    assert sent["assistant"] == "Nurse Tam Rivers"
+    assert sent["consent"]["kind"] == "verbal"
+    assert sent["indication"] == {
+        "opacification": "pearl",
+        "symptoms": ["reduced-vision", "glare", "other"],
+        "symptoms_text": "haloes round lights at night",
+    }
+    assert sent["before"]["topical_anaesthetic"] == "proxymetacaine 0.5 %"
+    assert sent["before"]["dilating_drops"] == ["tropicamide 1 %", "phenylephrine 2,5 %"]
+    assert (sent["laser"]["mode"], sent["laser"]["pulses_per_burst"]) == ("burst", 2)
+    # A listed lens brings the site list's name and magnification.
+    assert sent["laser"]["contact_lens"] == {
+        "used": True,
+        "lens": LISTED_LENS,
+        "magnification": 1.6,
+    }
+    expect(page.locator("#lens-hint")).to_have_text(LISTED_HINT)
+    press(page, "Save as draft")
+    expect(page.locator("#notice")).to_contain_text("Saved as draft: version 1")
+    key = page.locator("#record-id").inner_text().strip()
+    with clinic.api() as api:
+        stored = api.get(f"/notes/{key}").json()["note"]
+    expected = with_new_fields({"lens": LISTED_LENS, "magnification": 1.6})
+    del expected["result"]["discharge"]  # only the stored note of the other test has one
+    same_note(stored, {**expected, "note_id": stored["note_id"]})
+
+
+def test_burst_size_and_lens_fields_follow_the_choice_they_depend_on(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    burst = page.get_by_label("Pulses per burst")
+    choose(page, "Pulse mode", "Burst")
+    expect(burst).to_be_visible()
+    # Burst mode without its size: the server asks for it beside the field.
+    burst.focus()
+    page.keyboard.press("Tab")
+    finding_beside(clinic, "Pulses per burst", "missing-field")
+    type_label(page, "Pulses per burst", "3")
+    assert clinic.last_check()["laser"]["pulses_per_burst"] == 3
+    # Single pulse: the burst size is not shown and never sent.
+    choose(page, "Pulse mode", "Single pulse")
+    expect(burst).to_be_hidden()
+    sent = clinic.last_check()
+    assert sent["laser"]["mode"] == "single-pulse"
+    assert "pulses_per_burst" not in sent["laser"]
+
+    # Another lens: its own name and magnification (a decimal comma read as a decimal).
+    choose(page, "Which contact lens", "Another lens")
+    expect(page.get_by_label("Lens name")).to_have_value("")
+    assert clinic.last_check()["laser"]["contact_lens"] == {"used": True}
+    type_label(page, "Lens name", "wide-view lens, clinic stock")
+    type_label(page, "Lens magnification", "1,4")
+    assert clinic.last_check()["laser"]["contact_lens"] == {
+        "used": True,
+        "lens": "wide-view lens, clinic stock",
+        "magnification": 1.4,
+    }
+    # A magnification outside the site's limits is refused at its own field.
+    key_in(page, page.get_by_label("Lens magnification"), "7", replace=True)
+    finding_beside(clinic, "Lens magnification", "out-of-range")
+    # No lens used: which lens is neither asked nor sent.
+    pick(page, "Capsulotomy contact lens", "Not used")
+    expect(page.get_by_label("Which contact lens")).to_be_hidden()
+    expect(page.get_by_label("Lens name")).to_be_hidden()
+    assert clinic.last_check()["laser"]["contact_lens"] == {"used": False}
+
+    # Up to five dilating drops (the contract's limit): the add button goes at five.
+    for n in range(1, 6):
+        press(page, "Add a dilating drop")
+        type_label(page, f"Dilating drop {n}: Drop and strength", f"drop {n}")
+    expect(page.get_by_role("button", name="Add a dilating drop")).to_be_hidden()
+    press(page, "Remove dilating drop 2")
+    expect(page.get_by_role("button", name="Add a dilating drop")).to_be_visible()
+    assert clinic.last_check()["before"]["dilating_drops"] == [
+        "drop 1",
+        "drop 3",
+        "drop 4",
+        "drop 5",
+    ]
+
+
+def test_every_complication_kind_of_the_contract_is_offered(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    press(page, "Add a complication")
+    kind = page.get_by_label("Complication 1: Kind")
+    values = kind.locator("option").evaluate_all("os => os.map((o) => o.value)")
+    assert values == ["", *get_args(ComplicationKind)]
+    # Each one can be picked from the keyboard by the first letters of its words.
+    labels = kind.locator("option").all_inner_texts()[1:]
+    assert len(set(labels)) == len(labels)
+    for value, label in zip(get_args(ComplicationKind), labels, strict=True):
+        page.wait_for_timeout(1100)  # the select's type-ahead starts afresh after a pause
+        choose(page, "Complication 1: Kind", label)
+        expect(kind).to_have_value(value)
+    assert clinic.last_check()["result"]["complications"] == [{"kind": "other"}]
+    # "Other" needs its description (the contract's rule), asked for beside the details
+    # once the clinician has been there.
+    page.get_by_label("Complication 1: Details").focus()
+    page.keyboard.press("Tab")
+    finding_beside(clinic, "Complication 1: Details", "missing-field")
+
+
+def test_the_focus_offset_is_typed_in_micrometres_and_stored_in_millimetres(
+    clinic: Clinic,
+) -> None:
+    # 1 mm = 1000 µm (SI prefixes, BIPM SI Brochure, 9th edition, table 7).
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)  # types 150 (µm)
+    offset = page.get_by_label("Offset or focus depth")
+    assert clinic.last_check()["laser"]["focus"] == {
+        "method": "posterior-offset",
+        "distance_mm": 0.15,
+    }
+    expect(page.locator("label[for=focus-distance] .unit-said")).to_have_text(" (µm)")
+    for typed, mm in (("87,5", 0.0875), ("1500", 1.5), ("0.1", 0.0001), ("250", 0.25)):
+        key_in(page, offset, typed, replace=True)
+        page.keyboard.press("Tab")
+        assert clinic.last_check()["laser"]["focus"]["distance_mm"] == mm, typed
+    expect(offset).to_have_value("250")
+    # Findings about the distance (kept in mm by the contract) still sit beside this field:
+    # 5000 µm is 5 mm, over the site's 3 mm limit.
+    key_in(page, offset, "5000", replace=True)
+    expect(finding_beside(clinic, "Offset or focus depth", "out-of-range")).to_contain_text("5")
+    key_in(page, offset, "150", replace=True)
+    page.keyboard.press("Tab")
+    clinic.settle()
+    page.emulate_media(media="print")
+    expect(page.locator("#print-summary")).to_contain_text("posterior offset, 150 µm")
+    page.emulate_media(media="screen")
+
+    # A stored 0.2 mm shows as 200 µm and goes back as 0.2 mm.
+    note = json.loads(json.dumps(ROUTINE))
+    note["status"] = "draft"
+    note["note_id"] = {**note["note_id"], "value": "LN-2026-0418"}
+    note["laser"]["focus"]["distance_mm"] = 0.2
+    with clinic.api() as api:
+        stored = api.post("/notes", json=note)
+        assert stored.status_code == 201, stored.text
+        key = stored.json()["id"]
+    type_label(page, "Open a stored note by record id", key)
+    page.on("dialog", lambda dialog: dialog.accept())  # leave the unsaved note in the form
+    page.keyboard.press("Enter")
+    expect(page.locator("#record-id")).to_have_text(key)
+    expect(offset).to_have_value("200")
+    assert clinic.last_check()["laser"]["focus"]["distance_mm"] == 0.2
+
+
+def test_the_print_names_the_patient_and_shows_the_treated_eye_large(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    clinic.settle()
+    page.emulate_media(media="print")
+    summary = page.locator("#print-summary")
+    # No name given: none printed (the patient ID still is).
+    expect(summary.locator(".p-patient")).to_have_count(0)
+    page.emulate_media(media="screen")
+    type_label(page, "Patient name", "Mereana Holt")
+    type_label(page, "Date of birth", "12031950")
+    clinic.settle()
+    page.emulate_media(media="print")
+    eye = summary.locator(".p-head .p-eye")
+    expect(eye).to_have_text("RIGHT EYE")
+    expect(summary.locator(".p-head .p-patient")).to_have_text(
+        "Mereana Holt, born 12 Mar 1950 · patient ID HX100234"
+    )
+    expect(summary).to_contain_text("Date of birth12 Mar 1950")
+    # Prominent: at least twice the size of the summary's text, and above everything else.
+    size = eye.evaluate("e => parseFloat(getComputedStyle(e).fontSize)")
+    body = summary.evaluate("e => parseFloat(getComputedStyle(e).fontSize)")
+    assert size >= 2 * body, (size, body)
+    eye_box, grid_box = eye.bounding_box(), summary.locator(".p-grid").bounding_box()
+    assert eye_box is not None
+    assert grid_box is not None
+    assert eye_box["y"] + eye_box["height"] <= grid_box["y"]
+    pdf = page.pdf(format="A4", print_background=True, prefer_css_page_size=True)
+    artifact("summary-patient.pdf").write_bytes(pdf)
+    assert pdf_pages(pdf) == 1
+    page.emulate_media(media="screen")
+    # The left eye is printed as such.
+    pick(page, "Eye treated", "Left eye")
+    clinic.settle()
+    page.emulate_media(media="print")
+    expect(eye).to_have_text("LEFT EYE")
+    page.emulate_media(media="screen")
+
+
+def test_a_raised_risk_says_beside_the_due_dates_what_it_changes(clinic: Clinic) -> None:
+    page = clinic.page
+    sign_in(page, clinic.token)
+    fill_routine(page)
+    why = page.locator("#risk-why-list")
+    # Routine: nothing recorded raises the risk, and the panel says so beside the dates.
+    expect(why).to_contain_text("Routine risk")
+    expect(why.locator(".risk-why-item")).to_have_count(0)
+    # High myopia is a risk factor for retinal detachment after capsulotomy (AAO Preferred
+    # Practice Pattern, Cataract in the Adult Eye), which brings the review forward.
+    pick(page, "High myopia", "Yes")
+    item = why.locator("li[data-code=high-myopia]")
+    expect(item).to_contain_text("high myopia: review at 5-10 days instead of 21-42 days")
+    expect(item.locator(".due-source")).to_contain_text("AAO Preferred Practice Pattern")
+    # What the panel shows is the server's answer, word for word.
+    with clinic.api() as api:
+        answer = api.post("/notes/check", json=clinic.last_check()).json()
+    reasons = answer["derived"]["risk"]["reasons"]
+    assert [r["code"] for r in reasons] == ["high-myopia"]
+    expect(item.locator(".risk-why-text")).to_have_text(
+        f"{reasons[0]['text']}: {reasons[0]['changes']}"
+    )
+    # The raised review: 27 Nov 2026 + 7 days (the policy's raised-risk review) is Fri 4 Dec.
+    expect(page.locator("#due-list li[data-kind=review] .due-when")).to_have_text("Fri 04 Dec 2026")
+    page.locator("aside.panel").screenshot(path=artifact("panel-raised-risk.png"))
+    page.emulate_media(media="print")
+    printed = page.locator("#print-summary .p-why li[data-code=high-myopia]")
+    expect(printed).to_contain_text("high myopia: review at 5-10 days instead of 21-42 days")
+    expect(printed.locator(".p-src")).to_contain_text("AAO Preferred Practice Pattern")
+    page.emulate_media(media="screen")
+    # Back to not recorded: no reason is left (not recorded is never read as present).
+    pick(page, "High myopia", "Not recorded")
+    expect(why.locator(".risk-why-item")).to_have_count(0)

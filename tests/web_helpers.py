@@ -9,6 +9,7 @@ import socket
 import threading
 import time
 from collections.abc import Callable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from contextlib import contextmanager
 from datetime import datetime
 from pathlib import Path
@@ -17,12 +18,11 @@ from typing import Any, NoReturn
 import pytest
 import uvicorn
 from fastapi import FastAPI
-from sqlmodel import Session
 
 from service.api import web
 from service.app import create_app
 from service.config import Settings
-from service.store import repository
+from tests.conftest import new_token as store_token
 
 CHROMIUM = Path("/usr/bin/chromium")
 # Debian ships only the en-US resources with chromium; chromium-l10n adds en-GB, which makes
@@ -61,9 +61,12 @@ def build_app(database_url: str, clock: Callable[[], datetime]) -> FastAPI:
 
 
 def new_token(app: FastAPI, role: str, now: datetime) -> str:
-    with Session(app.state.engine) as session:
-        token, _ = repository.new_token(session, role, f"form test {role}", now)
-        session.commit()
+    """A token of this role in the app's database (the store migrates it first). The store
+    is async; Playwright's sync API keeps an event loop on this thread, so the store's own
+    loop runs on another thread."""
+    url = app.state.settings.database_url
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        token, _ = pool.submit(store_token, url, role, f"form test {role}", now).result()
     return token
 
 
@@ -93,8 +96,7 @@ def live_server(app: FastAPI) -> Iterator[str]:
         yield f"http://127.0.0.1:{port}"
     finally:
         server.should_exit = True
-        thread.join(timeout=30)
-        app.state.engine.dispose()
+        thread.join(timeout=30)  # the app's lifespan closes its store
 
 
 def playwright_or_skip() -> Any:

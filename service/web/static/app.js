@@ -2,9 +2,9 @@
 // the browser keeps nothing but the sign-in token (sessionStorage, this tab).
 
 import { call, token, explain, outcomeFindings } from "./api.js";
-import { collect, fill, pathIndex, Rows } from "./noteform.js";
+import { collect, fill, pathIndex, Rows, threeWay, syncShown } from "./noteform.js";
 import { showFindings } from "./findings.js";
-import { showDerived, showDue, num } from "./panel.js";
+import { showDerived, showDue, showRiskReasons, num } from "./panel.js";
 import { draw } from "./drawing.js";
 import { renderPrint } from "./print.js";
 import { formatMoment } from "./time.js";
@@ -85,6 +85,10 @@ const readings = new Rows({ list: $("iop-rows"), template: $("tpl-iop"), noun: "
   base: "result.iop_after", idPrefix: "iop-after", onChange: changed, setup: (li) => unitsIntoLabels(li) });
 const drops = new Rows({ list: $("prophylaxis-rows"), template: $("tpl-prophylaxis"), noun: "Drop given",
   base: "plan.prophylaxis", idPrefix: "prophylaxis", onChange: changed, setup: (li) => unitsIntoLabels(li) });
+// The contract takes up to five dilating drops; the add button goes once there are five.
+const MAX_DILATING = 5;
+const dilating = new Rows({ list: $("dilating-rows"), template: $("tpl-dilating"), noun: "Dilating drop",
+  base: "before.dilating_drops", idPrefix: "dilating", onChange: changed });
 const takeHome = new Rows({ list: $("take-home-rows"), template: $("tpl-take-home"), noun: "Drops to take home",
   base: "plan.take_home", idPrefix: "take-home", onChange: changed, setup: (li) => unitsIntoLabels(li) });
 
@@ -126,6 +130,7 @@ $("add-iop").addEventListener("click", () => readings.add({ focus: true }));
 $("add-pressure").addEventListener("click", () => pressure.add({ focus: true }));
 $("add-complication").addEventListener("click", () => complications.add({ focus: true }));
 $("add-prophylaxis").addEventListener("click", () => drops.add({ focus: true }));
+$("add-dilating").addEventListener("click", () => dilating.add({ focus: true }));
 $("add-take-home").addEventListener("click", () => takeHome.add({ focus: true }));
 
 // --- what the form shows without asking the server --------------------------------------
@@ -220,7 +225,33 @@ function clampOpening(v) {
   return v !== null && v > 0 && v <= 12 ? v : null;
 }
 
+/** The magnification of the site lens chosen, beside the lens list. */
+function lensHint() {
+  const option = $("lens-choice").selectedOptions[0];
+  const m = option?.dataset.magnification;
+  $("lens-hint").textContent = option && option.hasAttribute("data-lens")
+    ? (m ? `Magnification ${num(Number(m), 2)}× (site lens list).` : "The site lens list gives no magnification for this lens.")
+    : "";
+}
+
+/** The site's lenses (from /web/defaults) as choices, before "another lens". */
+function lensList(lenses) {
+  const select = $("lens-choice");
+  const another = select.querySelector("option[value=another]");
+  (lenses || []).forEach((lens, i) => {
+    const option = document.createElement("option");
+    option.value = `listed-${i}`;
+    option.textContent = lens.name;
+    option.dataset.lens = lens.name;
+    if (typeof lens.magnification === "number") option.dataset.magnification = String(lens.magnification);
+    select.insertBefore(option, another);
+  });
+}
+
 function refreshLocal() {
+  syncShown(form);
+  lensHint();
+  $("add-dilating").hidden = dilating.rows().length >= MAX_DILATING;
   markNumbers();
   runningTotal();
   redraw();
@@ -263,6 +294,7 @@ function showView(view, when) {
   const counts = renderFindings();
   showDerived($("derived"), view.derived);
   showDue($("due-list"), view.due, state.zone);
+  showRiskReasons($("risk-why-list"), view.derived);
   for (const li of readings.rows()) li.querySelector(".row-change").textContent = "";
   for (const c of view.derived?.iop?.changes || []) {
     const li = readings.rows()[c.reading_index];
@@ -341,6 +373,7 @@ function newNote() {
   complications.setCount(0);
   drops.setCount(0);
   takeHome.setCount(0);
+  dilating.setCount(0);
   for (const el of form.querySelectorAll("[data-default]")) {
     const value = state.defaults?.[el.dataset.default];
     if (value !== undefined && value !== null) el.value = String(value);
@@ -357,6 +390,7 @@ function newNote() {
   renderFindings();
   showDerived($("derived"), null);
   showDue($("due-list"), [], state.zone);
+  showRiskReasons($("risk-why-list"), null);
   refreshLocal();
   scheduleCheck();
 }
@@ -375,6 +409,7 @@ function loadStored(view) {
   });
   drops.setCount((note.plan?.prophylaxis || []).length);
   takeHome.setCount((note.plan?.take_home || []).length);
+  dilating.setCount((note.before?.dilating_drops || []).length);
   const otherDay = fill(form, note, state.zone);
   for (const li of complications.rows()) showPits(li);
   state.showAll = true;
@@ -621,6 +656,7 @@ window.addEventListener("beforeunload", (event) => {
 });
 
 async function start() {
+  threeWay(form);
   unitsIntoLabels(document);
   try {
     const answer = await call("GET", "/web/defaults", { bearer: null });
@@ -630,6 +666,7 @@ async function start() {
     notice(`The clinic's settings could not be read (${explain(err, "Loading")}); dates are shown in ${state.zone}.`, "error");
   }
   const d = state.defaults;
+  lensList(d?.contact_lenses);
   if (d) {
     $("caution").textContent = d.caution;
     $("recheck-hint").textContent = `Leave empty for the site default: ${d.iop_recheck_minutes} min after the laser.`;

@@ -101,12 +101,14 @@ export class Rows {
       const path = `${base}[${i}]`;
       li.dataset.row = path;
       const name = `${this.noun} ${i + 1}`;
+      // An empty data-sub is the item itself: a list of texts (dilating drops) has no parts.
+      const idOf = (sub) => (sub ? `${prefix}-${i}-${sub.replaceAll("_", "-")}` : `${prefix}-${i}`);
       for (const el of li.querySelectorAll(":scope > [data-sub], :scope > .field [data-sub]")) {
-        el.id = `${prefix}-${i}-${el.dataset.sub.replaceAll("_", "-")}`;
-        el.dataset.bind = `${path}.${el.dataset.sub}`;
+        el.id = idOf(el.dataset.sub);
+        el.dataset.bind = el.dataset.sub ? `${path}.${el.dataset.sub}` : path;
       }
       for (const label of li.querySelectorAll(":scope > .field label[data-for]")) {
-        label.htmlFor = `${prefix}-${i}-${label.dataset.for.replaceAll("_", "-")}`;
+        label.htmlFor = idOf(label.dataset.for);
         const hidden = label.querySelector(".row-label");
         if (hidden) hidden.textContent = `${name}: `;
       }
@@ -117,6 +119,70 @@ export class Rows {
       this.onRenumber(li, i);
     });
   }
+}
+
+/**
+ * Yes / No / Not recorded radios for every <fieldset data-three="NAME" data-path="PATH">,
+ * built once at start-up so the page spells each group out only once. Not recorded is the
+ * default choice (what form.reset() goes back to); data-weak on the fieldset goes to the radios.
+ */
+export function threeWay(root) {
+  for (const set of root.querySelectorAll("fieldset[data-three]")) {
+    if (set.querySelector(".choices")) continue;
+    const name = set.dataset.three;
+    const box = document.createElement("div");
+    box.className = "choices";
+    for (const [value, words, id] of [["true", "Yes", "yes"], ["false", "No", "no"], ["", "Not recorded", "not-recorded"]]) {
+      const input = document.createElement("input");
+      input.type = "radio";
+      input.name = name;
+      input.id = `${name}-${id}`;
+      input.value = value;
+      input.dataset.bind = set.dataset.path;
+      input.dataset.kind = "bool";
+      if (set.hasAttribute("data-weak")) input.dataset.weak = "";
+      if (value === "") input.defaultChecked = true;
+      const label = document.createElement("label");
+      label.append(input, ` ${words}`);
+      box.append(label);
+    }
+    set.append(box);
+  }
+}
+
+/** The value a condition of data-when looks at: a control by id, else a radio group by name. */
+function conditionValue(form, name) {
+  const el = form.querySelector(`#${CSS.escape(name)}`);
+  if (el) return el.value;
+  return form.querySelector(`input[type=radio][name="${CSS.escape(name)}"]:checked`)?.value ?? "";
+}
+
+/**
+ * Whether a control is shown now: every data-when="id=value ..." around it holds. A control
+ * that is not shown sends nothing (pulses per burst without burst mode, a lens name without
+ * a lens used).
+ */
+export function shownNow(form, el) {
+  for (let node = el.closest("[data-when]"); node; node = node.parentElement?.closest("[data-when]")) {
+    for (const cond of node.dataset.when.split(/\s+/).filter(Boolean)) {
+      const [name, want] = cond.split("=");
+      if (conditionValue(form, name) !== want) return false;
+    }
+  }
+  return true;
+}
+
+/** Show and hide the conditional parts to match the controls they depend on. */
+export function syncShown(form) {
+  for (const node of form.querySelectorAll("[data-when]")) {
+    const shown = shownNow(form, node);
+    if (node.hidden === shown) node.hidden = !shown;
+  }
+}
+
+/** Round to 4 decimals without float noise (0.15000000000000002 -> 0.15). */
+function round4(v) {
+  return Math.round(v * 1e4) / 1e4;
 }
 
 /** One control's value for the note; undefined leaves the field out. */
@@ -135,6 +201,8 @@ function read(el, day, zone) {
     const n = readNumber(el.value, { whole: kind === "int" });
     if (n.empty) return undefined;
     if (n.value === undefined) return el.value.trim();
+    // data-scale: the field shows scale x the note's unit (micrometres for millimetres).
+    if (el.dataset.scale && !n.problem) return round4(n.value / Number(el.dataset.scale));
     return n.value;
   }
   if (kind === "session-date") return undefined;
@@ -149,13 +217,15 @@ function read(el, day, zone) {
 
 // Parts of the contract the form has no control for yet: an opened note keeps what the
 // sender recorded there, so opening and saving from the form never drops it.
-const KEPT = [
-  "patient_details", "assistant", "indication",
-  "before.topical_anaesthetic", "before.dilating_drops",
-  "laser.mode", "laser.pulses_per_burst",
-  "laser.contact_lens.lens", "laser.contact_lens.magnification",
-  "consent.kind", "result.discharge.cleared_by_identifier",
-];
+const KEPT = ["result.discharge.cleared_by_identifier"];
+
+/** The site lens chosen in a lens list, as {lens, magnification}; null for none or another. */
+function listedLens(select) {
+  const option = select.selectedOptions[0];
+  if (!option || !option.hasAttribute("data-lens")) return null;
+  const m = option.dataset.magnification;
+  return { lens: option.dataset.lens, magnification: m === undefined || m === "" ? undefined : Number(m) };
+}
 
 /** The note as the contract wants it, from what is in the form now (and, for the parts the
  * form does not show, from the stored note it was opened from). */
@@ -172,12 +242,28 @@ export function collect(form, zone, noteId, status, loaded = null) {
     plan: { prophylaxis: [], take_home: [] },
   };
   const day = form.querySelector("[data-kind=session-date]").value;
-  for (const li of form.querySelectorAll("[data-row]")) setPath(note, li.dataset.row, {}, true);
+  // An empty row still goes in (as {} or, for a list of texts, ""), so the server can say
+  // beside it what it lacks.
+  for (const li of form.querySelectorAll("[data-row]")) {
+    setPath(note, li.dataset.row, li.hasAttribute("data-scalar") ? "" : {}, true);
+  }
   const weak = [];
   for (const el of form.querySelectorAll("[data-bind]")) {
+    if (!shownNow(form, el)) continue;
     if (el.hasAttribute("data-weak")) { weak.push(el); continue; }
+    if (el.type === "checkbox") {
+      // A list of choices: the ticked ones, in the page's order; none ticked sends nothing.
+      if (el.checked) setPath(note, el.dataset.bind, [...(getPath(note, el.dataset.bind) || []), el.value]);
+      continue;
+    }
     const value = read(el, day, zone);
     if (value !== undefined) setPath(note, el.dataset.bind, value);
+  }
+  for (const select of form.querySelectorAll("select[data-lens-list]")) {
+    const lens = shownNow(form, select) ? listedLens(select) : null;
+    if (!lens) continue;
+    note.laser.contact_lens.lens = lens.lens;
+    if (lens.magnification !== undefined) note.laser.contact_lens.magnification = lens.magnification;
   }
   // Weak controls (such as "centred" or "best corrected") only count inside a part
   // that something else put there; alone they would invent a part nobody recorded.
@@ -212,6 +298,11 @@ export function fill(form, note, zone) {
       // Not recorded (absent or null) checks the group's empty choice, where it has one;
       // a recorded false checks "No".
       el.checked = value === undefined || value === null ? el.value === "" : String(value) === el.value;
+    } else if (el.type === "checkbox") {
+      el.checked = Array.isArray(value) && value.includes(el.value);
+    } else if (kind === "number" && el.dataset.scale && typeof value === "number") {
+      // 0.2 mm shows as 200 µm; toPrecision drops the float noise of the multiplication.
+      el.value = String(Number((value * Number(el.dataset.scale)).toPrecision(12)));
     } else if (kind === "bool-select") {
       el.value = value === undefined || value === null ? "" : String(value);
     } else if (el.tagName === "SELECT") {
@@ -228,7 +319,28 @@ export function fill(form, note, zone) {
       el.value = value === undefined || value === null ? "" : String(value);
     }
   }
+  for (const select of form.querySelectorAll("select[data-lens-list]")) fillLens(form, select, note);
   return otherDay;
+}
+
+/**
+ * A stored lens: the listed lens with the same name and magnification, else "another lens"
+ * with the stored name and magnification in its own fields (a lens no longer on the site's
+ * list, or one with other figures, is kept as it was recorded).
+ */
+function fillLens(form, select, note) {
+  const stored = note.laser?.contact_lens || {};
+  const name = stored.lens ?? null;
+  const mag = stored.magnification ?? null;
+  const listed = [...select.options].find((o) => o.hasAttribute("data-lens")
+    && o.dataset.lens === name
+    && (o.dataset.magnification === undefined || o.dataset.magnification === "" ? mag === null : Number(o.dataset.magnification) === mag));
+  if (listed) {
+    select.value = listed.value;
+    for (const el of form.querySelectorAll('[data-bind="laser.contact_lens.lens"], [data-bind="laser.contact_lens.magnification"]')) el.value = "";
+  } else {
+    select.value = name !== null || mag !== null ? "another" : "";
+  }
 }
 
 /** Every control, row and group that a finding can point at, by JSON path (first one wins). */
@@ -236,7 +348,9 @@ export function pathIndex(form) {
   const index = new Map();
   for (const el of form.querySelectorAll("[data-bind], [data-path], [data-row]")) {
     const path = el.dataset.bind || el.dataset.path || el.dataset.row;
-    if (!index.has(path)) index.set(path, el);
+    // A row whose item is one text (a dilating drop) has the path of its control: the
+    // control, not the row, carries the finding.
+    if (!index.has(path) || (el.dataset.bind && index.get(path).hasAttribute("data-row"))) index.set(path, el);
   }
   return index;
 }

@@ -124,3 +124,36 @@ export function showDue(list, due, zone) {
     list.append(li);
   }
 }
+
+/**
+ * Why the follow-up is what it is: each reason the risk is raised, with what it changes
+ * (from the site policy) and where that comes from. Shown under the due dates.
+ */
+export function riskReasonWords(derived) {
+  if (!derived || !derived.risk) return null;
+  return (derived.risk.reasons || []).map((r) => ({
+    code: r.code, text: r.text, changes: r.changes || "", source: r.source || "",
+  }));
+}
+
+export function showRiskReasons(list, derived) {
+  list.replaceChildren();
+  const reasons = riskReasonWords(derived);
+  const box = list.closest(".risk-why");
+  if (box) box.hidden = reasons === null;
+  if (reasons === null) return;
+  if (!reasons.length) {
+    // Routine follow-up: no recorded factor raises the risk (one not recorded is no reason).
+    list.append(el("li", "muted", "Routine risk: nothing recorded in the note changes the follow-up."));
+    return;
+  }
+  for (const r of reasons) {
+    const li = el("li", "risk-why-item");
+    li.dataset.code = r.code;
+    li.append(el("p", "risk-why-text", el("strong", null, r.text), r.changes ? `: ${r.changes}` : ""));
+    if (r.source) {
+      li.append(el("p", "due-source", `Source: ${r.source}`));
+    }
+    list.append(li);
+  }
+}

@@ -2,7 +2,7 @@
 // caution. Built from the note in the form and the last answer of the server.
 
 import { fromInstant, formatCalendarDay, formatMoment } from "./time.js";
-import { derivedRows, dueWords, num } from "./panel.js";
+import { derivedRows, dueWords, num, riskReasonWords } from "./panel.js";
 
 const WORDS = {
   applanation: "applanation", rebound: "rebound", "non-contact": "non-contact", other: "other",
@@ -11,6 +11,13 @@ const WORDS = {
   bag: "in the bag", sulcus: "in the sulcus", before: "before", after: "after", both: "before and after",
   "iol-pit": "IOL pits or marks", "iris-bleeding": "iris bleeding", "iop-spike": "IOP spike",
   "vitreous-in-anterior-chamber": "vitreous in the anterior chamber",
+  bleeding: "bleeding, not from the iris", "anterior-uveitis": "anterior uveitis",
+  "cystoid-macular-oedema": "cystoid macular oedema", "retinal-detachment": "retinal detachment",
+  "iol-decentration": "IOL decentred", "iol-dislocation": "IOL dislocated",
+  fibrous: "fibrous", pearl: "pearls", mixed: "mixed fibrosis and pearls",
+  "reduced-vision": "reduced vision", glare: "glare", "reduced-contrast": "reduced contrast",
+  "monocular-diplopia": "double vision in this eye alone",
+  "single-pulse": "single pulse", burst: "burst", written: "written", verbal: "verbal",
 };
 const RISKS = {
   high_myopia: "high myopia", uveitis: "uveitis", diabetic_macular_oedema: "diabetic macular oedema",
@@ -60,6 +67,8 @@ function findingPlace(location) {
 const w = (code) => (code === undefined || code === null ? null : WORDS[code] || code);
 const yes = (v) => (v === true ? "yes" : v === false ? "no" : null);
 const said = (v) => yes(v) ?? "not recorded";
+// A date of birth without the weekday: "12 Mar 1950".
+const born = (day) => (day ? formatCalendarDay(day, true).replace(/^\S+ /, "") : null);
 
 export function renderPrint(section, { note, view, findings: open, zone, stored, svg, caution }) {
   const time = (iso) => (iso ? fromInstant(iso, zone)?.time : null);
@@ -71,19 +80,30 @@ export function renderPrint(section, { note, view, findings: open, zone, stored,
   const d = view && view.derived;
   const va = (x) => (x ? `${x.value || "?"} (${NOTATIONS[x.notation] || "notation?"}, ${x.correction ? CORRECTIONS[x.correction] || x.correction : "correction not recorded"})` : null);
 
+  const who = note.patient_details || {};
+  // The treated eye, large at the top: the first thing anyone reading the print sees.
+  const eye = el("p", "p-eye", note.eye ? `${note.eye.toUpperCase()} EYE` : "EYE NOT RECORDED");
   const head = el("header", "p-head",
-    el("h1", null, "Nd:YAG posterior capsulotomy: session summary"),
-    el("p", null, [
-      stored ? `${stored.status === "final" ? "Signed final" : stored.status === "void" ? "VOID (entered in error)" : "Draft"}, version ${stored.version}, record ${stored.id}` : "Not stored yet: this print is not a record",
-      `printed ${formatMoment(new Date().toISOString(), zone)}`,
-    ].join(" · ")));
+    el("div", "p-head-text",
+      el("h1", null, "Nd:YAG posterior capsulotomy: session summary"),
+      who.name ? el("p", "p-patient", el("b", null, who.name),
+        who.birth_date ? `, born ${born(who.birth_date)}` : "",
+        note.patient?.value ? ` · patient ID ${note.patient.value}` : "") : null,
+      el("p", null, [
+        stored ? `${stored.status === "final" ? "Signed final" : stored.status === "void" ? "VOID (entered in error)" : "Draft"}, version ${stored.version}, record ${stored.id}` : "Not stored yet: this print is not a record",
+        `printed ${formatMoment(new Date().toISOString(), zone)}`,
+      ].join(" · "))),
+    eye);
 
+  const consent = note.consent?.given === undefined ? null
+    : `${yes(note.consent.given)}${note.consent.kind ? `, ${w(note.consent.kind)}` : ""}`;
   const patient = block("Patient and eye", dl([
+    ["Name", who.name], ["Date of birth", born(who.birth_date)],
     ["Patient ID", note.patient?.value], ["Visit", note.encounter?.value],
     ["Eye", note.eye ? `${note.eye} eye` : null],
     ["Session", start ? `${formatCalendarDay(start.day, true)}, ${start.time}${note.ended_at ? `–${time(note.ended_at)}` : ""}` : null],
-    ["Clinician", note.performer?.name], ["Place", note.location?.name],
-    ["Consent", yes(note.consent?.given)],
+    ["Clinician", note.performer?.name], ["Assistant", note.assistant], ["Place", note.location?.name],
+    ["Consent", consent],
   ]));
 
   // Three ways: present, recorded absent, not recorded (never read as absent).
@@ -93,9 +113,15 @@ export function renderPrint(section, { note, view, findings: open, zone, stored,
   if (rf.glaucoma && rf.glaucoma !== "none") risks.unshift(`glaucoma (${rf.glaucoma})`);
   if (rf.glaucoma === undefined || rf.glaucoma === null) unknown.unshift("glaucoma");
   const optic = b.iol?.optic_diameter_mm;
+  const ind = note.indication || {};
+  const symptoms = (ind.symptoms || []).map(w);
   const before = block("Before the laser", dl([
+    ["Opacification", w(ind.opacification)],
+    ["Symptoms", symptoms.length || ind.symptoms_text ? `${symptoms.join(", ")}${ind.symptoms_text ? `${symptoms.length ? "; " : ""}${ind.symptoms_text}` : ""}` : null],
     ["IOP", b.iop?.value_mmhg !== undefined ? `${num(b.iop.value_mmhg)} mmHg (${w(b.iop.method) || "method?"})` : null],
     ["Visual acuity", va(b.visual_acuity)], ["Pupil dilated", yes(b.pupil_dilated)],
+    ["Dilating drops", (b.dilating_drops || []).length ? b.dilating_drops.join("; ") : null],
+    ["Anaesthetic", b.topical_anaesthetic],
     ["IOL", `${typeof optic === "number" ? `${num(optic, 2)} mm optic` : "optic diameter not recorded"}${b.iol?.optic_material ? `, ${b.iol.optic_material}` : ""}, ${b.iol?.position ? w(b.iol.position) : "position not recorded"}`],
     ["Cataract surgery", b.cataract_surgery_date ? formatCalendarDay(b.cataract_surgery_date, true) : null],
     ["Risk factors", risks.length ? risks.join(", ") : unknown.length ? "none recorded as present" : "none"],
@@ -116,8 +142,13 @@ export function renderPrint(section, { note, view, findings: open, zone, stored,
     ["Laser counter", l.reported_total_energy_mj !== undefined ? `${num(l.reported_total_energy_mj, 2)} mJ` : null],
     ["Wavelength", typeof l.wavelength_nm === "number" ? `${l.wavelength_nm} nm` : null],
     ["Pattern", l.pattern ? `${l.pattern}${l.pattern_text ? ` (${l.pattern_text})` : ""}` : null],
-    ["Focus", l.focus ? `${w(l.focus.method)}${l.focus.distance_mm !== undefined ? `, ${num(l.focus.distance_mm, 2)} mm` : ""}` : null],
-    ["Contact lens", l.contact_lens?.used === true ? `used${l.contact_lens.cone_angle_deg !== undefined ? `, cone ${num(l.contact_lens.cone_angle_deg, 0)}°` : ""}` : yes(l.contact_lens?.used) === "no" ? "not used" : null],
+    ["Pulse mode", l.mode ? `${w(l.mode)}${l.mode === "burst" && l.pulses_per_burst !== undefined ? `, ${l.pulses_per_burst} pulses per burst` : ""}` : null],
+    // Micrometres, as the laser shows the offset (the note stores millimetres).
+    ["Focus", l.focus ? `${w(l.focus.method)}${typeof l.focus.distance_mm === "number" ? `, ${num(l.focus.distance_mm * 1000, 1)} µm` : ""}` : null],
+    ["Contact lens", l.contact_lens?.used === true ? ["used", l.contact_lens.lens,
+      typeof l.contact_lens.magnification === "number" ? `${num(l.contact_lens.magnification, 2)}×` : null,
+      l.contact_lens.cone_angle_deg !== undefined ? `cone ${num(l.contact_lens.cone_angle_deg, 0)}°` : null].filter(Boolean).join(", ")
+      : yes(l.contact_lens?.used) === "no" ? "not used" : null],
   ]));
 
   const changes = new Map((d?.iop?.changes || []).map((c) => [c.reading_index, c.change_mmhg]));
@@ -174,9 +205,20 @@ export function renderPrint(section, { note, view, findings: open, zone, stored,
       item.flag ? el("span", "p-note", `. ${item.flag}.`) : null));
   }
   if (!due.children.length) due.append(el("li", null, "Nothing scheduled."));
+  // Beside the dates: each reason the risk is raised and what it changes in them.
+  const why = el("ul", "p-list p-why");
+  for (const r of riskReasonWords(d) || []) {
+    const item = el("li", null, el("strong", null, r.text), r.changes ? `: ${r.changes}` : "",
+      r.source ? el("span", "p-src", ` (source: ${r.source})`) : null);
+    item.dataset.code = r.code;
+    why.append(item);
+  }
+  const dueBlock = why.children.length
+    ? block("Follow-up to book", due, el("p", "p-why-title", "Raised risk, which sets these dates:"), why)
+    : block("Follow-up to book", due);
 
   section.replaceChildren(head,
     el("div", "p-grid", patient, before, laser, result, plan, el("div", "p-side", worked, figure)),
-    el("div", "p-bottom", block("Findings", findings), block("Follow-up to book", due)),
+    el("div", "p-bottom", block("Findings", findings), dueBlock),
     el("p", "p-caution", caution));
 }
