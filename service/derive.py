@@ -321,7 +321,7 @@ def risk(factors: RiskFactors, course: IopCourse, band: EnergyBand, policy: Poli
 
     def add(code: str, text: str) -> None:
         entry = policy.risk_reasons[code]  # the policy has an entry for every code
-        reasons.append(RiskReason(code, text, entry.changes, entry.source))
+        reasons.append(RiskReason(code, text, policy.risk_changes(code), entry.source))
 
     if factors.glaucoma in t.glaucoma_severities.values:
         add("glaucoma", f"glaucoma ({factors.glaucoma})")

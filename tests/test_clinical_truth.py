@@ -414,3 +414,31 @@ def test_scenario_3_over_the_api_refuses_to_sign_until_glaucoma_is_recorded(api:
     )
     assert signed.status_code == 200
     assert signed.json()["status"] == "final"
+
+
+def test_a_lens_name_without_a_lens_used_is_refused(assessor: Assessor) -> None:
+    # A record that names a lens nobody used says something untrue: refused at its field.
+    note = uncomplicated()
+    note["laser"]["contact_lens"] = {"used": False, "lens": "site lens A", "magnification": 1.5}
+    found = {
+        (f.code, f.location) for f in run(assessor, note).findings if f.severity.value == "error"
+    }
+    assert found >= {
+        ("field-not-allowed", "laser.contact_lens.lens"),
+        ("field-not-allowed", "laser.contact_lens.magnification"),
+    }
+
+
+def test_what_a_risk_reason_changes_follows_the_sites_windows(tmp_path: Any) -> None:
+    site = tmp_path / "site.toml"
+    site.write_text("[schedule.review_raised]\nearliest = 3\ntarget = 4\nlatest = 6\n")
+    local = Assessor(load_policy(site))
+    note = uncomplicated()
+    note["before"]["risk_factors"]["uveitis"] = True
+    a = run(local, note)
+    assert a.derived is not None
+    assert a.derived.risk.reasons[0].changes == "review at 3-6 days instead of 21-42 days"
+    bad = tmp_path / "bad.toml"
+    bad.write_text('[risk_reasons.uveitis]\nchanges = "review at {soon}"\n')
+    with pytest.raises(PolicyError, match=r"risk_reasons\.uveitis\.changes"):
+        load_policy(bad)

@@ -161,6 +161,11 @@ class Thresholds(PolicyPart):
 class Window(PolicyPart):
     """A due item's window, as offsets from the end of the session."""
 
+    def span(self) -> str:
+        """The window in words: "5-10 days"."""
+        unit = {"min": "minutes", "h": "hours", "d": "days"}[self.unit]
+        return f"{self.earliest}-{self.latest} {unit}"
+
     unit: Literal["min", "h", "d"]
     earliest: int = Field(ge=0)
     target: int = Field(ge=0)
@@ -326,6 +331,18 @@ class Policy(PolicyPart):
         return value
 
     @model_validator(mode="after")
+    def _risk_texts_fill_in(self) -> Policy:
+        for code in self.risk_reasons:
+            try:
+                self.risk_changes(code)
+            except (KeyError, IndexError, ValueError) as exc:
+                raise ValueError(
+                    f"risk_reasons.{code}.changes: only {{review_raised}} and "
+                    f"{{review_routine}} may stand in braces ({exc!r})"
+                ) from exc
+        return self
+
+    @model_validator(mode="after")
     def _lenses_in_limits(self) -> Policy:
         bounds = self.limits.lens_magnification
         for lens in self.contact_lenses:
@@ -335,6 +352,13 @@ class Policy(PolicyPart):
                     f"outside limits.lens_magnification ({bounds.describe()})"
                 )
         return self
+
+    def risk_changes(self, code: str) -> str:
+        """What a risk reason changes in the follow-up, with this policy's own windows."""
+        return self.risk_reasons[code].changes.format(
+            review_raised=self.schedule.review_raised.span(),
+            review_routine=self.schedule.review_routine.span(),
+        )
 
     def level_of(self, code: str) -> SeverityLevel | None:
         """The site's level for a clinical finding code, or None when the policy has none."""

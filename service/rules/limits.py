@@ -391,6 +391,17 @@ def completeness(note: Note, ctx: Context) -> Iterator[Finding]:
             value=focus.distance_um,
             issue_type="invalid",
         )
+    lens = laser.contact_lens
+    if not lens.used:
+        for name in ("lens", "magnification"):
+            if getattr(lens, name) is not None:
+                yield error(
+                    "field-not-allowed",
+                    f"laser.contact_lens.{name}",
+                    f"a contact lens {name} is given, but no contact lens was used",
+                    f"contact_lens.{name} requires contact_lens.used true",
+                    issue_type="invalid",
+                )
     if laser.mode == "burst" and laser.pulses_per_burst is None:
         burst = ctx.policy.limits.pulses_per_burst
         yield error(
