@@ -14,9 +14,9 @@ from fastapi.middleware.cors import CORSMiddleware
 from service import __version__
 from service.access import Access
 from service.api import audit, docs, errors, fhir, health, notes, web
+from service.api.body_limit import BodyLimit
 from service.api.guard import Guard
 from service.api.headers import SecurityHeaders
-from service.api.limits import BodyLimit
 from service.assess import Assessor
 from service.audit_trail import AuditTrail
 from service.config import Settings, effective_policy

@@ -7,7 +7,7 @@ from typing import Any
 from service.assess import Assessment
 from service.fhir.outcome import outcome
 from service.findings import Finding
-from service.report import CAUTION
+from service.plain_text import CAUTION
 
 
 def finding_view(f: Finding) -> dict[str, Any]:

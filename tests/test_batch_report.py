@@ -18,7 +18,7 @@ import pytest
 
 from service.batch.output import AtomicFile
 from service.batch.report_csv import COLUMNS, cell
-from service.report import CAUTION
+from service.plain_text import CAUTION
 from tests.batch_helpers import (
     CAPNOTE,
     NOW,

@@ -17,8 +17,8 @@ from schemas.note import LaserSettings
 from service.api.deps import SitePolicy
 from service.api.media import json_response
 from service.errors import NotFoundError
+from service.plain_text import CAUTION
 from service.policy.model import Policy, Window
-from service.report import CAUTION
 from service.web import PAGE, STATIC
 
 router = APIRouter(include_in_schema=False)

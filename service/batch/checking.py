@@ -21,7 +21,7 @@ FILE = "file"  # an input that could not be read: neither a note nor a resource
 
 
 @dataclass(frozen=True, slots=True)
-class Result:
+class RecordResult:
     """What one record gave: its findings and, for a whole note file, what follows from it."""
 
     source: Source
@@ -73,29 +73,29 @@ class Checker:
         self.now = now
         self.ctx = Context(assessor.policy, now)
 
-    def check_file(self, source: Source, raw: bytes) -> Result:
+    def check_file(self, source: Source, raw: bytes) -> RecordResult:
         """A whole JSON file: a FHIR resource when it has a resourceType, else a note."""
         try:
             data = orjson.loads(raw)
         except orjson.JSONDecodeError:
             data = None
         if isinstance(data, dict) and "resourceType" in data:
-            return Result(source, None, FHIR, _resource_findings(data))
+            return RecordResult(source, None, FHIR, _resource_findings(data))
         # A single note gets the whole job: its derived values and due items are shown.
         result = self.assessor.assess(raw, self.now)
-        return Result(source, None, NOTE, result.findings, result.derived, result.due)
+        return RecordResult(source, None, NOTE, result.findings, result.derived, result.due)
 
-    def check(self, record: Record) -> Result:
+    def check(self, record: Record) -> RecordResult:
         """The result of one record."""
         if record.data is None:
             failure = [record.failure] if record.failure is not None else []
-            return Result(record.source, record.line, FILE, failure)
+            return RecordResult(record.source, record.line, FILE, failure)
         if record.line is None:
             return self.check_file(record.source, record.data)
         kind, findings = check_record(record.data, self.ctx)
-        return Result(record.source, record.line, kind, findings)
+        return RecordResult(record.source, record.line, kind, findings)
 
-    def results(self, records: Iterable[Record]) -> Iterator[Result]:
+    def results(self, records: Iterable[Record]) -> Iterator[RecordResult]:
         """The result of each record, in order, one at a time."""
         for record in records:
             yield self.check(record)

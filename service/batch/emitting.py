@@ -11,7 +11,7 @@ import orjson
 from service.assess import Assessor
 from service.batch.inputs import Record
 from service.findings import Finding
-from service.report import finding_line
+from service.plain_text import finding_line
 
 
 @dataclass(frozen=True, slots=True)

@@ -10,15 +10,15 @@ from typing import Any, Protocol, TextIO
 
 import orjson
 
-from service.batch.checking import Result, Tally
+from service.batch.checking import RecordResult, Tally
 from service.fhir.outcome import outcome
-from service.report import CAUTION, derived_lines, due_line, finding_line
+from service.plain_text import CAUTION, derived_lines, due_line, finding_line
 
 
 class Listing(Protocol):
     """Standard output of a check."""
 
-    def add(self, result: Result) -> None:
+    def add(self, result: RecordResult) -> None:
         """Print (or keep) one result."""
 
     def close(self, tally: Tally, files: int, streamed: bool) -> None:
@@ -32,7 +32,7 @@ class TextListing:
     def __init__(self, out: TextIO) -> None:
         self.write = out.write
 
-    def add(self, result: Result) -> None:
+    def add(self, result: RecordResult) -> None:
         """Print one result."""
         name = result.source.name
         if not result.source.streamed:
@@ -44,7 +44,7 @@ class TextListing:
             for f in result.findings:
                 self.write(f"{name}:{result.line}: {finding_line(f).lstrip()}\n")
 
-    def _block(self, result: Result) -> None:
+    def _block(self, result: RecordResult) -> None:
         state = "FAILED" if result.failed else "ok"
         lines = [f"{result.source.name} ({result.kind}): {state}"]
         lines += [finding_line(f) for f in result.findings]
@@ -67,7 +67,7 @@ class NdjsonListing:
     def __init__(self, out: TextIO) -> None:
         self.write = out.write
 
-    def add(self, result: Result) -> None:
+    def add(self, result: RecordResult) -> None:
         """Print one record's object."""
         record = {
             "file": result.source.name,
@@ -87,7 +87,7 @@ class BundleListing:
         self.out = out
         self.entries: list[dict[str, Any]] = []
 
-    def add(self, result: Result) -> None:
+    def add(self, result: RecordResult) -> None:
         """Keep the file's OperationOutcome for the Bundle."""
         url = result.source.path.resolve().as_uri()
         self.entries.append({"fullUrl": url, "resource": outcome(result.findings)})

@@ -13,7 +13,7 @@ from pathlib import Path
 from types import TracebackType
 from typing import BinaryIO, Protocol, Self, TextIO
 
-from service.batch.checking import Result, Tally
+from service.batch.checking import RecordResult, Tally
 from service.errors import UsageError
 from service.findings import Finding
 
@@ -112,7 +112,7 @@ class Row:
     finding: Finding
 
 
-def rows(result: Result) -> Iterator[Row]:
+def rows(result: RecordResult) -> Iterator[Row]:
     """The rows of one result, in the order its findings came."""
     name = result.source.name
     for f in result.findings:
@@ -124,7 +124,7 @@ class ReportWriter(Protocol):
 
     target: Path
 
-    def add(self, result: Result) -> None:
+    def add(self, result: RecordResult) -> None:
         """Take one record's result."""
 
     def commit(self, run: RunInfo) -> None:

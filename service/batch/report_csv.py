@@ -5,7 +5,7 @@ from __future__ import annotations
 import csv
 from pathlib import Path
 
-from service.batch.checking import Result
+from service.batch.checking import RecordResult
 from service.batch.output import AtomicFile, RunInfo, rows
 
 COLUMNS = (
@@ -45,7 +45,7 @@ class CsvReport:
         self._writer = csv.writer(self._file.text(), lineterminator="\r\n")
         self._writer.writerow(COLUMNS)
 
-    def add(self, result: Result) -> None:
+    def add(self, result: RecordResult) -> None:
         """Write a row per finding of the result."""
         for row in rows(result):
             f = row.finding

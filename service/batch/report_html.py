@@ -13,11 +13,11 @@ from collections import Counter
 from html import escape
 from pathlib import Path
 
-from service.batch.checking import Result
+from service.batch.checking import RecordResult
 from service.batch.output import AtomicFile, RunInfo, rows
 from service.batch.report_style import CHUNK_ROWS, COLGROUP, COLUMNS, STYLE
 from service.findings import Severity
-from service.report import CAUTION
+from service.plain_text import CAUTION
 
 TOP_FINDINGS = 12
 _ORDER = {Severity.ERROR: 0, Severity.WARNING: 1, Severity.INFORMATION: 2}
@@ -58,7 +58,7 @@ class HtmlReport:
         self.rules: dict[str, str] = {}
         self.written = 0
 
-    def add(self, result: Result) -> None:
+    def add(self, result: RecordResult) -> None:
         """Count the result's findings and write a table row for each."""
         seen: set[Key] = set()
         write = self._rows.write

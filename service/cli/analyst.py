@@ -25,7 +25,7 @@ from service.batch.listing import BundleListing, Listing, NdjsonListing, TextLis
 from service.batch.output import AtomicFile, ReportWriter, RunInfo
 from service.batch.reports import open_report, report_format
 from service.cli.options import NowOption, PolicyOption, assessor, present
-from service.report import finding_line
+from service.plain_text import finding_line
 
 _PICKED_UP = (
     "A folder is searched recursively, in name order, for *.json files (one note or FHIR "

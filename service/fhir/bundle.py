@@ -15,7 +15,7 @@ from service.derive import Derived
 from service.errors import EmissionError
 from service.fhir.bindings import status_problem
 from service.fhir.codes import RESOURCE_KEY
-from service.fhir.common import Context, Emitted, Entry, Version, key_query
+from service.fhir.common import Emitted, Entry, Version, VersionContext, key_query
 from service.fhir.observations import observations
 from service.fhir.procedure import procedure
 from service.fhir.requests import (
@@ -32,10 +32,10 @@ def entries(
     derived: Derived,
     due: list[DueItem],
     version: Version | None = None,
-    ctx: Context | None = None,
+    ctx: VersionContext | None = None,
 ) -> list[Entry]:
     """Every resource for the note version, the Procedure first."""
-    ctx = ctx or Context(note, version)
+    ctx = ctx or VersionContext(note, version)
     proc = procedure(ctx, derived, due)
     made = observations(ctx, proc, derived)
     out = [proc, *made]
@@ -130,7 +130,7 @@ def emit(
     # No id or meta here: a receiver assigns its own, and a conditional update must not
     # carry an id that may differ from the matched resource's. The read API adds both.
     version = version or Version()
-    ctx = Context(note, version)
+    ctx = VersionContext(note, version)
     items = entries(note, derived, due, version, ctx)
     if version.previous is not None:
         items += withdrawn(version.previous, {e.key for e in items})

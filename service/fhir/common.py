@@ -130,7 +130,7 @@ def key_query(key: str) -> str:
     return _KEY_QUERY + key
 
 
-def keyed(ctx: Context, role: str, kind: str) -> tuple[str, dict[str, Any]]:
+def keyed(ctx: VersionContext, role: str, kind: str) -> tuple[str, dict[str, Any]]:
     """A new resource of the note in this role: its key and the resource, begun with its
     type and its identifier (the project's resource key, which ifNoneExist searches), as
     FHIR JSON is usually read; the builder adds the rest."""
@@ -164,7 +164,7 @@ class Version:
     previous: Emitted | None = None
 
 
-class Context:
+class VersionContext:
     """What every resource of one note version shares: references, version and state."""
 
     def __init__(self, note: Note, version: Version | None = None) -> None:

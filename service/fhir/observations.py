@@ -12,7 +12,7 @@ from service.acuity import QUALITATIVE
 from service.derive import Derived
 from service.fhir import codes
 from service.fhir.codes import LOINC, OBS_CATEGORY, SNOMED, coding, concept, own, quantity
-from service.fhir.common import Context, Entry, keyed, keyed_entry, when
+from service.fhir.common import Entry, VersionContext, keyed, keyed_entry, when
 
 _METHOD = {
     "applanation": "applanation tonometry",
@@ -33,7 +33,7 @@ _BODY_SITE = {
 class ObservationMaker:
     """Builds the Observations of one note, sharing status, subject and partOf."""
 
-    def __init__(self, ctx: Context, procedure: Entry) -> None:
+    def __init__(self, ctx: VersionContext, procedure: Entry) -> None:
         self.ctx = ctx
         self.procedure = procedure
         self.status = ctx.status("final", draft="preliminary", amended="amended")
@@ -109,7 +109,7 @@ class ObservationMaker:
         return self.make(role, "exam", code, effective, {"valueString": shown}, **extra)
 
 
-def observations(ctx: Context, procedure: Entry, derived: Derived) -> list[Entry]:
+def observations(ctx: VersionContext, procedure: Entry, derived: Derived) -> list[Entry]:
     """Every Observation for the note, inputs before the values derived from them."""
     note = ctx.note
     make = ObservationMaker(ctx, procedure)

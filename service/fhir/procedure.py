@@ -11,8 +11,8 @@ from service.fhir import codes
 from service.fhir.codes import SNOMED, coding, concept, own
 from service.fhir.common import (
     PROCEDURE_ROLE,
-    Context,
     Entry,
+    VersionContext,
     fhir_identifier,
     identifier_query,
     when,
@@ -128,7 +128,7 @@ def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, st
     return {"status": "generated", "div": f'<div xmlns="http://www.w3.org/1999/xhtml">{body}</div>'}
 
 
-def procedure(ctx: Context, derived: Derived, due: list[DueItem]) -> Entry:
+def procedure(ctx: VersionContext, derived: Derived, due: list[DueItem]) -> Entry:
     """The Procedure: what was done, to which eye, by whom, with what result."""
     note = ctx.note
     outcome_code, outcome_display = codes.OUTCOME[note.result.outcome]

@@ -7,7 +7,7 @@ from typing import Any
 
 from schemas.note import ClinicDrop, HomeDrop, PressureTreatment
 from service.fhir.codes import concept, own, quantity
-from service.fhir.common import Context, Entry, keyed, keyed_entry, when
+from service.fhir.common import Entry, VersionContext, keyed, keyed_entry, when
 from service.schedule import DueItem
 
 _DUE_CODE = {
@@ -38,7 +38,7 @@ def _due_note(item: DueItem) -> str:
     return " ".join(parts)
 
 
-def service_request(ctx: Context, procedure: Entry, item: DueItem) -> Entry:
+def service_request(ctx: VersionContext, procedure: Entry, item: DueItem) -> Entry:
     """One due item as a ServiceRequest with its window (Timing.repeat.boundsPeriod)."""
     done = item.done_by_reading is not None
     role = f"due-{item.kind}"
@@ -71,7 +71,9 @@ def _drug(agent: str, strength: float | None) -> dict[str, Any]:
     return concept(text=f"{agent}{strength_text} eye drops")
 
 
-def administrations(ctx: Context, procedure: Entry, drop: ClinicDrop, index: int) -> list[Entry]:
+def administrations(
+    ctx: VersionContext, procedure: Entry, drop: ClinicDrop, index: int
+) -> list[Entry]:
     """A prophylaxis drop given in clinic: one administration per time it was given."""
     note = ctx.note
     moments = {
@@ -108,7 +110,7 @@ _DOSE_UNIT = {"drop": ("drop", "{drop}"), "mg": ("mg", "mg")}
 
 
 def pressure_treatment(
-    ctx: Context,
+    ctx: VersionContext,
     procedure: Entry,
     given: PressureTreatment,
     index: int,
@@ -138,7 +140,7 @@ def pressure_treatment(
     return keyed_entry(key, resource, role)
 
 
-def medication_request(ctx: Context, procedure: Entry, drop: HomeDrop, index: int) -> Entry:
+def medication_request(ctx: VersionContext, procedure: Entry, drop: HomeDrop, index: int) -> Entry:
     """Drops to take home, with how often and for how long."""
     note = ctx.note
     role = f"take-home-{index}"

@@ -139,7 +139,7 @@ class SqliteStore(Store):
     async def before_write(
         self, key: str, patient: tuple[str, str], eye: str
     ) -> tuple[list[str], list[PriorSession]]:
-        """The note's stored digests and the eye's other sessions (see Ledger)."""
+        """The note's stored digests and the eye's other sessions (see Store)."""
         hashes_sql, earlier_sql = self._sql["hashes"], self._sql["eye_sessions"]
         params = {"patient_system": patient[0], "patient_value": patient[1], "eye": eye}
 
@@ -268,12 +268,11 @@ class Checkpointer:
     second; a page written many times in between is copied once. Under steady writing a
     passive checkpoint never catches the log's end, so the log would grow without bound:
     once it holds RESTART_FRAMES, a restarting checkpoint takes the write lock for the
-    little that is left (writers await it: see SqliteLedger._run) and the log starts over.
+    little that is left (writers await it: see SqliteStore._run) and the log starts over.
 
-    That restart holds the write lock through the database file's sync: 30 to 60 ms on the
-    benchmark's disk. At 16,000 frames (a log of up to 64 MB) it comes a quarter as often
-    as at 4,000 under full load, and POST /notes' p99 on one connection fell from 12-14 ms
-    to 6-7 ms (bench/, measured in turn) with the same requests/s.
+    That restart holds the write lock through the database file's sync, which sets the
+    tail of POST /notes under load; RESTART_FRAMES (a log of up to 64 MB) makes it rare.
+    The figures behind the choice are in bench/results and README, "Performance".
     """
 
     INTERVAL_S = 0.2
