@@ -11,7 +11,7 @@ from pydantic import ValidationError
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from schemas.note import Note  # noqa: E402
+from capnote.note import Note  # noqa: E402
 
 
 def main() -> None:

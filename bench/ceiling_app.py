@@ -11,7 +11,7 @@ from __future__ import annotations
 from fastapi import FastAPI, Request
 from fastapi.responses import Response
 
-from service.app import app_from_environment
+from capnote.app import app_from_environment
 
 
 def create() -> FastAPI:

@@ -26,11 +26,11 @@ if str(ROOT) not in sys.path:  # run as `python bench/run.py`: the repository is
 
 
 from bench import wrk  # noqa: E402
-from service.store.database import migrate, open_store  # noqa: E402
+from capnote.store.database import migrate, open_store  # noqa: E402
 
 PYTHON = sys.executable
-CAPNOTE = [PYTHON, "-c", "from service.cli import main; main()"]
-CAPNOTE_ENTRY = "service.cli:main"  # for timed(): the same command, run through bench/peak.py
+CAPNOTE = [PYTHON, "-c", "from capnote.cli import main; main()"]
+CAPNOTE_ENTRY = "capnote.cli:main"  # for timed(): the same command, run through bench/peak.py
 TEMPLATE = ROOT / "examples" / "notes" / "right-routine.json"
 # The demo notes are set in late November 2026; every check runs as if on this day.
 NOW = datetime(2026, 12, 1, 12, 0, tzinfo=UTC)
@@ -118,7 +118,8 @@ def served(
     port = free_port()
     log_path = workdir / f"{name}-{port}.log"
     argv = [*argv, "--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)]
-    full_env = {**os.environ, **env, "PYTHONPATH": str(ROOT)}
+    # capnote's source folder first (a checkout's own code, installed or not), then bench.
+    full_env = {**os.environ, **env, "PYTHONPATH": f"{ROOT / 'service'}{os.pathsep}{ROOT}"}
     with log_path.open("w") as log:
         process = subprocess.Popen(  # noqa: S603 (argv built here from constants)
             argv, cwd=workdir, env=full_env, stdout=log, stderr=subprocess.STDOUT
@@ -147,7 +148,7 @@ def capnote_server(
     """capnote's app factory, served by bench/serve_app.py like every app here (the database
     is migrated beforehand, as `capnote serve` does before it starts its workers)."""
     return app_server(
-        "service.app:app_from_environment",
+        "capnote.app:app_from_environment",
         workdir,
         workers,
         {"CAPNOTE_DATABASE_URL": url, "CAPNOTE_MIGRATE_ON_START": "false", **(env or {})},

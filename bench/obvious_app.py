@@ -25,16 +25,16 @@ from sqlalchemy import Column, Text
 from sqlmodel import Field, Session, SQLModel, create_engine
 from starlette.concurrency import run_in_threadpool
 
-from schemas.note import Note
-from service.clinic_calendar import PolicyCalendar
-from service.derive import Derived, derive
-from service.fhir.bundle import entries
-from service.fhir.codes import RESOURCE_KEY
-from service.fhir.common import stable_uuid
-from service.findings import has_errors
-from service.policy import Policy, load_policy
-from service.rules import Context, check_note
-from service.schedule import DueItem, schedule
+from capnote.clinic_calendar import PolicyCalendar
+from capnote.derive import Derived, derive
+from capnote.fhir.bundle import entries
+from capnote.fhir.codes import RESOURCE_KEY
+from capnote.fhir.common import stable_uuid
+from capnote.findings import has_errors
+from capnote.note import Note
+from capnote.policy import Policy, load_policy
+from capnote.rules import Context, check_note
+from capnote.schedule import DueItem, schedule
 
 
 class ObviousRecord(SQLModel, table=True):

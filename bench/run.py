@@ -66,14 +66,14 @@ from bench.harness import (
     token,
     write_ndjson,
 )
-from service.assess import Assessor
-from service.fhir.bundle import OutputCheck, emit
-from service.fhir.common import Version
-from service.fhir.validate import validate_resource
-from service.notes import Change, NoteService, Principal, note_key
-from service.policy import load_policy
-from service.rules import Context, check_payload
-from service.store.database import migrate, open_store
+from capnote.assess import Assessor
+from capnote.fhir.bundle import OutputCheck, emit
+from capnote.fhir.common import Version
+from capnote.fhir.validate import validate_resource
+from capnote.notes import Change, NoteService, Principal, note_key
+from capnote.policy import load_policy
+from capnote.rules import Context, check_payload
+from capnote.store.database import migrate, open_store
 
 
 @dataclass(frozen=True)

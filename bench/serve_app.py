@@ -2,7 +2,7 @@
 
     python bench/serve_app.py MODULE:FACTORY --host 127.0.0.1 --port 8000 --workers 2
 
-The same code path as `capnote serve` (service.serving.run: uvicorn, one listening socket
+The same code path as `capnote serve` (capnote.serving.run: uvicorn, one listening socket
 per worker, info log, no access log), so that capnote, the ceiling and the obvious app
 differ only in the app.
 """
@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import argparse
 
-from service import serving
+from capnote import serving
 
 
 def main() -> None:

@@ -19,7 +19,7 @@ from tests.test_cli_ndjson import write_ndjson
 __all__ = ["NOW", "note", "peak_rss_kib", "write_ndjson"]
 
 NOW = "2026-12-01T12:00:00+00:00"
-CAPNOTE = [sys.executable, "-c", "from service.cli import main; main()"]
+CAPNOTE = [sys.executable, "-c", "from capnote.cli import main; main()"]
 
 
 def capnote(

@@ -13,13 +13,13 @@ from typing import Any, TypeVar
 import pytest
 from fastapi.testclient import TestClient
 
-from service.app import create_app
-from service.assess import Assessor
-from service.config import Settings
-from service.notes import NoteService, Principal, StoredNote
-from service.policy import Policy, load_policy
-from service.store.base import Store
-from service.store.database import migrate, open_store
+from capnote.app import create_app
+from capnote.assess import Assessor
+from capnote.config import Settings
+from capnote.notes import NoteService, Principal, StoredNote
+from capnote.policy import Policy, load_policy
+from capnote.store.base import Store
+from capnote.store.database import migrate, open_store
 from tests.pg_cluster import PgCluster
 from tests.pg_fixtures import postgres_cluster  # noqa: F401
 

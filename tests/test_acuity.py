@@ -6,8 +6,8 @@ from __future__ import annotations
 
 import pytest
 
-from schemas.note import VisualAcuity
-from service.acuity import AcuityError, to_logmar
+from capnote.acuity import AcuityError, to_logmar
+from capnote.note import VisualAcuity
 
 
 @pytest.mark.parametrize(

@@ -8,8 +8,8 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
-from service.app import create_app
-from service.config import Settings
+from capnote.app import create_app
+from capnote.config import Settings
 from tests.conftest import NOW
 
 

@@ -209,10 +209,10 @@ def test_unexpected_errors_answer_500_with_only_an_incident_id(
 
 
 def test_database_down_answers_503_with_retry_after(api: Api) -> None:
-    from service.access import Access
-    from service.api import deps
-    from service.notes import NoteService
-    from service.store.database import open_store
+    from capnote.access import Access
+    from capnote.api import deps
+    from capnote.notes import NoteService
+    from capnote.store.database import open_store
 
     app = api.client.app  # type: ignore[attr-defined]
     dead_store = open_store("postgresql+psycopg://nobody@127.0.0.1:1/none")
@@ -248,8 +248,8 @@ def test_a_real_server_logs_no_traceback_for_an_unexpected_error(
     import httpx
     import uvicorn
 
-    from service.app import create_app
-    from service.config import Settings
+    from capnote.app import create_app
+    from capnote.config import Settings
 
     app = create_app(
         Settings(database_url=f"sqlite:///{tmp_path / 'g.sqlite3'}"), clock=lambda: NOW

@@ -9,9 +9,9 @@ import pytest
 from fastapi.testclient import TestClient
 from pydantic import ValidationError
 
-from service.app import create_app
-from service.config import Settings
-from service.fhir.bundle import OutputCheck
+from capnote.app import create_app
+from capnote.config import Settings
+from capnote.fhir.bundle import OutputCheck
 from tests.conftest import (
     EXAMPLES,
     INVALID,

@@ -18,8 +18,8 @@ import schemathesis
 from hypothesis import HealthCheck, given, seed, settings
 from schemathesis.specs.openapi import checks as openapi_checks
 
-from service.app import create_app
-from service.config import Settings
+from capnote.app import create_app
+from capnote.config import Settings
 from tests.conftest import new_token
 
 NOW = datetime(2026, 12, 1, 12, tzinfo=UTC)

@@ -11,9 +11,9 @@ from pathlib import Path
 
 import pytest
 
-from service.batch import inputs
-from service.batch.inputs import STDIN, Source, expand, records
-from service.errors import UsageError
+from capnote.batch import inputs
+from capnote.batch.inputs import STDIN, Source, expand, records
+from capnote.errors import UsageError
 from tests.batch_helpers import CAPNOTE, NOW, capnote, note
 from tests.conftest import ROOT, VALID
 
@@ -189,7 +189,7 @@ def test_check_reads_standard_input() -> None:
 
 def test_batch_modules_know_nothing_of_the_command_line() -> None:
     # service/batch is the pure part: the command line's frameworks stay in service/cli.
-    for path in sorted((ROOT / "service" / "batch").glob("*.py")):
+    for path in sorted((ROOT / "service" / "capnote" / "batch").glob("*.py")):
         tree = ast.parse(path.read_text())
         imported = {
             alias.name.split(".")[0]

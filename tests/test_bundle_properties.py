@@ -17,10 +17,10 @@ from fhir.resources.R4B.bundle import Bundle
 from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
-from service.assess import Assessor
-from service.fhir.common import Emitted, Version
-from service.findings import has_errors
-from service.rules import Context, check_payload
+from capnote.assess import Assessor
+from capnote.fhir.common import Emitted, Version
+from capnote.findings import has_errors
+from capnote.rules import Context, check_payload
 from tests.conftest import NOW, routine
 from tests.fhir_r4_check import r4_problems
 

@@ -22,7 +22,7 @@ NOW = "2026-12-01T12:00:00+00:00"
 
 def capnote(*args: str, env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
     return subprocess.run(
-        [sys.executable, "-c", "from service.cli import main; main()", *args],
+        [sys.executable, "-c", "from capnote.cli import main; main()", *args],
         capture_output=True,
         text=True,
         cwd=ROOT,
@@ -77,7 +77,7 @@ def test_check_validates_fhir_resources_for_the_analyst(tmp_path: Path) -> None:
 
 _LOADED_PROBE = (
     "import sys\n"
-    "from service.cli import main\n"
+    "from capnote.cli import main\n"
     "try:\n"
     "    main()\n"
     "except SystemExit as done:\n"
@@ -103,7 +103,7 @@ def _loaded_after(*args: str) -> str:
 def test_checking_notes_loads_neither_the_store_nor_the_r4b_models(tmp_path: Path) -> None:
     # An analyst's check of one file starts in a fraction of the time when the store's
     # libraries (SQLAlchemy, httpx) and the R4B models stay unloaded: they are loaded by the
-    # commands and records that need them (service.cli.operator, service.batch.checking).
+    # commands and records that need them (capnote.cli.operator, capnote.batch.checking).
     notes = EXAMPLES / "notes"
     assert _loaded_after("check", "--now", NOW, str(notes)) == "LOADED [] EXIT 0"
     # A FHIR resource among the records brings the R4B models in when it is met.
@@ -178,7 +178,7 @@ def test_serve_names_a_page_that_exists(tmp_path: Path) -> None:
         [
             sys.executable,
             "-c",
-            "from service.cli import main; main()",
+            "from capnote.cli import main; main()",
             "serve",
             "--port",
             str(port),

@@ -17,7 +17,7 @@ from tests.conftest import EXAMPLES, ROOT, load, routine
 from tests.fhir_r4_check import r4_problems
 
 NOW = "2026-12-01T12:00:00+00:00"
-CAPNOTE = [sys.executable, "-c", "from service.cli import main; main()"]
+CAPNOTE = [sys.executable, "-c", "from capnote.cli import main; main()"]
 
 
 def capnote(*args: str) -> subprocess.CompletedProcess[str]:

@@ -21,9 +21,9 @@ from typing import Any
 
 import pytest
 
-from service.assess import Assessment, Assessor
-from service.errors import PolicyError
-from service.policy import load_policy
+from capnote.assess import Assessment, Assessor
+from capnote.errors import PolicyError
+from capnote.policy import load_policy
 from tests.conftest import NOW, Api
 
 DAY = "2026-11-25"  # a Wednesday, an open clinic day in the default calendar

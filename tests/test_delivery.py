@@ -13,9 +13,9 @@ from typing import Any
 import pytest
 from sqlalchemy import text
 
-from service.delivery import DeliveryWorker, Receiver
-from service.notes import Principal
-from service.store.database import make_engine
+from capnote.delivery import DeliveryWorker, Receiver
+from capnote.notes import Principal
+from capnote.store.database import make_engine
 from tests.conftest import NOW, SyncNotes, new_token, routine, sync_notes
 from tests.fhir_receiver import Dropper, Store, running
 
@@ -194,8 +194,8 @@ def test_the_service_forwards_and_shows_the_delivery(database_url: str) -> None:
 
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
-    from service.config import Settings
+    from capnote.app import create_app
+    from capnote.config import Settings
 
     receiver = Store()
     with running(receiver) as url:
@@ -242,7 +242,7 @@ def test_operator_commands_deliver_list_retry_park(setup: Any, database_url: str
 
         def capnote(*args: str) -> subprocess.CompletedProcess[str]:
             return subprocess.run(
-                [sys.executable, "-c", "from service.cli import main; main()", *args],
+                [sys.executable, "-c", "from capnote.cli import main; main()", *args],
                 capture_output=True,
                 text=True,
                 env=env,

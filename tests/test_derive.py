@@ -8,8 +8,7 @@ from datetime import UTC, datetime
 
 import pytest
 
-from schemas.note import IopReading, LaserSettings, Note, Opening, RiskFactors, TimedIopReading
-from service.derive import (
+from capnote.derive import (
     PriorSession,
     cumulative,
     derive,
@@ -22,7 +21,8 @@ from service.derive import (
     total_energy_mj,
     total_pulses,
 )
-from service.policy import Policy
+from capnote.note import IopReading, LaserSettings, Note, Opening, RiskFactors, TimedIopReading
+from capnote.policy import Policy
 from tests.conftest import routine
 
 T0 = datetime(2026, 11, 27, 10, 15, tzinfo=UTC)

@@ -14,7 +14,7 @@ from pathlib import Path
 import pytest
 import yaml
 
-from service.config import Settings
+from capnote.config import Settings
 from tests.conftest import ROOT
 
 DOCKER = ROOT / "docker"
@@ -66,7 +66,7 @@ def cli_accepts(command: list[str]) -> None:
     words = [w for w in command[1:] if not w.startswith("-") and not re.fullmatch(r"[\d.]+", w)]
     subcommand = words[0]
     run = subprocess.run(
-        [sys.executable, "-c", "from service.cli import main; main()", subcommand, "--help"],
+        [sys.executable, "-c", "from capnote.cli import main; main()", subcommand, "--help"],
         capture_output=True,
         text=True,
         timeout=60,

@@ -13,13 +13,13 @@ import pytest
 from fhir.resources.R4B.bundle import Bundle
 from ucumvert import get_ucum_parser
 
-from schemas.note import Note
-from service.assess import Assessment, Assessor
-from service.errors import EmissionError
-from service.fhir import codes
-from service.fhir.bundle import OutputCheck, check_output, entries
-from service.fhir.codes import CANONICAL, LOINC, SNOMED, UCUM
-from service.fhir.common import stable_uuid
+from capnote.assess import Assessment, Assessor
+from capnote.errors import EmissionError
+from capnote.fhir import codes
+from capnote.fhir.bundle import OutputCheck, check_output, entries
+from capnote.fhir.codes import CANONICAL, LOINC, SNOMED, UCUM
+from capnote.fhir.common import stable_uuid
+from capnote.note import Note
 from tests.conftest import NOW, VALID, routine
 from tests.fhir_r4_check import r4_problems
 
@@ -266,7 +266,7 @@ def test_stable_keys_are_rfc_4122_version_5_uuids(role: str) -> None:
 
 
 def test_emitting_leaves_the_shared_codings_as_they_were(assessor: Assessor) -> None:
-    # Codings built once are shared by every resource (service.fhir.codes._OWN): an
+    # Codings built once are shared by every resource (capnote.fhir.codes._OWN): an
     # amendment or a withdrawal that changed one would change every later Bundle.
     before = copy.deepcopy(codes._OWN)
     first = assessed(assessor, routine()).bundle

@@ -22,7 +22,7 @@ from sqlalchemy import create_engine, text
 from tests.conftest import ROOT, VALID, routine
 from tests.fhir_r4_check import r4_problems
 
-CAPNOTE = [sys.executable, "-c", "from service.cli import main; main()"]
+CAPNOTE = [sys.executable, "-c", "from capnote.cli import main; main()"]
 
 
 def free_port() -> int:
@@ -55,7 +55,11 @@ def server(database_url: str, workdir: Path, workers: int = 1) -> Iterator[str]:
         cwd=workdir,
         stdout=log,
         stderr=subprocess.STDOUT,
-        env={**os.environ, "CAPNOTE_DATABASE_URL": database_url, "PYTHONPATH": str(ROOT)},
+        env={
+            **os.environ,
+            "CAPNOTE_DATABASE_URL": database_url,
+            "PYTHONPATH": str(ROOT / "service"),
+        },
     )
     base = f"http://127.0.0.1:{port}"
     try:

@@ -1,4 +1,4 @@
-"""The amend and void rules as pure functions (service.rules.lifecycle), no store needed."""
+"""The amend and void rules as pure functions (capnote.rules.lifecycle), no store needed."""
 
 from __future__ import annotations
 
@@ -7,9 +7,9 @@ from typing import Any
 
 import pytest
 
-from schemas.note import Note
-from service.errors import ConflictError, InputError, PreconditionError
-from service.rules.lifecycle import Latest, amendment, voiding
+from capnote.errors import ConflictError, InputError, PreconditionError
+from capnote.note import Note
+from capnote.rules.lifecycle import Latest, amendment, voiding
 from tests.conftest import routine
 
 

@@ -14,12 +14,12 @@ from hypothesis import HealthCheck, settings
 from hypothesis import strategies as st
 from hypothesis.stateful import RuleBasedStateMachine, initialize, invariant, precondition, rule
 
-from service.assess import Assessor
-from service.errors import ConflictError, InputError, NotFoundError, PreconditionError
-from service.notes import NoteService, Principal, StoredNote
-from service.policy import load_policy
-from service.store.database import migrate
-from service.store.sqlite import SqliteStore
+from capnote.assess import Assessor
+from capnote.errors import ConflictError, InputError, NotFoundError, PreconditionError
+from capnote.notes import NoteService, Principal, StoredNote
+from capnote.policy import load_policy
+from capnote.store.database import migrate
+from capnote.store.sqlite import SqliteStore
 from tests.conftest import NOW, routine
 
 WHO = Principal("stateful test", "submitter")

@@ -10,7 +10,7 @@ import pytest
 from scipy.integrate import quad
 from scipy.special import j1
 
-from service.optics import airy_diameter_um, fluence_gain, focal_spot, numerical_aperture
+from capnote.optics import airy_diameter_um, fluence_gain, focal_spot, numerical_aperture
 
 
 def test_airy_diameter_at_na_014_is_about_9_3_um() -> None:

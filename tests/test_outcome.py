@@ -6,10 +6,10 @@ import json
 
 import pytest
 
-from service.errors import ConflictError, InputError, NotFoundError, PolicyError, UnavailableError
-from service.fhir.outcome import error_outcome, incident_outcome, outcome
-from service.policy import Policy
-from service.rules import Context, check_payload
+from capnote.errors import ConflictError, InputError, NotFoundError, PolicyError, UnavailableError
+from capnote.fhir.outcome import error_outcome, incident_outcome, outcome
+from capnote.policy import Policy
+from capnote.rules import Context, check_payload
 from tests.conftest import EXAMPLES, NOW, routine
 from tests.fhir_r4_check import r4_problems
 

@@ -10,12 +10,12 @@ from typing import Any
 
 import pytest
 
-from service.clinic_calendar import PolicyCalendar
-from service.config import Settings, effective_policy
-from service.errors import PolicyError
-from service.policy import load_policy
-from service.policy.loader import default_policy_data
-from service.policy.model import Range
+from capnote.clinic_calendar import PolicyCalendar
+from capnote.config import Settings, effective_policy
+from capnote.errors import PolicyError
+from capnote.policy import load_policy
+from capnote.policy.loader import default_policy_data
+from capnote.policy.model import Range
 from tests.conftest import routine
 
 
@@ -253,7 +253,7 @@ def test_the_command_line_refuses_a_non_finite_policy_in_one_line(tmp_path: Path
         [
             sys.executable,
             "-c",
-            "from service.cli import main; main()",
+            "from capnote.cli import main; main()",
             "check",
             "--policy",
             str(site),

@@ -9,19 +9,19 @@ from typing import Any
 
 import pytest
 
-from schemas.note import IopReading, RiskFactors, TimedIopReading
-from service.derive import energy_band, iop_course, risk
-from service.errors import PolicyError
-from service.findings import Finding, Severity
-from service.policy import (
+from capnote.derive import energy_band, iop_course, risk
+from capnote.errors import PolicyError
+from capnote.findings import Finding, Severity
+from capnote.note import IopReading, RiskFactors, TimedIopReading
+from capnote.policy import (
     CLINICAL_FINDING_CODES,
     RISK_REASON_CODES,
     Policy,
     SeverityPolicy,
     load_policy,
 )
-from service.policy.loader import default_policy_data
-from service.rules import Context, check_payload, graded
+from capnote.policy.loader import default_policy_data
+from capnote.rules import Context, check_payload, graded
 from tests.conftest import NOW, routine
 
 # The clinical (never blocking) finding codes of service/rules/clinical.py and the severity
@@ -292,7 +292,7 @@ def test_what_each_reason_changes_follows_the_schedule(policy: Policy) -> None:
     for code in policy.risk_reasons:
         assert policy.risk_changes(code).startswith(f"{raised} {instead}"), code
     # A severe rise or an IOP at the action level also calls for a next-day check
-    # (Nesher & Kolker, Trans Am Ophthalmol Soc 1990; service.schedule.next_day_reasons).
+    # (Nesher & Kolker, Trans Am Ophthalmol Soc 1990; capnote.schedule.next_day_reasons).
     for code in ("iop-high", "iop-spike", "glaucoma"):
         assert "next-day IOP check" in policy.risk_reasons[code].changes, code
 

@@ -8,9 +8,9 @@ from typing import Any
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from service.assess import Assessor
-from service.fhir.outcome import outcome
-from service.fhir.validate import validate_resource
+from capnote.assess import Assessor
+from capnote.fhir.outcome import outcome
+from capnote.fhir.validate import validate_resource
 from tests.conftest import NOW, routine
 
 JSON = st.recursive(

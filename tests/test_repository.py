@@ -29,8 +29,18 @@ def test_readme_opens_with_the_job_and_the_caution() -> None:
 @pytest.mark.parametrize(
     "command",
     [
-        [sys.executable, "-m", "ruff", "check", "service", "schemas", "tests", "bench"],
-        [sys.executable, "-m", "ruff", "format", "--check", "service", "schemas", "bench"],
+        [sys.executable, "-m", "ruff", "check", "service", "tests", "bench", "examples"],
+        [
+            sys.executable,
+            "-m",
+            "ruff",
+            "format",
+            "--check",
+            "service",
+            "tests",
+            "bench",
+            "examples",
+        ],
         [sys.executable, "-m", "mypy"],
     ],
     ids=["ruff", "ruff-format", "mypy-strict"],

@@ -9,9 +9,9 @@ from typing import Any
 
 import pytest
 
-from service.findings import WITHHELD, Severity
-from service.policy import Policy
-from service.rules import Context, check_payload
+from capnote.findings import WITHHELD, Severity
+from capnote.policy import Policy
+from capnote.rules import Context, check_payload
 from tests.conftest import EXAMPLES, INVALID, NOW, VALID, load, routine
 
 Change = Callable[[dict[str, Any]], object]

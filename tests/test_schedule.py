@@ -9,12 +9,12 @@ from zoneinfo import ZoneInfo
 
 import pytest
 
-from schemas.note import Note
-from service.clinic_calendar import PolicyCalendar
-from service.derive import derive
-from service.policy import Policy
-from service.policy.model import WEEKDAYS
-from service.schedule import FLAG_AFTER_TARGET, FLAG_WHOLE_WINDOW, DueItem, schedule
+from capnote.clinic_calendar import PolicyCalendar
+from capnote.derive import derive
+from capnote.note import Note
+from capnote.policy import Policy
+from capnote.policy.model import WEEKDAYS
+from capnote.schedule import FLAG_AFTER_TARGET, FLAG_WHOLE_WINDOW, DueItem, schedule
 from tests.conftest import routine
 
 LONDON = ZoneInfo("Europe/London")

@@ -7,7 +7,7 @@ from typing import Any
 
 import pytest
 
-from service.policy import Policy
+from capnote.policy import Policy
 from tests.test_schedule import items, note_ending
 
 END = "2026-11-27T10:15:00+00:00"  # Fri 27 Nov 2026, an open day; the date does not matter

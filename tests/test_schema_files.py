@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 from jsonschema import Draft202012Validator
 
-from schemas.export import ANSWERS_SCHEMA, CODE_SYSTEM, NOTE_SCHEMA, generated
+from capnote.schema_files import ANSWERS_SCHEMA, CODE_SYSTEM, NOTE_SCHEMA, generated
 from tests.conftest import INVALID, ROOT, VALID
 from tests.fhir_r4_check import r4_problems
 

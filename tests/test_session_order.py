@@ -10,7 +10,7 @@ from typing import Any
 
 import pytest
 
-from service.notes import SYSTEM, Principal, StoredNote
+from capnote.notes import SYSTEM, Principal, StoredNote
 from tests.conftest import Api, SyncNotes, routine, sync_notes
 
 WHO = Principal("order test", "submitter")

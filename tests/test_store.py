@@ -1,4 +1,4 @@
-"""The store (service.store.base) on real databases: what it writes reads back through the
+"""The store (capnote.store.base) on real databases: what it writes reads back through the
 ORM's table definitions, tokens, the audit trail and the outbox keep their promises on both
 engines, a SQLite writer that meets a held lock waits without stopping the event loop, WAL
 checkpoints run off the request path, and stored rows from the previous layout are
@@ -22,17 +22,17 @@ from fastapi.testclient import TestClient
 from sqlalchemy import text
 from sqlmodel import Session, select
 
-from service.app import create_app
-from service.assess import Assessor
-from service.config import Settings
-from service.fhir.readmodel import ROLE_MAX, parse_id, resource_id
-from service.notes import NoteService, Principal, content_hash, note_key
-from service.policy import load_policy
-from service.store.base import FAILED, PENDING, Store
-from service.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
-from service.store.database import MIGRATIONS, make_engine, migrate, open_store, upgrade
-from service.store.sqlite import SqliteStore
-from service.store.tables import FhirIndex, NoteVersion
+from capnote.app import create_app
+from capnote.assess import Assessor
+from capnote.config import Settings
+from capnote.fhir.readmodel import ROLE_MAX, parse_id, resource_id
+from capnote.notes import NoteService, Principal, content_hash, note_key
+from capnote.policy import load_policy
+from capnote.store.base import FAILED, PENDING, Store
+from capnote.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
+from capnote.store.database import MIGRATIONS, make_engine, migrate, open_store, upgrade
+from capnote.store.sqlite import SqliteStore
+from capnote.store.tables import FhirIndex, NoteVersion
 from tests.conftest import NOW, VALID, on_store, routine, sync_notes
 
 WHO = Principal("store test", "submitter")

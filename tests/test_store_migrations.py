@@ -8,7 +8,7 @@ from alembic.migration import MigrationContext
 from sqlalchemy import inspect, text
 from sqlmodel import SQLModel
 
-from service.store.database import make_engine, upgrade
+from capnote.store.database import make_engine, upgrade
 
 
 def test_upgrade_from_empty_gives_the_models_tables(database_url: str) -> None:

@@ -19,7 +19,7 @@ from typing import Any, get_args
 import httpx
 import pytest
 
-from schemas.note import ComplicationKind, Note
+from capnote.note import ComplicationKind, Note
 from tests.conftest import EXAMPLES, VALID, load
 from tests.web_helpers import (
     ARTIFACTS,

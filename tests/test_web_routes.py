@@ -10,8 +10,8 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
-from service.policy import load_policy
-from service.web import PAGE, STATIC
+from capnote.policy import load_policy
+from capnote.web import PAGE, STATIC
 from tests.conftest import NOW
 from tests.web_helpers import build_app
 

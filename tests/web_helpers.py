@@ -19,9 +19,9 @@ import pytest
 import uvicorn
 from fastapi import FastAPI
 
-from service.api import web
-from service.app import create_app
-from service.config import Settings
+from capnote.api import web
+from capnote.app import create_app
+from capnote.config import Settings
 from tests.conftest import new_token as store_token
 
 CHROMIUM = Path("/usr/bin/chromium")

@@ -30,7 +30,7 @@ from sqlalchemy import create_engine, text
 from tests.pg_cluster import PgCluster
 
 ROOT = Path(__file__).resolve().parents[2]
-CAPNOTE = [sys.executable, "-c", "from service.cli import main; main()"]
+CAPNOTE = [sys.executable, "-c", "from capnote.cli import main; main()"]
 BASE_NOTE = json.loads((ROOT / "examples" / "notes" / "right-routine.json").read_text())
 
 
@@ -71,7 +71,11 @@ class Server:
             cwd=self.workdir,
             stdout=log,
             stderr=subprocess.STDOUT,
-            env={**os.environ, "CAPNOTE_DATABASE_URL": self.url, "PYTHONPATH": str(ROOT)},
+            env={
+                **os.environ,
+                "CAPNOTE_DATABASE_URL": self.url,
+                "PYTHONPATH": str(ROOT / "service"),
+            },
         )
         log.close()
         deadline = time.monotonic() + 60
@@ -254,7 +258,7 @@ def check_store(url: str, figures: Figures) -> None:
     figures.half_written = int(orphans or 0)
     for key, (_count, digest) in stored.items():
         i = int(key.rsplit("-", 1)[1])
-        from schemas.note import Note
+        from capnote.note import Note
 
         stored_json = Note.model_validate_json(note(i)).model_dump_json(exclude_none=True)
         expected = hashlib.sha256(stored_json.encode())

@@ -1,0 +1,1 @@
+"""The demo notes, shipped in the wheel as capnote.demo (see pyproject.toml)."""

@@ -1,0 +1,155 @@
+"""The shapes of the API's JSON answers, as the OpenAPI document publishes them.
+
+The derived values and due items are the domain's own dataclasses (capnote.derive,
+capnote.schedule), written by orjson as they are; these models describe them for the
+OpenAPI document and for schemas/answers.schema.json, and the tests validate real answers
+against that published file. Renaming a field inside the domain therefore changes a
+committed file and fails a test, never the public API silently.
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+from capnote.derive import Derived
+from capnote.note import Note
+from capnote.schedule import DueItem
+
+
+class Answer(BaseModel):
+    """Every answer model: no field beyond those listed."""
+
+    model_config = ConfigDict(extra="forbid")
+
+
+class FindingAnswer(Answer):
+    """One finding: where, what, the rule and the allowed range."""
+
+    severity: Literal["error", "warning", "information"]
+    code: str
+    location: str = Field(description="FHIRPath-style path into the note")
+    message: str
+    rule: str
+    value: Any = Field(default=None, description="the value found, shortened")
+    allowed: str | None = None
+    source: str | None = Field(default=None, description="the literature or practice source")
+
+
+class AssessmentAnswer(Answer):
+    """What capnote says about a note: findings, derived values and due items."""
+
+    accepted: bool = Field(description="false when any finding is an error")
+    findings: list[FindingAnswer]
+    outcome: dict[str, Any] = Field(description="the findings as a FHIR R4 OperationOutcome")
+    derived: Derived | None
+    due: list[DueItem] = Field(description="follow-up items, with windows on clinic days")
+    caution: str
+
+
+class NoteAnswer(AssessmentAnswer):
+    """One stored version of a note (POST /notes, GET /notes/{id}, PUT, void)."""
+
+    id: str = Field(description="capnote's note id (a UUID)")
+    version: int
+    status: Literal["draft", "final", "void"]
+    recorded_at: datetime
+    reason: str | None
+    note: Note
+    resources: list[str] = Field(
+        description="where each Bundle entry is read on the FHIR API, in entry order"
+    )
+    bundle: dict[str, Any] = Field(description="the FHIR R4 transaction Bundle")
+
+
+class CheckAnswer(AssessmentAnswer):
+    """POST /notes/check: everything a submission would produce, stored nowhere."""
+
+    id: str | None = None
+    bundle: dict[str, Any] | None = Field(description="the Bundle, when the note has no errors")
+
+
+class NoteListAnswer(Answer):
+    """GET /notes: the latest version of each matching note, in session order."""
+
+    total: int
+    page: int
+    count: int
+    notes: list[NoteAnswer]
+
+
+class VersionSummary(Answer):
+    """One version in a note's history."""
+
+    version: int
+    status: Literal["draft", "final", "void"]
+    reason: str | None
+    recorded_at: datetime
+    recorded_by: str
+
+
+class VersionsAnswer(Answer):
+    """GET /notes/{id}/versions."""
+
+    id: str
+    versions: list[VersionSummary]
+
+
+class DeliveryState(Answer):
+    """Where one version's Bundle stands on its way to the hospital's FHIR server."""
+
+    version: int
+    state: Literal["pending", "delivering", "delivered", "failed"]
+    attempts: int
+    last_status: int | None
+    receiver_answer: Any = Field(description="the receiver's last answer (JSON when it was)")
+    next_attempt_at: datetime
+    delivered_at: datetime | None
+
+
+class DeliveryAnswer(Answer):
+    """GET /notes/{id}/delivery."""
+
+    id: str
+    forwarding: bool
+    deliveries: list[DeliveryState]
+
+
+class AuditEntryAnswer(Answer):
+    """One entry of the audit trail: identifiers only, no clinical text."""
+
+    at: datetime
+    actor: str
+    role: str
+    action: str
+    note: str | None
+    version: int | None
+    remote: str | None
+    outcome: str
+
+
+class AuditAnswer(Answer):
+    """GET /audit."""
+
+    page: int
+    count: int
+    entries: list[AuditEntryAnswer]
+
+
+class StatusAnswer(Answer):
+    """GET /healthz and /readyz."""
+
+    status: Literal["ok", "ready"]
+
+
+ANSWERS: tuple[type[Answer], ...] = (
+    NoteAnswer,
+    CheckAnswer,
+    NoteListAnswer,
+    VersionsAnswer,
+    DeliveryAnswer,
+    AuditAnswer,
+    StatusAnswer,
+)

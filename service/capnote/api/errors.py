@@ -1,0 +1,162 @@
+"""The one place where every error becomes an HTTP answer with an OperationOutcome."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Mapping
+
+from fastapi import FastAPI, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import Response
+from sqlalchemy.exc import DataError, InterfaceError, OperationalError
+from starlette.exceptions import HTTPException
+from starlette.requests import ClientDisconnect
+from starlette.routing import Match
+
+from capnote.api.media import FHIR_JSON, fhir_response
+from capnote.errors import CapnoteError, PreconditionError, UnavailableError
+from capnote.fhir.outcome import error_outcome, incident_outcome
+from capnote.fhir.outcome import issue as finding_issue
+from capnote.findings import Finding, Severity
+from capnote.rules.contract import json_path
+
+log = logging.getLogger("capnote.api")
+_HTTP_ISSUE = {
+    404: "not-found",
+    405: "not-supported",
+    406: "not-supported",
+    401: "login",
+    403: "forbidden",
+    413: "too-costly",
+    415: "not-supported",
+}
+
+
+def outcome_response(
+    status: int, body: Mapping[str, object], headers: dict[str, str] | None = None
+) -> Response:
+    """An OperationOutcome answer."""
+    return fhir_response(body, status, headers)
+
+
+async def _capnote_error(_request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, CapnoteError)
+    headers: dict[str, str] = {}
+    if isinstance(exc, UnavailableError):
+        headers["Retry-After"] = "5"
+    if exc.http_status == 401:
+        headers["WWW-Authenticate"] = 'Bearer realm="capnote"'
+    if isinstance(exc, PreconditionError):
+        headers["Cache-Control"] = "no-store"
+    return outcome_response(exc.http_status, error_outcome(exc), headers)
+
+
+async def _validation_error(_request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, RequestValidationError)
+    issues = []
+    for e in exc.errors():
+        loc = [p for p in e.get("loc", ()) if p not in ("body", "query", "path", "header")]
+        where = json_path(loc)
+        issues.append(
+            finding_issue(
+                Finding(
+                    severity=Severity.ERROR,
+                    code="request-invalid",
+                    location=where,
+                    message=f"{where or 'request'}: {e.get('msg')}",
+                    rule="the request's parameters",
+                    issue_type="invalid",
+                )
+            )
+        )
+    return outcome_response(422, {"resourceType": "OperationOutcome", "issue": issues})
+
+
+def _allowed_methods(request: Request) -> str:
+    """Every method some route offers at this path (Starlette names only the first route's)."""
+    methods: set[str] = set()
+    for route in request.app.routes:
+        match, _ = route.matches({**request.scope, "method": "GET"})
+        if match != Match.NONE:
+            methods |= set(getattr(route, "methods", None) or ())
+    return ", ".join(sorted(methods))
+
+
+async def _http_error(request: Request, exc: Exception) -> Response:
+    assert isinstance(exc, HTTPException)
+    body = {
+        "resourceType": "OperationOutcome",
+        "issue": [
+            {
+                "severity": "error",
+                "code": _HTTP_ISSUE.get(exc.status_code, "processing"),
+                "diagnostics": str(exc.detail),
+            }
+        ],
+    }
+    headers = dict(exc.headers or {})
+    if exc.status_code == 405:
+        headers["Allow"] = _allowed_methods(request)
+    return outcome_response(exc.status_code, body, headers)
+
+
+async def _unexpected(request: Request, exc: Exception) -> Response:
+    # Starlette re-raises after this answer; capnote.api.guard.Guard stops it there.
+    incident, body = incident_outcome()
+    # Route and exception type only: a payload or its values never reach the log.
+    log.error(
+        "incident %s: %s on %s %s", incident, type(exc).__name__, request.method, request.url.path
+    )
+    return outcome_response(500, body)
+
+
+async def _database_error(request: Request, exc: Exception) -> Response:
+    """A database that is down, restarting or locked: 503 with Retry-After, never 500."""
+    log.warning(
+        "database unavailable (%s) on %s %s", type(exc).__name__, request.method, request.url.path
+    )
+    return await _capnote_error(
+        request,
+        UnavailableError("the database is not reachable right now; retry after a few seconds"),
+    )
+
+
+async def _data_error(request: Request, exc: Exception) -> Response:
+    """A parameter the database cannot hold (a NUL byte, say): the caller's error, 422."""
+    log.info(
+        "refused parameter (%s) on %s %s", type(exc).__name__, request.method, request.url.path
+    )
+    body = {
+        "resourceType": "OperationOutcome",
+        "issue": [
+            {
+                "severity": "error",
+                "code": "invalid",
+                "diagnostics": "a parameter holds characters that cannot be stored or searched",
+            }
+        ],
+    }
+    return outcome_response(422, body)
+
+
+async def _client_gone(request: Request, _exc: Exception) -> Response:
+    """The client closed the connection while its body was still coming: nobody is there
+    to answer, and nothing went wrong here (an integration engine timing out, a load
+    generator stopping). Noted at debug level, not as an incident."""
+    log.debug("client went away during %s %s", request.method, request.url.path)
+    return Response(status_code=400)
+
+
+def install(app: FastAPI) -> None:
+    """Register every handler."""
+    app.add_exception_handler(ClientDisconnect, _client_gone)
+    app.add_exception_handler(DataError, _data_error)
+    app.add_exception_handler(OperationalError, _database_error)
+    app.add_exception_handler(InterfaceError, _database_error)
+    app.add_exception_handler(CapnoteError, _capnote_error)
+    app.add_exception_handler(RequestValidationError, _validation_error)
+    app.add_exception_handler(HTTPException, _http_error)
+    app.add_exception_handler(Exception, _unexpected)
+
+
+__all__ = ["FHIR_JSON", "install", "outcome_response"]

@@ -1,0 +1,38 @@
+"""Media types, JSON bodies in and out."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import orjson
+from fastapi import Request
+from fastapi.responses import Response
+
+from capnote.errors import PayloadError
+from capnote.jsonsafety import check_json
+
+FHIR_JSON = "application/fhir+json"
+JSON = "application/json"
+_ACCEPTED = (JSON, FHIR_JSON)
+
+
+def fhir_response(body: Any, status: int = 200, headers: dict[str, str] | None = None) -> Response:
+    """A FHIR resource answer."""
+    return Response(orjson.dumps(body), status, headers, media_type=f"{FHIR_JSON}; charset=utf-8")
+
+
+def json_response(body: Any, status: int = 200, headers: dict[str, str] | None = None) -> Response:
+    """A plain JSON answer."""
+    return Response(orjson.dumps(body), status, headers, media_type=JSON)
+
+
+async def json_body(request: Request) -> bytes:
+    """The raw body of a JSON request; other media types are refused with 415."""
+    kind = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    if kind not in _ACCEPTED:
+        raise PayloadError(
+            f"the body must be {JSON} or {FHIR_JSON}, not {kind or 'missing'}", 415, "not-supported"
+        )
+    raw = await request.body()
+    check_json(raw)
+    return raw

@@ -1,0 +1,72 @@
+"""The CSV report: a header row and one row per finding, written as results pass."""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+from capnote.batch.checking import RecordResult
+from capnote.batch.output import AtomicFile, RunInfo, rows
+
+COLUMNS = (
+    "file",
+    "line",
+    "kind",
+    "location",
+    "severity",
+    "code",
+    "message",
+    "allowed",
+    "source",
+)
+# OWASP, "CSV Injection": spreadsheet programs run a cell that starts with =, +, -, @, tab or
+# carriage return as a formula; a leading apostrophe makes them show it as text instead.
+# Findings echo what the input held, so every text cell is guarded.
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+
+
+def cell(text: str | None) -> str:
+    """A text cell that a spreadsheet shows as text, never runs as a formula."""
+    if not text:
+        return ""
+    return "'" + text if text.startswith(FORMULA_STARTS) else text
+
+
+class CsvReport:
+    """Rows go straight into the temporary file; commit renames it into place.
+
+    RFC 4180 layout (comma, double quotes, CRLF) in UTF-8. The line is empty for a whole
+    JSON file: a "-" there would be taken for the start of a formula.
+    """
+
+    def __init__(self, target: Path) -> None:
+        self.target = target
+        self._file = AtomicFile(target)
+        self._writer = csv.writer(self._file.text(), lineterminator="\r\n")
+        self._writer.writerow(COLUMNS)
+
+    def add(self, result: RecordResult) -> None:
+        """Write a row per finding of the result."""
+        for row in rows(result):
+            f = row.finding
+            self._writer.writerow(
+                (
+                    cell(row.file),
+                    "" if row.line is None else row.line,
+                    row.kind,
+                    cell(f.location),
+                    f.severity.value,
+                    cell(f.code),
+                    cell(f.message),
+                    cell(f.allowed),
+                    cell(f.source),
+                )
+            )
+
+    def commit(self, run: RunInfo) -> None:
+        """Put the finished file in place (the CSV has no header facts: one table only)."""
+        self._file.commit()
+
+    def discard(self) -> None:
+        """Drop the partial file."""
+        self._file.discard()

@@ -1,0 +1,82 @@
+"""The one Settings class: environment variables with a CAPNOTE_ prefix, or a .env file.
+
+Nothing else in capnote reads the environment; entry points build Settings and pass it on.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+from capnote.fhir.bundle import OutputCheck
+from capnote.policy import Policy, load_policy
+
+if TYPE_CHECKING:
+    from capnote.delivery import Receiver
+
+
+class Settings(BaseSettings):
+    """Deployment settings; clinical thresholds live in the site policy file instead."""
+
+    model_config = SettingsConfigDict(env_prefix="CAPNOTE_", env_file=".env", extra="ignore")
+
+    policy_file: Path | None = None
+    clinic_timezone: str | None = None
+    holiday_country: str | None = None
+    holiday_subdivision: str | None = None
+    database_url: str = "sqlite:///capnote.sqlite3"
+    max_body_bytes: int = 1_048_576
+    cors_origins: list[str] = []
+    # `capnote serve` migrates once before starting workers and turns this off for them.
+    migrate_on_start: bool = True
+    # Forwarding to the hospital's FHIR server (off while forward_url is unset).
+    forward_url: str | None = None
+    forward_token: str | None = None
+    forward_token_url: str | None = None
+    forward_client_id: str | None = None
+    forward_client_secret: str | None = None
+    forward_timeout_s: float = 30.0
+    # Run a delivery loop inside each service process; off when `capnote deliver` runs alone.
+    deliver_in_service: bool = True
+    # How each emitted Bundle is checked before it leaves: "bindings" (required code
+    # bindings; the default) or "r4b" (also the whole Bundle through the R4B models).
+    output_check: OutputCheck = OutputCheck.BINDINGS
+
+    def receiver(self) -> Receiver | None:
+        """The forwarding target, when one is configured."""
+        if not self.forward_url:
+            return None
+        # Imported here: delivery brings httpx and the store, which only forwarding needs.
+        from capnote.delivery import Receiver
+
+        return Receiver(
+            self.forward_url,
+            self.forward_token,
+            self.forward_token_url,
+            self.forward_client_id,
+            self.forward_client_secret,
+            self.forward_timeout_s,
+        )
+
+
+def effective_policy(settings: Settings) -> Policy:
+    """The site policy with the settings' calendar overrides laid on top."""
+    policy = load_policy(settings.policy_file)
+    overrides: dict[str, str | None] = {
+        key: value
+        for key, value in (
+            ("timezone", settings.clinic_timezone),
+            ("holiday_country", settings.holiday_country),
+            ("holiday_subdivision", settings.holiday_subdivision),
+        )
+        if value is not None
+    }
+    if not overrides:
+        return policy
+    if settings.holiday_country is not None and settings.holiday_subdivision is None:
+        # A subdivision belongs to its country: another country starts without one.
+        overrides["holiday_subdivision"] = None
+    calendar = policy.calendar.model_copy(update=overrides)
+    return policy.model_copy(update={"calendar": calendar})

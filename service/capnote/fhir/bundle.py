@@ -1,0 +1,158 @@
+"""One note's FHIR R4 transaction Bundle: safe to send twice.
+
+Every fullUrl is a urn:uuid derived from the note identifier and the resource's role, and
+every entry's request carries ifNoneExist on its identifier, so a receiver that honours
+conditional create makes nothing new when the same note arrives again.
+"""
+
+from __future__ import annotations
+
+from enum import StrEnum
+from typing import Any
+
+from capnote.derive import Derived
+from capnote.errors import EmissionError
+from capnote.fhir.bindings import status_problem
+from capnote.fhir.codes import RESOURCE_KEY
+from capnote.fhir.common import Emitted, Entry, Version, VersionContext, key_query
+from capnote.fhir.observations import observations
+from capnote.fhir.procedure import procedure
+from capnote.fhir.requests import (
+    administrations,
+    medication_request,
+    pressure_treatment,
+    service_request,
+)
+from capnote.note import Note
+from capnote.schedule import DueItem
+
+
+def entries(
+    note: Note,
+    derived: Derived,
+    due: list[DueItem],
+    version: Version | None = None,
+    ctx: VersionContext | None = None,
+) -> list[Entry]:
+    """Every resource for the note version, the Procedure first."""
+    ctx = ctx or VersionContext(note, version)
+    proc = procedure(ctx, derived, due)
+    made = observations(ctx, proc, derived)
+    out = [proc, *made]
+    out += [service_request(ctx, proc, item) for item in due]
+    for i, drop in enumerate(note.plan.prophylaxis):
+        out += administrations(ctx, proc, drop, i)
+    readings = {e.role: e for e in made if e.role.startswith("iop-after-")}
+    for i, given in enumerate(note.result.pressure_treatment):
+        reason = derived.pathway.treated_reading[i]
+        entry = readings.get(f"iop-after-{reason}") if reason is not None else None
+        out.append(pressure_treatment(ctx, proc, given, i, entry))
+    out += [medication_request(ctx, proc, drop, i) for i, drop in enumerate(note.plan.take_home)]
+    return out
+
+
+def _request(entry: Entry, version: int) -> dict[str, str]:
+    """Version 1 creates if absent; later versions update what the receiver holds, found by
+    the same identifier search (conditional update), so every resend stays harmless."""
+    kind = entry.resource["resourceType"]
+    if version == 1:
+        return {"method": "POST", "url": kind, "ifNoneExist": entry.if_none_exist}
+    return {"method": "PUT", "url": f"{kind}?{entry.if_none_exist}"}
+
+
+# What a resource that an amendment no longer has becomes at the receiver.
+_WITHDRAWN = {
+    "ServiceRequest": "revoked",
+    "MedicationRequest": "cancelled",
+    "Observation": "entered-in-error",
+    "MedicationAdministration": "entered-in-error",
+    "Procedure": "entered-in-error",
+}
+
+
+def withdrawn(previous: Emitted, kept: set[str]) -> list[Entry]:
+    """The previous version's resources this version dropped, each with a status that says
+    so: an amendment that removes a next-day check must not leave it active elsewhere."""
+    out = []
+    for entry, role in zip(previous.bundle.get("entry", []), previous.roles, strict=True):
+        key = entry["fullUrl"].removeprefix("urn:uuid:")
+        if key in kept:
+            continue
+        resource = dict(entry["resource"])
+        resource["status"] = _WITHDRAWN[resource["resourceType"]]
+        out.append(Entry(key, resource, key_query(key), role))
+    return out
+
+
+class OutputCheck(StrEnum):
+    """How each emitted Bundle is checked before it leaves (setting CAPNOTE_OUTPUT_CHECK)."""
+
+    # The required code bindings that follow the note's state: each resource's status
+    # (fhir.resources does not enforce bindings); the builders' structure and literal codes
+    # are proven in tests against R4B and google-fhir-r4 over generated notes.
+    BINDINGS = "bindings"
+    # Also the whole Bundle through the fhir.resources R4B models, on every request: about
+    # four times the cost of emitting it (bench/run.py measures both).
+    R4B = "r4b"
+
+
+def check_output(result: dict[str, Any], items: list[Entry], level: OutputCheck) -> None:
+    """Raise EmissionError when the Bundle about to leave breaks a rule (a bug, never input)."""
+    # Of the codes under required bindings, only each resource's status follows the note's
+    # state (draft, signed, amended, voided, withdrawn); every other one (the Bundle's type,
+    # request methods, intents, narrative status, units of time) is a literal of the
+    # builders, checked against the core package's value sets by the tests.
+    problems = [
+        f"{loc} = {value!r} (ValueSet {vs})"
+        for e in items
+        if (found := status_problem(e.resource)) is not None
+        for loc, value, vs in [found]
+    ]
+    if level is OutputCheck.R4B and not problems:
+        # Imported on first use: the R4B models take a tenth of a second to load, and only
+        # this setting needs them here.
+        from capnote.fhir.validate import validate_resource
+
+        problems = [f"{f.location}: {f.message}" for f in validate_resource(result) if f.blocking]
+    if problems:
+        raise EmissionError("emitted FHIR breaks a rule: " + ", ".join(problems))
+
+
+def emit(
+    note: Note,
+    derived: Derived,
+    due: list[DueItem],
+    version: Version | None = None,
+    check: OutputCheck = OutputCheck.BINDINGS,
+) -> Emitted:
+    """The transaction Bundle and its entries' roles; raises EmissionError rather than emit
+    a bad code."""
+    # No id or meta here: a receiver assigns its own, and a conditional update must not
+    # carry an id that may differ from the matched resource's. The read API adds both.
+    version = version or Version()
+    ctx = VersionContext(note, version)
+    items = entries(note, derived, due, version, ctx)
+    if version.previous is not None:
+        items += withdrawn(version.previous, {e.key for e in items})
+    result: dict[str, Any] = {
+        "resourceType": "Bundle",
+        "identifier": {"system": RESOURCE_KEY, "value": ctx.keys.key("bundle")},
+        "type": "transaction",
+        "entry": [
+            {
+                "fullUrl": e.full_url,
+                "resource": e.resource,
+                "request": _request(e, version.number),
+            }
+            for e in items
+        ],
+    }
+    check_output(result, items, check)
+    return Emitted(result, tuple(e.role for e in items))
+
+
+def bundle(
+    note: Note, derived: Derived, due: list[DueItem], version: Version | None = None
+) -> dict[str, Any]:
+    """The transaction Bundle alone (see emit)."""
+    return emit(note, derived, due, version).bundle

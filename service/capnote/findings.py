@@ -1,0 +1,111 @@
+"""Findings: what a check says about one place in a payload.
+
+A finding is plain data so that rules stay free of HTTP and FHIR; capnote.fhir.outcome turns a
+list of findings into an OperationOutcome, the command line prints them.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass
+from enum import StrEnum
+
+from capnote.errors import InputError
+
+
+class Severity(StrEnum):
+    """How much a finding matters; only errors block saving."""
+
+    ERROR = "error"
+    WARNING = "warning"
+    INFORMATION = "information"
+
+
+# FHIR issue-type codes (http://hl7.org/fhir/issue-type) that findings use.
+IssueType = str
+
+# Places whose values identify a person: a finding there says where, never what.
+_IDENTIFYING_PREFIXES = ("patient", "patient_details", "encounter")
+WITHHELD = "(withheld: identifying data)"
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class Finding:
+    """One problem or remark at one location.
+
+    location is a path into the payload in FHIRPath form (``laser.series[0].energy_mj``);
+    value is what was seen there, already made safe to show; allowed says the accepted range
+    or set; source names where a clinical threshold comes from.
+    """
+
+    severity: Severity
+    code: str
+    location: str
+    message: str
+    rule: str
+    value: str | None = None
+    allowed: str | None = None
+    source: str | None = None
+    issue_type: IssueType = "business-rule"
+
+    @property
+    def blocking(self) -> bool:
+        """True when the finding stops a note from being saved."""
+        return self.severity is Severity.ERROR
+
+
+def show_value(location: str, value: object) -> str | None:
+    """Render a seen value for a message, withholding identifying fields."""
+    if value is None:
+        return None
+    if location.split(".", 1)[0].split("[", 1)[0] in _IDENTIFYING_PREFIXES:
+        return WITHHELD
+    if isinstance(value, dict | list):
+        # An object or list may hold anything, identifiers included: say what it is, not what
+        # is in it.
+        return "(a JSON object)" if isinstance(value, dict) else "(a JSON list)"
+    if isinstance(value, float):
+        text = f"{value:g}"
+    else:
+        text = value if isinstance(value, str) else repr(value)
+    # Long inputs are cut so a hostile payload cannot flood a report or a log line.
+    return text if len(text) <= 80 else text[:77] + "..."
+
+
+def has_errors(findings: Iterable[Finding]) -> bool:
+    """True when any finding blocks saving."""
+    return any(f.blocking for f in findings)
+
+
+_ORDER = {Severity.ERROR: 0, Severity.WARNING: 1, Severity.INFORMATION: 2}
+
+
+def ordered(findings: Iterable[Finding]) -> list[Finding]:
+    """Errors first, then warnings, then information; stable within each."""
+    return sorted(findings, key=lambda f: _ORDER[f.severity])
+
+
+def refusal(
+    code: str,
+    location: str,
+    message: str,
+    rule: str,
+    *,
+    value: str | None = None,
+    allowed: str | None = None,
+    issue_type: IssueType = "invalid",
+) -> InputError:
+    """A request refused for one reason: an InputError with the one error finding that
+    names the field, the value, the rule and the allowed range (answered as 422 with an
+    OperationOutcome). The one way to build such a refusal."""
+    finding = Finding(
+        severity=Severity.ERROR,
+        code=code,
+        location=location,
+        message=message,
+        rule=rule,
+        value=value,
+        allowed=allowed,
+        issue_type=issue_type,
+    )
+    return InputError(message, [finding])

@@ -1,0 +1,484 @@
+"""The note lifecycle: submit, resend, amend, void, read. Routes and commands call this.
+
+Idempotency and uniqueness rest on the database: the note key is derived from the sender's
+note identifier, and (note key, version) is unique, so two processes racing to store the same
+note make one row and the loser reads the winner's.
+
+The methods are coroutines because the store's calls are (capnote.store.base); the
+clinical work between them (checks, derived values, schedule, Bundle) is plain computation
+and runs where it is called.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+import orjson
+
+from capnote.assess import Assessment, Assessor
+from capnote.derive import PriorSession, recounted, total_energy_mj
+from capnote.errors import ConflictError, InputError, NotFoundError, PreconditionError
+from capnote.fhir.common import Emitted, Version, stable_uuid
+from capnote.fhir.readmodel import read_references, searchables
+from capnote.findings import Finding, has_errors
+from capnote.note import Note
+from capnote.note_input import json_object, known_key, problem, reason_text
+from capnote.rules import Context, check_payload, lifecycle
+from capnote.rules.lifecycle import Latest
+from capnote.store.base import (
+    AuditRow,
+    DuplicateVersionError,
+    IndexRow,
+    NewVersion,
+    Store,
+    VersionRow,
+)
+from capnote.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
+from capnote.views import assessment_view
+
+Clock = Callable[[], datetime]
+
+# How often a submission reads the eye's sessions again after a concurrent write moved them.
+_ATTEMPTS = 3
+
+
+@dataclass(frozen=True, slots=True)
+class Principal:
+    """Who is asking: a token's label and role, and where from."""
+
+    label: str
+    role: str
+    remote: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Change:
+    """A new version to store: the checked note, what it is emitted as, and why. key is the
+    note's (note_key), which every caller has already."""
+
+    key: str
+    note: Note
+    note_json: str
+    findings: list[Finding]
+    prior: Sequence[PriorSession]
+    emitted: Version
+    status: str
+    reason: str | None
+    action: str  # for the audit trail: create, amend or void
+
+
+@dataclass(frozen=True, slots=True)
+class StoredNote:
+    """One stored note version as the API shows it.
+
+    The note and the Bundle are kept as the JSON text they are stored as, so an answer
+    embeds them without parsing and serialising them again.
+    """
+
+    key: str
+    version: int
+    status: str
+    recorded_at: datetime
+    recorded_by: str
+    reason: str | None
+    note_json: str
+    result: dict[str, Any]
+    bundle_json: bytes
+    # Where each Bundle entry is read on the FHIR API ("Observation/<id>"), in entry order.
+    resources: tuple[str, ...]
+
+    def json(self) -> bytes:
+        """The JSON body for this version."""
+        return orjson.dumps(
+            {
+                "id": self.key,
+                "version": self.version,
+                "status": self.status,
+                "recorded_at": self.recorded_at.isoformat(),
+                "reason": self.reason,
+                "note": orjson.Fragment(self.note_json),
+                **self.result,
+                "resources": self.resources,
+                "bundle": orjson.Fragment(self.bundle_json),
+            }
+        )
+
+    def view(self) -> dict[str, Any]:
+        """The same body as data."""
+        data: dict[str, Any] = orjson.loads(self.json())
+        return data
+
+
+SYSTEM = Principal("capnote (system)", "system")
+"""Who records the versions capnote writes itself (totals counted again)."""
+
+
+def _session(change: Change) -> PriorSession:
+    """The change's session as the eye's totals count it."""
+    return PriorSession(change.note.started_at, total_energy_mj(change.note.laser), change.key)
+
+
+def note_key(note: Note) -> str:
+    """capnote's id for a note: stable for the sender's identifier, free of patient data."""
+    return stable_uuid(note, "procedure")
+
+
+def content_hash(note_json: str) -> str:
+    """A digest of a note's stored JSON (absent and null fields alike), to tell a resend from
+    a change."""
+    return hashlib.sha256(note_json.encode()).hexdigest()
+
+
+def _stored(row: VersionRow) -> StoredNote:
+    return StoredNote(
+        key=row.note_key,
+        version=row.version,
+        status=row.status,
+        recorded_at=row.recorded_at,
+        recorded_by=row.recorded_by,
+        reason=row.reason,
+        note_json=row.note_json,
+        result=orjson.loads(row.result_json),
+        bundle_json=unpack_bundle(row.bundle),
+        resources=read_references(row.note_key, unpack_roles(row.roles)),
+    )
+
+
+def emitted_before(row: VersionRow) -> Emitted:
+    """What a stored version emitted: its Bundle and the roles of its entries."""
+    roles = tuple(role for _kind, role in unpack_roles(row.roles))
+    return Emitted(orjson.loads(unpack_bundle(row.bundle)), roles)
+
+
+class NoteService:
+    """The note lifecycle over one store."""
+
+    def __init__(
+        self,
+        store: Store,
+        assessor: Assessor,
+        clock: Clock,
+        *,
+        forward: bool = False,
+    ) -> None:
+        self.store = store
+        self.assessor = assessor
+        self.clock = clock
+        # With forwarding on, every stored version gets an outbox entry in its own transaction.
+        self.forward = forward
+
+    # -- checking --------------------------------------------------------------------------
+
+    def _checked(self, payload: bytes) -> tuple[Note, list[Finding]]:
+        note, findings = check_payload(payload, Context(self.assessor.policy, self.clock()))
+        if note is None or has_errors(findings):
+            raise InputError("the note has errors", findings)
+        return note, findings
+
+    async def _others(self, note: Note, key: str) -> list[PriorSession]:
+        """The eye's other sessions, earlier and later (cumulative() counts the earlier)."""
+        return await self.store.eye_sessions(
+            key, (note.patient.system, note.patient.value), note.eye
+        )
+
+    async def check(self, payload: bytes) -> dict[str, Any]:
+        """Everything a submission would produce, stored nowhere."""
+        note, findings = check_payload(payload, Context(self.assessor.policy, self.clock()))
+        if note is None or has_errors(findings):
+            return {**assessment_view(Assessment(note, findings)), "bundle": None}
+        key = note_key(note)
+        result = self.assessor.complete(note, findings, await self._others(note, key))
+        return {"id": key, **assessment_view(result), "bundle": result.bundle}
+
+    # -- writing ---------------------------------------------------------------------------
+
+    def prepare(self, change: Change, who: Principal) -> tuple[NewVersion, StoredNote]:
+        """Everything a version stores (derived values, schedule, Bundle, search rows, audit
+        entry) and the answer that goes with it; nothing is written yet."""
+        key, note, note_json = change.key, change.note, change.note_json
+        now = self.clock()
+        result = self.assessor.complete(note, change.findings, change.prior, change.emitted)
+        if result.bundle is None or result.derived is None:  # complete() always sets both
+            raise RuntimeError("assessment of a checked note came back incomplete")
+        view = assessment_view(result)
+        bundle_json = orjson.dumps(result.bundle)
+        kinds = [e["resource"]["resourceType"] for e in result.bundle["entry"]]
+        row = VersionRow(
+            note_key=key,
+            version=change.emitted.number,
+            sender_system=note.note_id.system,
+            sender_value=note.note_id.value,
+            patient_system=note.patient.system,
+            patient_value=note.patient.value,
+            eye=note.eye,
+            started_at=note.started_at,
+            status=change.status,
+            total_energy_mj=result.derived.total_energy_mj,
+            content_hash=content_hash(note_json),
+            note_json=note_json,
+            result_json=orjson.dumps(view).decode(),
+            bundle=pack_bundle(bundle_json),
+            roles=pack_roles(kinds, result.roles),
+            reason=change.reason,
+            recorded_at=now,
+            recorded_by=who.label,
+        )
+        index = tuple(
+            IndexRow(s.role, s.resource_type, s.status, s.date)
+            for s in searchables(result.bundle, result.roles)
+        )
+        audit = AuditRow(now, who.label, who.role, change.action, who.remote)
+        stored = StoredNote(
+            key=key,
+            version=row.version,
+            status=change.status,
+            recorded_at=now,
+            recorded_by=who.label,
+            reason=change.reason,
+            note_json=note_json,
+            result=view,
+            bundle_json=bundle_json,
+            resources=read_references(key, tuple(zip(kinds, result.roles, strict=True))),
+        )
+        return NewVersion(row, index, audit), stored
+
+    async def _write(
+        self,
+        change: Change,
+        who: Principal,
+        before: Sequence[PriorSession],
+        after: Sequence[PriorSession],
+    ) -> StoredNote:
+        """Store one change and, in the same transaction, a corrected version of every later
+        session of the eye whose session number or cumulative energy it moves (before and
+        after: the eye's sessions without and with the change)."""
+        new, stored = self.prepare(change, who)
+        corrections = [
+            await self._recount(other, after, change)
+            for other in recounted(before, after)
+            if other != change.key
+        ]
+        await self.store.write_many(
+            [new, *(c for c in corrections if c is not None)], forward=self.forward
+        )
+        return stored
+
+    async def _recount(
+        self, key: str, sessions: Sequence[PriorSession], cause: Change
+    ) -> NewVersion | None:
+        """A new version of a later session with its totals counted again: the same note, a
+        system reason, and a Bundle that amends what the hospital record holds."""
+        latest = await self.store.latest(key)
+        if latest is None or latest.status == "void":
+            return None
+        note = Note.model_validate_json(latest.note_json)
+        # The stored note passed its checks when stored; checking it again today keeps its
+        # findings as the current policy sees them, like any other new version.
+        _note, findings = check_payload(
+            latest.note_json, Context(self.assessor.policy, self.clock())
+        )
+        what = {"create": "recorded", "amend": "amended", "void": "voided"}[cause.action]
+        change = Change(
+            key,
+            note,
+            latest.note_json,
+            findings,
+            [s for s in sessions if s.key != key],
+            Version(
+                latest.version + 1,
+                amends_final=latest.status == "final",
+                previous=emitted_before(latest),
+            ),
+            latest.status,
+            f"session number and cumulative energy counted again: an earlier session of this "
+            f"eye (note {cause.key}) was {what}",
+            "recount",
+        )
+        new, _stored_note = self.prepare(change, SYSTEM)
+        return new
+
+    async def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredNote]:
+        """Store a new note; (False, stored) when the same note was already there."""
+        note, findings = self._checked(payload)
+        note_json = note.model_dump_json(exclude_none=True)
+        key, digest = note_key(note), content_hash(note_json)
+        patient = (note.patient.system, note.patient.value)
+        for _attempt in range(_ATTEMPTS):
+            # One call for both reads: on PostgreSQL that is one trip to the server.
+            digests, others = await self.store.before_write(key, patient, note.eye)
+            if digests:
+                return False, await self._resent(key, digest, digests)
+            change = Change(
+                key, note, note_json, findings, others, Version(1), note.status, None, "create"
+            )
+            try:
+                return True, await self._write(change, who, others, [*others, _session(change)])
+            except DuplicateVersionError:
+                # Another request stored this note, or corrected one of its later sessions,
+                # between our read and our write: read again.
+                continue
+        raise PreconditionError("the eye's record changed meanwhile; send the note again")
+
+    async def _resent(self, key: str, digest: str, digests: list[str]) -> StoredNote:
+        """For a resend: the record as it stands now when any stored version has this content;
+        a conflict when the note is stored with other content."""
+        if digest in digests:
+            latest = await self.store.latest(key)
+            if latest is not None:  # rows are never deleted: it is there
+                return _stored(latest)
+        raise ConflictError(
+            f"a note with this identifier is already stored with different content; "
+            f"amend it with PUT /notes/{key}"
+        )
+
+    async def amend(
+        self, key: str, body: bytes, who: Principal, if_match: int | None
+    ) -> StoredNote:
+        """Store a new version of a note; a signed note needs a reason and stays signed."""
+        key = known_key(key)
+        wrapper = json_object(body, allowed={"note", "reason"})
+        note_part, reason = wrapper.get("note"), reason_text(wrapper.get("reason"), required=False)
+        if not isinstance(note_part, dict):
+            raise problem(
+                "missing-field",
+                "note",
+                "the amended note is missing",
+                'PUT /notes/{id} takes {"reason": ..., "note": {...}}',
+            )
+        note, findings = self._checked(orjson.dumps(note_part))
+        if note_key(note) != key:
+            raise problem(
+                "identifier-mismatch",
+                "note.note_id",
+                "the note's identifier belongs to another note",
+                "an amendment keeps the note identifier",
+            )
+        note_json = note.model_dump_json(exclude_none=True)
+        latest = await self._latest(key)
+        old = Note.model_validate_json(latest.note_json)
+        facts = Latest(latest.version, latest.status, latest.content_hash, old)
+        if lifecycle.amendment(facts, note, content_hash(note_json), reason, if_match) != "store":
+            return _stored(latest)  # a retry of an amendment that already landed
+        emitted = Version(
+            latest.version + 1,
+            amends_final=latest.status == "final",
+            previous=emitted_before(latest),
+        )
+        others = await self._others(note, key)
+        change = Change(
+            key, note, note_json, findings, others, emitted, note.status, reason, "amend"
+        )
+        was = PriorSession(old.started_at, latest.total_energy_mj or 0.0, key)
+        try:
+            return await self._write(change, who, [*others, was], [*others, _session(change)])
+        except DuplicateVersionError as exc:
+            raise PreconditionError("the note changed meanwhile; read it and retry") from exc
+
+    async def void(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
+        """Mark a note entered-in-error: a new version whose resources say so."""
+        key = known_key(key)
+        reason = reason_text(json_object(body, allowed={"reason"}).get("reason"), required=True)
+        latest = await self._latest(key)
+        note = Note.model_validate_json(latest.note_json)
+        facts = Latest(latest.version, latest.status, latest.content_hash, note)
+        if lifecycle.voiding(facts, if_match) != "store":
+            return _stored(latest)  # voided already (a retry, or someone else did)
+        emitted = Version(latest.version + 1, voided=True, amends_final=latest.status == "final")
+        others = await self._others(note, key)
+        change = Change(key, note, latest.note_json, [], others, emitted, "void", reason, "void")
+        was = PriorSession(note.started_at, latest.total_energy_mj or 0.0, key)
+        try:
+            return await self._write(change, who, [*others, was], others)
+        except DuplicateVersionError as exc:
+            raise PreconditionError("the note changed meanwhile; read it and retry") from exc
+
+    async def _latest(self, key: str) -> VersionRow:
+        latest = await self.store.latest(key)
+        if latest is None:
+            raise NotFoundError("no note with this id")
+        return latest
+
+    # -- reading ---------------------------------------------------------------------------
+
+    async def get(self, key: str, version: int | None = None) -> StoredNote:
+        """The latest version, or the one asked for."""
+        key = known_key(key)
+        row = (
+            await self.store.latest(key)
+            if version is None
+            else await self.store.version(key, version)
+        )
+        if row is None:
+            raise NotFoundError("no such note or version")
+        return _stored(row)
+
+    async def versions(self, key: str) -> list[dict[str, Any]]:
+        """Every version's summary, oldest first."""
+        key = known_key(key)
+        rows = await self.store.versions(key)
+        if not rows:
+            raise NotFoundError("no note with this id")
+        return [
+            {
+                "version": r.version,
+                "status": r.status,
+                "reason": r.reason,
+                "recorded_at": r.recorded_at.isoformat(),
+                "recorded_by": r.recorded_by,
+            }
+            for r in rows
+        ]
+
+    async def search(
+        self,
+        patient: tuple[str, str],
+        eye: str | None,
+        start: datetime | None,
+        end: datetime | None,
+        offset: int,
+        limit: int,
+    ) -> tuple[int, Sequence[StoredNote]]:
+        """The latest version of each matching note, in session order."""
+        total, rows = await self.store.latest_per_note(patient, eye, start, end, offset, limit)
+        return total, [_stored(r) for r in rows]
+
+    async def delivery(self, key: str) -> dict[str, Any]:
+        """Where each version's Bundle stands on its way to the hospital's FHIR server."""
+        key = known_key(key)
+        entries = await self.store.outbox_of_note(key)
+        if not entries and not await self.store.note_exists(key):
+            raise NotFoundError("no note with this id")
+        return {
+            "id": key,
+            "forwarding": self.forward,
+            "deliveries": [
+                {
+                    "version": e.version,
+                    "state": e.state,
+                    "attempts": e.attempts,
+                    "last_status": e.last_status,
+                    "receiver_answer": receiver_answer(e.last_error),
+                    "next_attempt_at": e.next_attempt_at.isoformat(),
+                    "delivered_at": e.delivered_at.isoformat() if e.delivered_at else None,
+                }
+                for e in entries
+            ],
+        }
+
+    async def ready(self) -> None:
+        """UnavailableError when the store does not answer."""
+        await self.store.ping()
+
+
+def receiver_answer(entry_error: str | None) -> object:
+    """The receiver's stored answer, as JSON when it was JSON."""
+    if not entry_error:
+        return None
+    try:
+        return orjson.loads(entry_error)
+    except orjson.JSONDecodeError:
+        return entry_error

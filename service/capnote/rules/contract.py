@@ -1,0 +1,139 @@
+"""Parse a payload into the note contract; every parse error becomes a finding."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+from pydantic import ValidationError
+from pydantic_core import ErrorDetails
+
+from capnote.findings import Finding, Severity, show_value
+from capnote.note import Note
+
+RULE = "the note contract (schemas/note.schema.json)"
+
+
+def json_path(loc: Sequence[int | str]) -> str:
+    """A pydantic error location as a FHIRPath-style path: ``laser.series[0].energy_mj``."""
+    path = ""
+    for part in loc:
+        if isinstance(part, int):
+            path += f"[{part}]"
+        else:
+            path += f".{part}" if path else part
+    return path
+
+
+# pydantic error type -> (finding code, FHIR issue type, what the rule is)
+_KINDS: dict[str, tuple[str, str, str]] = {
+    "missing": ("missing-field", "required", "the field is required"),
+    "extra_forbidden": (
+        "unknown-field",
+        "structure",
+        "only fields of the note contract are allowed",
+    ),
+    "json_invalid": ("json-invalid", "structure", "the payload must be well-formed JSON"),
+    "json_type": ("json-invalid", "structure", "the payload must be JSON"),
+    "model_type": ("wrong-type", "structure", "this part must be a JSON object"),
+    "model_attributes_type": ("wrong-type", "structure", "this part must be a JSON object"),
+    "literal_error": (
+        "code-not-allowed",
+        "code-invalid",
+        "the value must be one of the allowed codes",
+    ),
+    "date_parsing": ("date-invalid", "value", "a date that exists, as YYYY-MM-DD"),
+    "date_from_datetime_parsing": ("date-invalid", "value", "a date that exists, as YYYY-MM-DD"),
+    "date_type": ("date-invalid", "value", "a date that exists, as YYYY-MM-DD"),
+    "datetime_parsing": ("datetime-invalid", "value", "a date-time that exists, ISO 8601"),
+    "datetime_from_date_parsing": (
+        "datetime-invalid",
+        "value",
+        "a date-time that exists, ISO 8601",
+    ),
+    "datetime_type": ("datetime-invalid", "value", "a date-time that exists, ISO 8601"),
+    "timezone_aware": ("datetime-no-offset", "value", "a date-time with a UTC offset"),
+    "finite_number": ("number-not-finite", "value", "numbers must be finite"),
+}
+_TYPE_RULES = {
+    "float_type": "a number",
+    "float_parsing": "a number",
+    "int_type": "a whole number",
+    "int_parsing": "a whole number",
+    "int_from_float": "a whole number",
+    "bool_type": "true or false",
+    "bool_parsing": "true or false",
+    "string_type": "text",
+    "list_type": "a list",
+}
+_ALLOWED = {
+    "missing": None,
+    "date_parsing": "YYYY-MM-DD",
+    "date_from_datetime_parsing": "YYYY-MM-DD",
+    "datetime_parsing": "YYYY-MM-DDThh:mm:ss+hh:mm",
+    "timezone_aware": "YYYY-MM-DDThh:mm:ss+hh:mm",
+}
+
+
+def _allowed(error: ErrorDetails) -> str | None:
+    ctx: dict[str, Any] = dict(error.get("ctx") or {})
+    kind = error["type"]
+    if kind == "literal_error":
+        return str(ctx.get("expected", "")).replace("'", "")
+    if "min_length" in ctx or "max_length" in ctx:
+        low, high = ctx.get("min_length"), ctx.get("max_length")
+        return f"length {low if low is not None else 0} to {high if high is not None else 'any'}"
+    bounds = [
+        f"{op} {ctx[key]}"
+        for key, op in (("ge", ">="), ("gt", ">"), ("le", "<="), ("lt", "<"))
+        if key in ctx
+    ]
+    if bounds:
+        return " and ".join(bounds)
+    if "pattern" in ctx:
+        return "printable text (identifiers and URIs without spaces)"
+    return _ALLOWED.get(kind)
+
+
+def finding_from_error(error: ErrorDetails) -> Finding:
+    """One pydantic error as a finding; the message never repeats identifying values."""
+    kind = error["type"]
+    location = json_path(error["loc"])
+    if kind in _KINDS:
+        code, issue_type, rule = _KINDS[kind]
+    elif kind in _TYPE_RULES:
+        code, issue_type, rule = "wrong-type", "value", f"the value must be {_TYPE_RULES[kind]}"
+    elif kind in ("too_short", "too_long", "string_too_short", "string_too_long"):
+        code, issue_type, rule = "wrong-length", "value", "the length must be within the contract"
+    elif kind == "string_pattern_mismatch":
+        code, issue_type, rule = (
+            "wrong-format",
+            "value",
+            "no control characters; identifiers and URIs have no spaces",
+        )
+    else:
+        code, issue_type, rule = "invalid-value", "invalid", error["msg"]
+    where = location or "the payload"
+    value = (
+        None
+        if kind in ("missing", "json_invalid", "extra_forbidden")
+        else show_value(location, error.get("input"))
+    )
+    return Finding(
+        severity=Severity.ERROR,
+        code=code,
+        location=location,
+        message=f"{where}: {error['msg']}",
+        rule=f"{rule} ({RULE})",
+        value=value,
+        allowed=_allowed(error),
+        issue_type=issue_type,
+    )
+
+
+def parse_note(payload: bytes | str) -> tuple[Note | None, list[Finding]]:
+    """The note, or None with a finding for every contract error."""
+    try:
+        return Note.model_validate_json(payload), []
+    except ValidationError as exc:
+        return None, [finding_from_error(e) for e in exc.errors(include_url=False)]

@@ -1,0 +1,72 @@
+"""Opening a store, and migrating its schema: SQLite by default, PostgreSQL in production.
+
+The SQLAlchemy engine here serves Alembic's migrations only; everything the service reads
+and writes goes through the Store (capnote.store.base)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from alembic import command
+from alembic.config import Config
+from sqlalchemy import Engine, create_engine, event, text
+from sqlalchemy.engine import make_url
+
+from capnote.store.base import Store
+from capnote.store.postgres import PostgresStore
+from capnote.store.sqlite import SqliteStore
+
+MIGRATIONS = Path(__file__).parent / "migrations"
+# How long SQLite waits for another writer before giving up (ms): writers queue, clients
+# never see "database is locked" under a clinic's load.
+SQLITE_BUSY_MS = 15000
+
+
+def make_engine(url: str) -> Engine:
+    """An engine for the URL, for migrations (and tests that look at the tables)."""
+    parsed = make_url(url)
+    if parsed.get_backend_name() == "sqlite":
+        engine = create_engine(
+            url, connect_args={"check_same_thread": False, "timeout": SQLITE_BUSY_MS / 1000}
+        )
+        event.listen(engine, "connect", _sqlite_pragmas)
+        return engine
+    return create_engine(url, pool_pre_ping=True, pool_size=5, max_overflow=10)
+
+
+def open_store(url: str) -> Store:
+    """The store for the URL (capnote.store.base)."""
+    if make_url(url).get_backend_name() == "sqlite":
+        return SqliteStore(url)
+    return PostgresStore(url)
+
+
+def migrate(url: str) -> None:
+    """Bring the database at url to the newest schema, then let its engine go."""
+    engine = make_engine(url)
+    try:
+        upgrade(engine)
+    finally:
+        engine.dispose()
+
+
+def _sqlite_pragmas(dbapi_connection: Any, _record: Any) -> None:
+    cursor = dbapi_connection.cursor()
+    cursor.execute("PRAGMA journal_mode=WAL")
+    cursor.execute(f"PRAGMA busy_timeout={SQLITE_BUSY_MS}")
+    cursor.execute("PRAGMA foreign_keys=ON")
+    cursor.execute("PRAGMA synchronous=NORMAL")
+    cursor.close()
+
+
+def upgrade(engine: Engine) -> None:
+    """Bring the schema to the newest migration (safe to run on every start)."""
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS))
+    with engine.begin() as connection:
+        if connection.dialect.name == "postgresql":
+            # Several containers may start at once: one migrates, the others wait for it.
+            connection.execute(text("select pg_advisory_xact_lock(5150011)"))
+        config.attributes["connection"] = connection
+        command.upgrade(config, "head")

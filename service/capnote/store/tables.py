@@ -1,0 +1,133 @@
+"""The stored tables. Rows are only ever added: a new note version is a new row, a voided
+note is a new version with status "void", a revoked token keeps its row.
+
+Each note version keeps its Bundle once, compressed (capnote.store.codec); the FHIR read API
+serves resources out of it, and fhir_index holds only what its searches filter on.
+
+Times are aware and stored in UTC (SQLModel's UTCDateTime; SQLite keeps no offset, so UTC is
+what makes comparisons agree on both engines).
+"""
+
+from __future__ import annotations
+
+from datetime import datetime
+
+from sqlalchemy import Column, Index, LargeBinary, Text, UniqueConstraint, text
+from sqlmodel import Field, SQLModel
+
+
+class NoteVersion(SQLModel, table=True):
+    """One version of one note, with what capnote made of it."""
+
+    __tablename__ = "note_version"
+    __table_args__ = (
+        # The constraint that makes concurrent submissions of one note produce one record.
+        UniqueConstraint("note_key", "version", name="uq_note_version"),
+        Index("ix_note_version_patient_eye", "patient_system", "patient_value", "eye"),
+    )
+
+    id: int | None = Field(default=None, primary_key=True)
+    note_key: str = Field(max_length=36)
+    version: int
+    sender_system: str = Field(max_length=255)
+    sender_value: str = Field(max_length=64)
+    patient_system: str = Field(max_length=255)
+    patient_value: str = Field(max_length=64)
+    eye: str = Field(max_length=5)
+    started_at: datetime
+    status: str = Field(max_length=8)
+    total_energy_mj: float | None = None
+    content_hash: str = Field(max_length=64)
+    note_json: str = Field(sa_column=Column(Text, nullable=False))
+    result_json: str = Field(sa_column=Column(Text, nullable=False))
+    # The emitted Bundle's JSON, zstd-compressed: a fifth of its size, and the largest part
+    # of each row (fewer pages written per note, fewer to read back).
+    bundle: bytes = Field(sa_column=Column(LargeBinary, nullable=False))
+    # The role of each Bundle entry, in entry order, space-separated (capnote.fhir.readmodel).
+    roles: str = Field(sa_column=Column(Text, nullable=False))
+    reason: str | None = Field(default=None, max_length=500)
+    recorded_at: datetime
+    recorded_by: str = Field(max_length=100)
+
+
+class FhirIndex(SQLModel, table=True):
+    """What the FHIR searches filter on, for the searchable resources of each note version
+    (Procedure and ServiceRequest); the resources themselves are read from the version's
+    Bundle. Rows of one note sit together under the primary key."""
+
+    __tablename__ = "fhir_index"
+    __table_args__ = (
+        # Only the current rows are searched by type, status and date.
+        Index(
+            "ix_fhir_index_current",
+            "resource_type",
+            "status",
+            "date",
+            sqlite_where=text("latest"),
+            postgresql_where=text("latest"),
+        ),
+        {"sqlite_with_rowid": False},
+    )
+
+    note_key: str = Field(max_length=36, primary_key=True)
+    role: str = Field(max_length=40, primary_key=True)
+    version: int = Field(primary_key=True)
+    resource_type: str = Field(max_length=40)
+    latest: bool = Field(default=True)
+    status: str = Field(max_length=20)
+    date: datetime | None = None
+
+
+class ApiToken(SQLModel, table=True):
+    """A bearer token: only its SHA-256 hash is kept."""
+
+    __tablename__ = "api_token"
+
+    id: int | None = Field(default=None, primary_key=True)
+    token_hash: str = Field(max_length=64, unique=True)
+    role: str = Field(max_length=20)
+    label: str = Field(max_length=100)
+    created_at: datetime
+    revoked_at: datetime | None = None
+
+
+class AuditEntry(SQLModel, table=True):
+    """Who did what to which note, when and from where. Identifiers only, no clinical text."""
+
+    __tablename__ = "audit_entry"
+
+    id: int | None = Field(default=None, primary_key=True)
+    at: datetime = Field(index=True)
+    actor: str = Field(max_length=100)
+    role: str = Field(max_length=20)
+    action: str = Field(max_length=40)
+    note_key: str | None = Field(default=None, max_length=36, index=True)
+    version: int | None = None
+    remote: str | None = Field(default=None, max_length=64)
+    outcome: str = Field(max_length=20)
+
+
+class OutboxEntry(SQLModel, table=True):
+    """A stored note version's Bundle waiting for (or done with) delivery to the receiver.
+
+    Written in the same transaction as the note version, so neither exists without the other.
+    """
+
+    __tablename__ = "outbox_entry"
+    __table_args__ = (
+        UniqueConstraint("note_key", "version", name="uq_outbox_note_version"),
+        Index("ix_outbox_due", "state", "next_attempt_at"),
+    )
+
+    id: int | None = Field(default=None, primary_key=True)
+    note_key: str = Field(max_length=36)
+    version: int
+    state: str = Field(max_length=10)  # pending | delivering | delivered | failed
+    attempts: int = 0
+    next_attempt_at: datetime
+    claimed_by: str | None = Field(default=None, max_length=64)
+    claimed_until: datetime | None = None
+    last_status: int | None = None
+    last_error: str | None = Field(default=None, sa_column=Column(Text, nullable=True))
+    created_at: datetime
+    delivered_at: datetime | None = None
