@@ -93,7 +93,6 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     for router in (health.router, notes.router, fhir.router, audit.router, web.router):
         app.include_router(router)
 
-    app.add_middleware(SecurityHeaders)
     if settings.cors_origins:
         app.add_middleware(
             CORSMiddleware,
@@ -104,6 +103,8 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         )
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     app.add_middleware(Guard)
+    # Outermost, so that the 413 of BodyLimit and the 500 of Guard carry the headers too.
+    app.add_middleware(SecurityHeaders)
     return app
 
 

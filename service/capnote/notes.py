@@ -32,7 +32,6 @@ from capnote.rules.lifecycle import Latest
 from capnote.store.base import (
     AuditRow,
     DuplicateVersionError,
-    IndexRow,
     NewVersion,
     Store,
     VersionRow,
@@ -227,10 +226,7 @@ class NoteService:
             recorded_at=now,
             recorded_by=who.label,
         )
-        index = tuple(
-            IndexRow(s.role, s.resource_type, s.status, s.date)
-            for s in searchables(result.bundle, result.roles)
-        )
+        index = tuple(searchables(result.bundle, result.roles))
         audit = AuditRow(now, who.label, who.role, change.action, who.remote)
         stored = StoredNote(
             key=key,

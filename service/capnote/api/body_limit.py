@@ -2,19 +2,16 @@
 
 from __future__ import annotations
 
-from typing import Any
-
-import orjson
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
+from capnote.api.media import send_fhir
 from capnote.errors import PayloadError
+from capnote.fhir.outcome import error_outcome
 
-_TOO_LARGE = {
-    "resourceType": "OperationOutcome",
-    "issue": [
-        {"severity": "error", "code": "too-costly", "diagnostics": "the request body is too large"}
-    ],
-}
+
+def too_large() -> PayloadError:
+    """The one refusal of an oversized body, whether Content-Length or the stream told."""
+    return PayloadError("the request body is too large", 413, "too-costly")
 
 
 class BodyLimit:
@@ -30,7 +27,8 @@ class BodyLimit:
             return
         declared = dict(scope.get("headers", [])).get(b"content-length")
         if declared is not None and (not declared.isdigit() or int(declared) > self.max_bytes):
-            await _refuse(send)
+            # The body is never read, so the connection cannot be reused.
+            await send_fhir(send, 413, error_outcome(too_large()), ((b"connection", b"close"),))
             return
         seen = 0
 
@@ -40,23 +38,7 @@ class BodyLimit:
             if message["type"] == "http.request":
                 seen += len(message.get("body", b""))
                 if seen > self.max_bytes:
-                    raise PayloadError("the request body is too large", 413, "too-costly")
+                    raise too_large()
             return message
 
         await self.app(scope, counted, send)
-
-
-async def _refuse(send: Send) -> None:
-    body: Any = orjson.dumps(_TOO_LARGE)
-    await send(
-        {
-            "type": "http.response.start",
-            "status": 413,
-            "headers": [
-                (b"content-type", b"application/fhir+json"),
-                (b"content-length", str(len(body)).encode()),
-                (b"connection", b"close"),
-            ],
-        }
-    )
-    await send({"type": "http.response.body", "body": body})

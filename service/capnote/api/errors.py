@@ -4,23 +4,25 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Mapping
+from typing import cast
 
 from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import Response
+from pydantic_core import ErrorDetails
 from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from starlette.exceptions import HTTPException
 from starlette.requests import ClientDisconnect
 from starlette.routing import Match
 
+from capnote.api.guard import incident
 from capnote.api.media import FHIR_JSON, fhir_response
 from capnote.errors import CapnoteError, PreconditionError, UnavailableError
-from capnote.fhir.outcome import error_outcome, incident_outcome
-from capnote.fhir.outcome import issue as finding_issue
-from capnote.findings import Finding, Severity
-from capnote.rules.contract import json_path
+from capnote.fhir.outcome import error_outcome, message_outcome, outcome
+from capnote.rules.contract import finding_from_error
 
 log = logging.getLogger("capnote.api")
+_PLACES = ("body", "query", "path", "header")
 _HTTP_ISSUE = {
     404: "not-found",
     405: "not-supported",
@@ -53,23 +55,16 @@ async def _capnote_error(_request: Request, exc: Exception) -> Response:
 
 async def _validation_error(_request: Request, exc: Exception) -> Response:
     assert isinstance(exc, RequestValidationError)
-    issues = []
-    for e in exc.errors():
-        loc = [p for p in e.get("loc", ()) if p not in ("body", "query", "path", "header")]
-        where = json_path(loc)
-        issues.append(
-            finding_issue(
-                Finding(
-                    severity=Severity.ERROR,
-                    code="request-invalid",
-                    location=where,
-                    message=f"{where or 'request'}: {e.get('msg')}",
-                    rule="the request's parameters",
-                    issue_type="invalid",
-                )
-            )
+    findings = [
+        finding_from_error(
+            # The parameter's own name is the location a caller knows, not "query".
+            cast("ErrorDetails", {**e, "loc": tuple(p for p in e["loc"] if p not in _PLACES)}),
+            code="request-invalid",
+            rule="the request's parameters",
         )
-    return outcome_response(422, {"resourceType": "OperationOutcome", "issue": issues})
+        for e in exc.errors()
+    ]
+    return outcome_response(422, outcome(findings))
 
 
 def _allowed_methods(request: Request) -> str:
@@ -84,16 +79,7 @@ def _allowed_methods(request: Request) -> str:
 
 async def _http_error(request: Request, exc: Exception) -> Response:
     assert isinstance(exc, HTTPException)
-    body = {
-        "resourceType": "OperationOutcome",
-        "issue": [
-            {
-                "severity": "error",
-                "code": _HTTP_ISSUE.get(exc.status_code, "processing"),
-                "diagnostics": str(exc.detail),
-            }
-        ],
-    }
+    body = message_outcome("error", _HTTP_ISSUE.get(exc.status_code, "processing"), str(exc.detail))
     headers = dict(exc.headers or {})
     if exc.status_code == 405:
         headers["Allow"] = _allowed_methods(request)
@@ -101,13 +87,9 @@ async def _http_error(request: Request, exc: Exception) -> Response:
 
 
 async def _unexpected(request: Request, exc: Exception) -> Response:
-    # Starlette re-raises after this answer; capnote.api.guard.Guard stops it there.
-    incident, body = incident_outcome()
-    # Route and exception type only: a payload or its values never reach the log.
-    log.error(
-        "incident %s: %s on %s %s", incident, type(exc).__name__, request.method, request.url.path
-    )
-    return outcome_response(500, body)
+    # Only what escapes capnote.api.guard.Guard lands here (Starlette's outermost layer,
+    # which re-raises after answering); both answer through the one incident().
+    return outcome_response(500, incident(exc, request.method, request.url.path))
 
 
 async def _database_error(request: Request, exc: Exception) -> Response:
@@ -126,16 +108,9 @@ async def _data_error(request: Request, exc: Exception) -> Response:
     log.info(
         "refused parameter (%s) on %s %s", type(exc).__name__, request.method, request.url.path
     )
-    body = {
-        "resourceType": "OperationOutcome",
-        "issue": [
-            {
-                "severity": "error",
-                "code": "invalid",
-                "diagnostics": "a parameter holds characters that cannot be stored or searched",
-            }
-        ],
-    }
+    body = message_outcome(
+        "error", "invalid", "a parameter holds characters that cannot be stored or searched"
+    )
     return outcome_response(422, body)
 
 

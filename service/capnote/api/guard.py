@@ -9,13 +9,22 @@ type and the route, and does not re-raise.
 from __future__ import annotations
 
 import logging
+from typing import Any
 
-import orjson
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
+from capnote.api.media import send_fhir
 from capnote.fhir.outcome import incident_outcome
 
 log = logging.getLogger("capnote.api")
+
+
+def incident(exc: BaseException, method: str | None, path: str | None) -> dict[str, Any]:
+    """The one answer to the unexpected: log the incident id, the exception's type and the
+    route (a payload or its values never reach the log) and return the generic outcome."""
+    number, body = incident_outcome()
+    log.error("incident %s: %s on %s %s", number, type(exc).__name__, method, path)
+    return body
 
 
 class Guard:
@@ -39,25 +48,7 @@ class Guard:
         try:
             await self.app(scope, receive, tracked)
         except Exception as exc:  # every kind: this is the catch-all by design
-            incident, body = incident_outcome()
-            log.error(
-                "incident %s: %s on %s %s",
-                incident,
-                type(exc).__name__,
-                scope.get("method"),
-                scope.get("path"),
-            )
+            body = incident(exc, scope.get("method"), scope.get("path"))
             if started:  # too late to answer; the connection is closed by the server
                 return
-            payload = orjson.dumps(body)
-            await send(
-                {
-                    "type": "http.response.start",
-                    "status": 500,
-                    "headers": [
-                        (b"content-type", b"application/fhir+json"),
-                        (b"content-length", str(len(payload)).encode()),
-                    ],
-                }
-            )
-            await send({"type": "http.response.body", "body": payload})
+            await send_fhir(send, 500, body)

@@ -7,6 +7,7 @@ from typing import Any
 import orjson
 from fastapi import Request
 from fastapi.responses import Response
+from starlette.types import Send
 
 from capnote.errors import PayloadError
 from capnote.jsonsafety import check_json
@@ -24,6 +25,21 @@ def fhir_response(body: Any, status: int = 200, headers: dict[str, str] | None =
 def json_response(body: Any, status: int = 200, headers: dict[str, str] | None = None) -> Response:
     """A plain JSON answer."""
     return Response(orjson.dumps(body), status, headers, media_type=JSON)
+
+
+async def send_fhir(
+    send: Send, status: int, body: Any, extra: tuple[tuple[bytes, bytes], ...] = ()
+) -> None:
+    """A FHIR answer sent straight on an ASGI channel, for the middleware that answers
+    before (or instead of) the application."""
+    payload = orjson.dumps(body)
+    headers = [
+        (b"content-type", f"{FHIR_JSON}; charset=utf-8".encode()),
+        (b"content-length", str(len(payload)).encode()),
+        *extra,
+    ]
+    await send({"type": "http.response.start", "status": status, "headers": headers})
+    await send({"type": "http.response.body", "body": payload})
 
 
 async def json_body(request: Request) -> bytes:

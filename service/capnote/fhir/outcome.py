@@ -33,17 +33,32 @@ def issue(finding: Finding) -> dict[str, Any]:
     return out
 
 
+def message_issue(
+    severity: str, issue_type: str, diagnostics: str, code: str | None = None
+) -> dict[str, Any]:
+    """An OperationOutcome.issue that carries a message, not a finding."""
+    out: dict[str, Any] = {"severity": severity, "code": issue_type}
+    if code is not None:
+        out["details"] = concept(coding(FINDING_CS, code))
+    out["diagnostics"] = diagnostics
+    return out
+
+
+def message_outcome(
+    severity: str, issue_type: str, diagnostics: str, code: str | None = None
+) -> dict[str, Any]:
+    """An OperationOutcome of one message issue."""
+    return {
+        "resourceType": "OperationOutcome",
+        "issue": [message_issue(severity, issue_type, diagnostics, code)],
+    }
+
+
 def outcome(findings: Iterable[Finding]) -> dict[str, Any]:
     """An OperationOutcome for a list of findings; 'all OK' when there are none."""
     issues = [issue(f) for f in findings]
     if not issues:
-        issues = [
-            {
-                "severity": "information",
-                "code": "informational",
-                "diagnostics": "no problems found",
-            }
-        ]
+        issues = [message_issue("information", "informational", "no problems found")]
     return {"resourceType": "OperationOutcome", "issue": issues}
 
 
@@ -51,29 +66,12 @@ def error_outcome(error: CapnoteError) -> dict[str, Any]:
     """An OperationOutcome for a raised error; input errors list their findings."""
     if isinstance(error, InputError):
         return outcome(error.findings)
-    return {
-        "resourceType": "OperationOutcome",
-        "issue": [
-            {
-                "severity": "error",
-                "code": error.issue_type,
-                "details": concept(coding(FINDING_CS, error.code)),
-                "diagnostics": error.message,
-            }
-        ],
-    }
+    return message_outcome("error", error.issue_type, error.message, error.code)
 
 
 def incident_outcome() -> tuple[str, dict[str, Any]]:
     """For the unexpected: a generic message and an incident id; details go to the log only."""
     incident = str(uuid.uuid4())
-    return incident, {
-        "resourceType": "OperationOutcome",
-        "issue": [
-            {
-                "severity": "fatal",
-                "code": "exception",
-                "diagnostics": f"{GENERIC_MESSAGE} (incident {incident})",
-            }
-        ],
-    }
+    return incident, message_outcome(
+        "fatal", "exception", f"{GENERIC_MESSAGE} (incident {incident})"
+    )

@@ -17,7 +17,7 @@ from pydantic import ValidationError
 
 from capnote.fhir.bindings import binding_problems
 from capnote.findings import Finding, Severity, show_value
-from capnote.rules.contract import json_path
+from capnote.rules.contract import finding_from_error
 
 SAME_IN_R4 = frozenset(
     {
@@ -63,21 +63,10 @@ def _structure(kind: str, data: dict[str, Any]) -> list[Finding]:
     try:
         model.model_validate(data)
     except ValidationError as exc:
-        out = []
-        for e in exc.errors(include_url=False):
-            where = kind + ("." + json_path(e["loc"]) if e["loc"] else "")
-            out.append(
-                Finding(
-                    severity=Severity.ERROR,
-                    code="fhir-structure",
-                    location=where,
-                    message=f"{where}: {e['msg']}",
-                    rule=_RULE,
-                    value=show_value("", e.get("input")) if e["type"] != "missing" else None,
-                    issue_type="required" if e["type"] == "missing" else "structure",
-                )
-            )
-        return out
+        return [
+            finding_from_error(e, root=kind, code="fhir-structure", rule=_RULE)
+            for e in exc.errors(include_url=False)
+        ]
     except (TypeError, ValueError) as exc:
         # fhir.resources raises plain ValueErrors from some of its own validators.
         return [_error("fhir-structure", kind, f"{kind}: {exc}", _RULE, "structure")]

@@ -95,36 +95,49 @@ def _allowed(error: ErrorDetails) -> str | None:
     return _ALLOWED.get(kind)
 
 
-def finding_from_error(error: ErrorDetails) -> Finding:
-    """One pydantic error as a finding; the message never repeats identifying values."""
+def finding_from_error(
+    error: ErrorDetails, *, root: str = "", code: str | None = None, rule: str = RULE
+) -> Finding:
+    """One pydantic error as a finding; the message never repeats identifying values.
+
+    The one mapping for every model capnote validates with: the note contract (the
+    defaults), a FHIR resource (``root`` is its type, ``rule`` the structure rule) and the
+    request's parameters. ``code`` replaces the per-kind finding code where a caller's
+    findings share one.
+    """
     kind = error["type"]
-    location = json_path(error["loc"])
+    path = json_path(error["loc"])
+    location = ".".join(p for p in (root, path) if p)
     if kind in _KINDS:
-        code, issue_type, rule = _KINDS[kind]
+        kind_code, issue_type, what = _KINDS[kind]
     elif kind in _TYPE_RULES:
-        code, issue_type, rule = "wrong-type", "value", f"the value must be {_TYPE_RULES[kind]}"
+        kind_code, issue_type, what = (
+            "wrong-type",
+            "value",
+            f"the value must be {_TYPE_RULES[kind]}",
+        )
     elif kind in ("too_short", "too_long", "string_too_short", "string_too_long"):
-        code, issue_type, rule = "wrong-length", "value", "the length must be within the contract"
+        kind_code, issue_type, what = "wrong-length", "value", "the length must be within the rule"
     elif kind == "string_pattern_mismatch":
-        code, issue_type, rule = (
+        kind_code, issue_type, what = (
             "wrong-format",
             "value",
             "no control characters; identifiers and URIs have no spaces",
         )
     else:
-        code, issue_type, rule = "invalid-value", "invalid", error["msg"]
+        kind_code, issue_type, what = "invalid-value", "invalid", error["msg"]
     where = location or "the payload"
     value = (
         None
         if kind in ("missing", "json_invalid", "extra_forbidden")
-        else show_value(location, error.get("input"))
+        else show_value(path, error.get("input"))
     )
     return Finding(
         severity=Severity.ERROR,
-        code=code,
+        code=code or kind_code,
         location=location,
         message=f"{where}: {error['msg']}",
-        rule=f"{rule} ({RULE})",
+        rule=f"{what} ({rule})",
         value=value,
         allowed=_allowed(error),
         issue_type=issue_type,

@@ -44,6 +44,7 @@ from sqlalchemy.engine import Dialect
 from sqlalchemy.sql import ClauseElement
 
 from capnote.derive import PriorSession
+from capnote.fhir.readmodel import Searchable
 from capnote.store.tables import ApiToken, AuditEntry, FhirIndex, NoteVersion, OutboxEntry
 from capnote.tokens import hash_token, new_secret
 
@@ -94,16 +95,6 @@ VERSION_COLUMNS = tuple(VersionRow.__slots__)
 
 
 @dataclass(frozen=True, slots=True)
-class IndexRow:
-    """One searchable resource of a version: what fhir_index holds."""
-
-    role: str
-    resource_type: str
-    status: str
-    date: datetime | None
-
-
-@dataclass(frozen=True, slots=True)
 class AuditRow:
     """Who did what to which version, from where."""
 
@@ -119,7 +110,7 @@ class NewVersion:
     """Everything one stored version adds: its row, its search rows, its audit entry."""
 
     row: VersionRow
-    index: tuple[IndexRow, ...]
+    index: tuple[Searchable, ...]
     audit: AuditRow
 
 
