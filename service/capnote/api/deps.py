@@ -3,6 +3,9 @@
 create_app() builds the services and keeps them on the app; routes name what they need by
 these aliases (``notes: Notes``), and tests swap any of them with
 ``app.dependency_overrides[notes_service] = ...``.
+
+Each is ``async def`` although it awaits nothing: FastAPI runs a plain ``def`` dependency in
+a worker thread, a thread hop per dependency per request (the benchmark showed it).
 """
 
 from __future__ import annotations
@@ -18,33 +21,34 @@ from capnote.notes import NoteService
 from capnote.policy import Policy
 
 
-def notes_service(request: Request) -> NoteService:
+async def notes_service(request: Request) -> NoteService:
     """The note lifecycle."""
     service: NoteService = request.app.state.notes
     return service
 
 
-def fhir_reads(request: Request) -> FhirReads:
+async def fhir_reads(request: Request) -> FhirReads:
     """The FHIR read API's reads."""
     service: FhirReads = request.app.state.fhir_reads
     return service
 
 
-def audit_trail(request: Request) -> AuditTrail:
+async def audit_trail(request: Request) -> AuditTrail:
     """The audit trail."""
     service: AuditTrail = request.app.state.audit_trail
     return service
 
 
-def access(request: Request) -> Access:
+async def access(request: Request) -> Access:
     """Token lookup."""
     service: Access = request.app.state.access
     return service
 
 
-def site_policy(request: Request) -> Policy:
+async def site_policy(request: Request) -> Policy:
     """The site policy in force."""
-    return notes_service(request).assessor.policy
+    service: NoteService = request.app.state.notes
+    return service.assessor.policy
 
 
 Notes = Annotated[NoteService, Depends(notes_service)]

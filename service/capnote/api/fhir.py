@@ -32,7 +32,7 @@ def _problem(location: str, message: str, value: str | None = None) -> InputErro
 
 
 @router.get("/metadata", responses=responses(200, media=FHIR_JSON))
-def metadata(request: Request) -> Response:
+async def metadata(request: Request) -> Response:
     """The CapabilityStatement: what this server really supports (no token needed)."""
     return fhir_response(capability_statement(str(request.base_url).rstrip("/") + "/fhir"))
 

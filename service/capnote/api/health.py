@@ -14,7 +14,7 @@ router = APIRouter(tags=["health"])
 
 
 @router.get("/healthz", responses=responses(200, model=StatusAnswer))
-def healthz() -> Response:
+async def healthz() -> Response:
     """The process is up."""
     return json_response({"status": "ok"})
 
