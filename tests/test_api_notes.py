@@ -492,3 +492,20 @@ def test_every_answer_has_the_published_shape(api: Api) -> None:
     assert {"bundle", "resources", "due"} <= set(
         spec["components"]["schemas"]["NoteAnswer"]["properties"]
     )
+
+
+@pytest.mark.parametrize("if_match", ['W/"²"', '"¹"', 'W/"1 "', 'W/"99999999999"', 'W/"-1"'])
+def test_if_match_takes_ascii_digits_only(api: Api, if_match: str) -> None:
+    """A superscript digit passes str.isdigit() and then breaks int(): refused as the
+    caller's mistake, never a 500 (found by the security tester)."""
+    key = post(api, ROUTINE).json()["id"]
+    changed = routine()
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    # Header bytes are read as Latin-1 (the ASGI rule), so byte 0xB2 arrives as "²".
+    headers: dict[str, Any] = {**api.headers("clinician"), "if-match": if_match.encode("latin-1")}
+    body = json.dumps({"note": changed, "reason": "fix"})
+    r = api.client.put(f"/notes/{key}", content=body, headers=headers)
+    assert r.status_code == 422, r.text
+    [issue] = r.json()["issue"]
+    assert issue["expression"] == ["If-Match"]
+    assert api.client.get(f"/notes/{key}", headers=api.headers("clinician")).json()["version"] == 1

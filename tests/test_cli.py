@@ -208,3 +208,22 @@ def test_serve_names_a_page_that_exists(tmp_path: Path) -> None:
         finally:
             proc.terminate()
             proc.wait(timeout=30)
+
+
+def test_terminal_escapes_in_a_payload_are_shown_not_obeyed(tmp_path: Path) -> None:
+    """A key that moves the cursor up, erases the line and prints a fake "ok" (the security
+    tester's case), and a right-to-left override, reach the terminal as visible escapes."""
+    note = json.loads(VALID[0].read_text())
+    note["\x1b[1A\x1b[2K\rall notes ok\u202e"] = 1
+    streamed = tmp_path / "hostile.ndjson"
+    streamed.write_text(json.dumps(note) + "\n")
+    whole = tmp_path / "hostile.json"
+    whole.write_text(json.dumps(note))
+    for path in (streamed, whole):
+        run = capnote("check", str(path), "--now", NOW)
+        assert run.returncode == 1
+        out = run.stdout + run.stderr
+        assert "\x1b" not in out
+        assert "\r" not in out
+        assert "\u202e" not in out
+        assert "\\u001b[1A\\u001b[2K\\u000dall notes ok\\u202e" in run.stdout

@@ -259,3 +259,35 @@ def test_operator_commands_deliver_list_retry_park(setup: Any, database_url: str
         assert capnote("outbox", "list", "--state", "delivered").stdout.split()[3] == "delivered"
         assert capnote("outbox", "park", listed[0]).returncode == 1  # delivered: nothing to park
     assert receiver.count("Procedure") == 1
+
+
+@pytest.mark.parametrize(
+    ("header", "expected"),
+    [
+        ("120", 120.0),
+        (" 7 ", 7.0),
+        ("²", None),  # str.isdigit() says yes; float() refuses
+        ("¹²", None),
+        ("soon", None),
+        ("Fri, 04 Dec 2026 12:01:00 GMT", 60.0),
+        ("Fri, 04 Dec 2026 11:00:00 GMT", 0.0),  # a time already past: no wait
+    ],
+)
+def test_retry_after_is_read_exactly(header: str, expected: float | None) -> None:
+    import httpx
+
+    from capnote.delivery import retry_after
+
+    now = datetime(2026, 12, 4, 12, 0, tzinfo=NOW.tzinfo)
+    # Header bytes as the receiver sends them; httpx reads a byte 0xB2 as "²".
+    answer = httpx.Response(503, headers={"retry-after": header.encode("latin-1")})
+    assert retry_after(answer, now) == expected
+
+
+@pytest.mark.parametrize("asked", [300_000_000_000.0, float("inf"), 10 * 365 * 86400.0])
+def test_a_receivers_wait_is_capped(asked: float) -> None:
+    """A Retry-After of a thousand years (or one that overflows timedelta) waits the cap."""
+    store: Any = object()  # backoff never touches the store
+    worker = DeliveryWorker(store, Receiver(base_url="http://127.0.0.1:9/fhir"), max_asked_s=3600.0)
+    assert worker.backoff(1, asked) == timedelta(seconds=3600)
+    assert worker.backoff(1, 90.0) == timedelta(seconds=90)

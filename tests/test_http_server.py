@@ -171,6 +171,38 @@ def test_token_commands(database_url: str) -> None:
         env={**os.environ, "CAPNOTE_DATABASE_URL": database_url},
     )
     assert bad.returncode == 2
+    long = subprocess.run(  # longer than the column: refused alike on both engines
+        [*CAPNOTE, "token", "new", "--role", "auditor", "--label", "x" * 101],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        cwd=ROOT,
+        check=False,
+        env={**os.environ, "CAPNOTE_DATABASE_URL": database_url},
+    )
+    assert long.returncode == 2, long.stderr
+    assert "1 to 100 characters" in long.stderr
+    assert "Traceback" not in long.stderr
+    assert run_cli(database_url, "token", "list").count("\n") == 1  # nothing was stored
+
+
+def test_a_forwarded_address_longer_than_the_audit_column(
+    database_url: str, tmp_path: Path
+) -> None:
+    """uvicorn trusts X-Forwarded-For from 127.0.0.1; the security tester's 65 characters
+    gave a 500 on PostgreSQL. Now a 422 that names the header, on both engines, and the
+    note is not stored."""
+    auth = {
+        "authorization": f"Bearer {token(database_url, 'submitter')}",
+        "content-type": "application/json",
+    }
+    with server(database_url, tmp_path) as base, httpx.Client(base_url=base, timeout=30) as http:
+        body = VALID[0].read_bytes()
+        r = http.post("/notes", content=body, headers={**auth, "x-forwarded-for": "9" * 65})
+        assert r.status_code == 422, r.text
+        assert r.json()["issue"][0]["expression"] == ["X-Forwarded-For"]
+        fine = http.post("/notes", content=body, headers={**auth, "x-forwarded-for": "10.1.2.3"})
+        assert fine.status_code == 201, fine.text
 
 
 @pytest.fixture(autouse=True)

@@ -333,3 +333,25 @@ def test_migration_0003_converts_stored_versions(database_url: str) -> None:
         if e["resource"]["resourceType"] in ("Procedure", "ServiceRequest")
     )
     assert all(i.latest for i in index)
+
+
+def test_the_sqlite_files_are_private(tmp_path: Path) -> None:
+    """The database, its -wal and its -shm hold patient data and token hashes: owner only,
+    whatever the umask (the security tester found 0644)."""
+    import os
+    import stat
+
+    path = tmp_path / "private.sqlite3"
+    old = os.umask(0o022)
+    try:
+        notes = sync_notes(f"sqlite:///{path}")
+        try:
+            notes.submit(VALID[0].read_bytes(), WHO)
+            files = [path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")]
+            assert all(f.exists() for f in files)
+            for f in files:
+                assert stat.S_IMODE(f.stat().st_mode) == 0o600, f
+        finally:
+            notes.close()
+    finally:
+        os.umask(old)

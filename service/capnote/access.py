@@ -4,9 +4,11 @@ once); on SQLite a few microseconds on the event loop, on PostgreSQL one round t
 from __future__ import annotations
 
 from capnote.errors import AuthenticationError, ForbiddenError
+from capnote.findings import refusal
 from capnote.notes import Principal
+from capnote.plain_text import printable
 from capnote.store.base import Store
-from capnote.tokens import hash_token
+from capnote.tokens import REMOTE_MAX, hash_token
 
 
 class Access:
@@ -28,4 +30,21 @@ class Access:
             raise AuthenticationError("the token is unknown or revoked")
         if row.role not in allowed:
             raise ForbiddenError(f"the role {row.role} may not do this")
-        return Principal(label=row.label, role=row.role, remote=remote)
+        return Principal(label=row.label, role=row.role, remote=_checked_remote(remote))
+
+
+def _checked_remote(remote: str | None) -> str | None:
+    """The client address as the audit trail keeps it; uvicorn takes it from
+    X-Forwarded-For behind a trusted proxy, so it is the caller's text and is checked here,
+    alike on both engines, rather than cut short or refused by the database."""
+    if remote is None or (len(remote) <= REMOTE_MAX and remote.isprintable()):
+        return remote
+    raise refusal(
+        "client-address-invalid",
+        "X-Forwarded-For",
+        "the forwarded client address is not an address",
+        "the client address the audit trail records",
+        value=printable(remote[:40]),
+        allowed=f"printable, at most {REMOTE_MAX} characters",
+        issue_type="value",
+    )

@@ -77,11 +77,13 @@ def retry_after(answer: httpx.Response, now: datetime) -> float | None:
     value = answer.headers.get("retry-after")
     if value is None:
         return None
-    if value.strip().isdigit():
-        return float(value)
+    text = value.strip()
+    # ASCII digits only: str.isdigit() also takes "²", which float() then refuses.
+    if text.isascii() and text.isdigit():
+        return float(text)
     try:
-        return max(0.0, (parsedate_to_datetime(value) - now).total_seconds())
-    except (TypeError, ValueError):
+        return max(0.0, (parsedate_to_datetime(text) - now).total_seconds())
+    except (TypeError, ValueError, OverflowError):
         return None
 
 
@@ -112,6 +114,7 @@ class DeliveryWorker:
         max_attempts: int = 12,
         base_delay_s: float = 1.0,
         max_delay_s: float = 600.0,
+        max_asked_s: float = 3600.0,
         lease: timedelta = timedelta(seconds=120),
         rng: random.Random | None = None,
     ) -> None:
@@ -125,14 +128,16 @@ class DeliveryWorker:
         self.max_attempts = max_attempts
         self.base_delay_s = base_delay_s
         self.max_delay_s = max_delay_s
+        self.max_asked_s = max_asked_s
         self.lease = lease
         self.rng = rng or random.Random()  # noqa: S311 - jitter, not security
 
     def backoff(self, attempts: int, asked: float | None) -> timedelta:
-        """Exponential back-off with jitter; the receiver's Retry-After when it is longer."""
+        """Exponential back-off with jitter; the receiver's Retry-After when it is longer,
+        up to max_asked_s (a receiver's typo must not defer a clinical record for years)."""
         delay = min(self.max_delay_s, self.base_delay_s * 2 ** max(0, attempts - 1))
         delay *= 0.5 + self.rng.random() / 2
-        return timedelta(seconds=max(delay, asked or 0.0))
+        return timedelta(seconds=max(delay, min(asked or 0.0, self.max_asked_s)))
 
     async def run_once(self, limit: int = 20) -> int:
         """Deliver what is due now; the number of entries tried."""

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from collections import Counter
 from collections.abc import Iterable, Sequence
 
@@ -15,6 +16,17 @@ CAUTION = (
 )
 
 
+# C0 and C1 controls, DEL, and the bidirectional overrides and isolates: a key name or a
+# file name holding them could move the cursor, erase the error line and print a fake "ok",
+# or reorder what a terminal shows.
+_UNPRINTABLE = re.compile("[\x00-\x1f\x7f-\x9f\u061c\u200e\u200f\u202a-\u202e\u2066-\u2069]")
+
+
+def printable(text: str) -> str:
+    """Text safe for a terminal or a text file: every control character as a visible escape."""
+    return _UNPRINTABLE.sub(lambda m: f"\\u{ord(m[0]):04x}", text)
+
+
 def finding_line(f: Finding) -> str:
     """One finding on one line: severity, location, code, message and where the rule is from."""
     where = f.location or "(payload)"
@@ -23,7 +35,7 @@ def finding_line(f: Finding) -> str:
         text += f"; allowed: {f.allowed}"
     if f.source:
         text += f" (source: {f.source})"
-    return text
+    return printable(text)
 
 
 def due_line(item: DueItem) -> str:

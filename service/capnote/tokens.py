@@ -17,3 +17,9 @@ def new_secret() -> str:
 def hash_token(token: str) -> str:
     """SHA-256 of a token: tokens are long random strings, so a plain hash is enough."""
     return hashlib.sha256(token.encode()).hexdigest()
+
+
+# Lengths that callers check before a row reaches the database, so both engines answer
+# alike (SQLite would keep a longer value; PostgreSQL refuses it).
+LABEL_MAX = 100  # a token's label, and the actor of an audit entry
+REMOTE_MAX = 64  # the client address of an audit entry

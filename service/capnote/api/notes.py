@@ -40,7 +40,9 @@ def _if_match(value: str | None) -> int | None:
     if value is None:
         return None
     text = value.strip().removeprefix("W/").strip('"')
-    if not text.isdigit():
+    # ASCII digits only: str.isdigit() also takes "²", which int() then refuses; nine digits
+    # at most, so the number fits every engine's version column.
+    if not (text.isascii() and text.isdigit() and len(text) <= 9):
         raise refusal(
             "if-match-invalid",
             "If-Match",

@@ -18,6 +18,7 @@ from typing import TYPE_CHECKING, Annotated, TypeVar
 import typer
 
 from capnote.config import Settings
+from capnote.tokens import LABEL_MAX
 
 if TYPE_CHECKING:
     from capnote.store.base import Store
@@ -71,6 +72,12 @@ def token_new(
     """Create a token and print it once; only its hash is kept."""
     if role not in ROLES:
         raise typer.BadParameter(f"use one of {', '.join(ROLES)}", param_hint="--role")
+    if not (0 < len(label.strip()) <= LABEL_MAX and label.isprintable()):
+        # Checked here so both engines answer alike (PostgreSQL would refuse it, SQLite keep it).
+        raise typer.BadParameter(
+            f"printable text of 1 to {LABEL_MAX} characters (this one has {len(label)})",
+            param_hint="--label",
+        )
     token, token_id = _with_store(
         lambda store: store.new_token(role, label, datetime.now(UTC)), migrate=True
     )

@@ -15,7 +15,7 @@ from sqlalchemy.engine import make_url
 
 from capnote.store.base import Store
 from capnote.store.postgres import PostgresStore
-from capnote.store.sqlite import SqliteStore
+from capnote.store.sqlite import SqliteStore, create_private
 
 MIGRATIONS = Path(__file__).parent / "migrations"
 # How long SQLite waits for another writer before giving up (ms): writers queue, clients
@@ -27,6 +27,7 @@ def make_engine(url: str) -> Engine:
     """An engine for the URL, for migrations (and tests that look at the tables)."""
     parsed = make_url(url)
     if parsed.get_backend_name() == "sqlite":
+        create_private(parsed.database or "")
         engine = create_engine(
             url, connect_args={"check_same_thread": False, "timeout": SQLITE_BUSY_MS / 1000}
         )

@@ -15,7 +15,9 @@ commit (and one WAL append of the shared index pages) serves several notes.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import logging
+import os
 import random
 import sqlite3
 import threading
@@ -47,6 +49,18 @@ _Write = tuple[list[tuple[Sql, Any]], "asyncio.Future[None]"]
 LOCK_WAIT_S = 15.0
 
 
+def create_private(path: str) -> None:
+    """Create the database file readable by its owner only, before SQLite does (it would
+    follow the umask, often 0644). It holds patient data and token hashes; SQLite gives the
+    -wal and -shm files the database file's mode, so they are private too."""
+    if path in ("", ":memory:") or path.startswith("file:"):
+        return
+    # An existing file keeps its mode; a missing or read-only folder is left for SQLite to
+    # report as it always has.
+    with contextlib.suppress(OSError):
+        os.close(os.open(path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o600))
+
+
 class SqliteStore(Store):
     """The store on one SQLite file (see the module docstring)."""
 
@@ -66,6 +80,7 @@ class SqliteStore(Store):
 
     def _open(self) -> sqlite3.Connection:
         if self._connection is None:
+            create_private(self._path)
             connection = sqlite3.connect(
                 self._path, isolation_level=None, check_same_thread=False, timeout=0
             )

@@ -15,6 +15,8 @@ from datetime import datetime
 from sqlalchemy import Column, Index, LargeBinary, Text, UniqueConstraint, text
 from sqlmodel import Field, SQLModel
 
+from capnote.tokens import LABEL_MAX, REMOTE_MAX
+
 
 class NoteVersion(SQLModel, table=True):
     """One version of one note, with what capnote made of it."""
@@ -47,7 +49,7 @@ class NoteVersion(SQLModel, table=True):
     roles: str = Field(sa_column=Column(Text, nullable=False))
     reason: str | None = Field(default=None, max_length=500)
     recorded_at: datetime
-    recorded_by: str = Field(max_length=100)
+    recorded_by: str = Field(max_length=LABEL_MAX)
 
 
 class FhirIndex(SQLModel, table=True):
@@ -86,7 +88,7 @@ class ApiToken(SQLModel, table=True):
     id: int | None = Field(default=None, primary_key=True)
     token_hash: str = Field(max_length=64, unique=True)
     role: str = Field(max_length=20)
-    label: str = Field(max_length=100)
+    label: str = Field(max_length=LABEL_MAX)
     created_at: datetime
     revoked_at: datetime | None = None
 
@@ -98,12 +100,12 @@ class AuditEntry(SQLModel, table=True):
 
     id: int | None = Field(default=None, primary_key=True)
     at: datetime = Field(index=True)
-    actor: str = Field(max_length=100)
+    actor: str = Field(max_length=LABEL_MAX)
     role: str = Field(max_length=20)
     action: str = Field(max_length=40)
     note_key: str | None = Field(default=None, max_length=36, index=True)
     version: int | None = None
-    remote: str | None = Field(default=None, max_length=64)
+    remote: str | None = Field(default=None, max_length=REMOTE_MAX)
     outcome: str = Field(max_length=20)
 
 
