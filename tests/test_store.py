@@ -355,3 +355,46 @@ def test_the_sqlite_files_are_private(tmp_path: Path) -> None:
             notes.close()
     finally:
         os.umask(old)
+
+
+def _log_frames(path: Path) -> int:
+    """Frames in the write-ahead log, as a passive checkpoint reports them."""
+    connection = sqlite3.connect(path, isolation_level=None)
+    try:
+        row = connection.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()
+        return int(row[1])
+    finally:
+        connection.close()
+
+
+def test_the_log_starts_over_in_a_lull_not_under_writing(tmp_path: Path) -> None:
+    """The restarting checkpoint holds the write lock through a sync, so it waits for a
+    moment without writes (or the hard cap); then the log starts over."""
+    from capnote.store.sqlite import Checkpointer
+
+    path = tmp_path / "wal.sqlite3"
+    writer = sqlite3.connect(path, isolation_level=None)
+    writer.execute("PRAGMA journal_mode=WAL")
+    writer.execute("PRAGMA wal_autocheckpoint=0")
+    writer.execute("create table t (x blob)")
+
+    class Small(Checkpointer):
+        INTERVAL_S = 0.05
+        RESTART_FRAMES = 40
+        HARD_FRAMES = 100_000
+
+    checkpointer = Small(str(path))
+    checkpointer.start()
+    try:
+        deadline = time.monotonic() + 1.0
+        while time.monotonic() < deadline:  # writing without a pause of one interval
+            writer.execute("insert into t values (randomblob(3000))")
+            time.sleep(0.002)
+        busy = _log_frames(path)
+        assert busy > Small.RESTART_FRAMES  # not restarted while the writes went on
+        time.sleep(0.5)  # a lull: the restart runs
+        writer.execute("insert into t values (randomblob(3000))")  # the log starts over
+        assert _log_frames(path) < Small.RESTART_FRAMES
+    finally:
+        checkpointer.stop()
+        writer.close()

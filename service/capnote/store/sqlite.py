@@ -285,16 +285,21 @@ class Checkpointer:
     once it holds RESTART_FRAMES, a restarting checkpoint takes the write lock for the
     little that is left (writers await it: see SqliteStore._run) and the log starts over.
 
-    That restart holds the write lock through the database file's sync, which sets the
-    tail of POST /notes under load; RESTART_FRAMES (a log of up to 64 MB) makes it rare.
+    That restart holds the write lock through the database file's sync, one stall of tens
+    of milliseconds for every writer, and it set the tail of POST /notes under load. So it
+    waits for a lull: it runs once the log holds RESTART_FRAMES and no frame was added for
+    one interval, and only at HARD_FRAMES (a log of about 256 MB) in the middle of writing.
     The figures behind the choice are in bench/results and README, "Performance".
     """
 
     INTERVAL_S = 0.2
     RESTART_FRAMES = 16_000
+    HARD_FRAMES = 64_000
 
     def __init__(self, path: str) -> None:
         self.path = path
+        self._seen = -1  # the log's frames at the last look
+        self._restarted = -1  # the log's frames when it was last restarted
         self._stop = threading.Event()
         self._thread = threading.Thread(target=self._loop, name="capnote-checkpoint", daemon=True)
 
@@ -322,8 +327,15 @@ class Checkpointer:
             # (busy, frames in the log, frames copied); fetched, so no statement stays open
             # (an open one would hold a read mark and keep the log from starting over).
             _busy, frames, _copied = connection.execute("PRAGMA wal_checkpoint(PASSIVE)").fetchone()
-            if frames >= self.RESTART_FRAMES:
+            still = frames == self._seen  # nothing written since the last look
+            self._seen = frames
+            if frames >= self.HARD_FRAMES or (
+                frames >= self.RESTART_FRAMES and still and frames != self._restarted
+            ):
                 connection.execute("PRAGMA wal_checkpoint(RESTART)").fetchone()
+                # The log starts over with the next write; until then its size reads the
+                # same, and restarting it again would only sync for nothing.
+                self._restarted = frames
         except sqlite3.Error as exc:  # a checkpoint that fails is retried by the next one
             log.warning("WAL checkpoint skipped: %s", type(exc).__name__)
 
