@@ -283,3 +283,18 @@ def test_a_real_server_logs_no_traceback_for_an_unexpected_error(
     assert "HX100234" not in caplog.text
     assert "Traceback" not in caplog.text
     assert "RuntimeError" in caplog.text  # the type and route are logged, nothing more
+
+
+def test_a_nul_byte_in_a_search_is_the_callers_error(api: Api) -> None:
+    """PostgreSQL cannot hold a NUL in text: its driver's refusal must come back as a 422
+    that says why, the same on SQLite, never a 500."""
+    h = api.headers("auditor")
+    for url, params in (
+        ("/notes", {"patient": "urn:oid:1.2.3|MRN\x00"}),
+        ("/fhir/Procedure", {"patient:identifier": "urn:oid:1.2.3|MRN\x00"}),
+        ("/audit", {"note": "a\x00"}),
+    ):
+        r = api.client.get(url, params=params, headers=h)
+        assert r.status_code in (200, 422), (url, r.text[:300])
+        if r.status_code == 422:
+            assert r.json()["resourceType"] == "OperationOutcome"

@@ -31,6 +31,7 @@ from capnote.store.base import (
     Sql,
     Store,
     sessions_from_rows,
+    unstorable,
 )
 
 # Connections per process: enough for the requests one event loop has in flight.
@@ -135,6 +136,8 @@ class PostgresStore(Store):
                 return await cursor.fetchall() if cursor.description is not None else []
         except (PoolTimeout, psycopg.OperationalError) as exc:
             raise UnavailableError("the database is not reachable right now") from exc
+        except psycopg.DataError as exc:  # a NUL byte in a search, say: the caller's error
+            raise unstorable() from exc
 
     async def start(self) -> None:
         """Open the pool in the service's loop."""
@@ -179,6 +182,8 @@ class PostgresStore(Store):
             raise DuplicateVersionError from exc
         except (PoolTimeout, psycopg.OperationalError) as exc:
             raise UnavailableError("the database is not reachable right now") from exc
+        except psycopg.DataError as exc:
+            raise unstorable() from exc
 
 
 def _write_params(new: NewVersion) -> dict[str, Any]:
