@@ -109,3 +109,15 @@ def refusal(
         issue_type=issue_type,
     )
     return InputError(message, [finding])
+
+
+def unstorable() -> InputError:
+    """A value the database cannot hold or search (PostgreSQL refuses a NUL byte in text):
+    the caller's error, answered 422 alike on both engines' paths, never a 500."""
+    return refusal(
+        "parameter-unstorable",
+        "request",
+        "a parameter holds characters that cannot be stored or searched",
+        "text without NUL bytes",
+        issue_type="value",
+    )

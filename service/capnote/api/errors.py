@@ -19,6 +19,7 @@ from capnote.api.guard import incident
 from capnote.api.media import FHIR_JSON, fhir_response
 from capnote.errors import CapnoteError, PreconditionError, UnavailableError
 from capnote.fhir.outcome import error_outcome, message_outcome, outcome
+from capnote.findings import unstorable
 from capnote.rules.contract import finding_from_error
 
 log = logging.getLogger("capnote.api")
@@ -108,10 +109,7 @@ async def _data_error(request: Request, exc: Exception) -> Response:
     log.info(
         "refused parameter (%s) on %s %s", type(exc).__name__, request.method, request.url.path
     )
-    body = message_outcome(
-        "error", "invalid", "a parameter holds characters that cannot be stored or searched"
-    )
-    return outcome_response(422, body)
+    return outcome_response(422, error_outcome(unstorable()))
 
 
 async def _client_gone(request: Request, _exc: Exception) -> Response:

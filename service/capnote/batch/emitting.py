@@ -11,7 +11,7 @@ import orjson
 from capnote.assess import Assessor
 from capnote.batch.inputs import Record
 from capnote.findings import Finding
-from capnote.plain_text import finding_line, printable
+from capnote.plain_text import finding_line
 
 
 @dataclass(frozen=True, slots=True)
@@ -25,7 +25,7 @@ class Emitted:
     @property
     def where(self) -> str:
         """file:line, or file alone for a whole JSON file."""
-        name = printable(self.record.source.name)
+        name = self.record.source.shown
         return name if self.record.line is None else f"{name}:{self.record.line}"
 
     def error_lines(self) -> list[str]:

@@ -15,6 +15,7 @@ from typing import BinaryIO
 
 from capnote.errors import UsageError
 from capnote.findings import Finding, Severity
+from capnote.plain_text import printable
 
 STDIN = Path("-")
 STDIN_NAME = "<stdin>"
@@ -39,6 +40,12 @@ class Source:
     def name(self) -> str:
         """The name reports use: the path as given or found, or <stdin>."""
         return STDIN_NAME if self.path == STDIN else str(self.path)
+
+    @property
+    def shown(self) -> str:
+        """The name as text output shows it: control characters escaped, so a file name
+        cannot move a terminal's cursor (CSV, HTML and JSON escape in their own way)."""
+        return printable(self.name)
 
 
 @dataclass(frozen=True, slots=True)

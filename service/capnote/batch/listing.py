@@ -12,7 +12,7 @@ import orjson
 
 from capnote.batch.checking import RecordResult, Tally
 from capnote.fhir.outcome import outcome
-from capnote.plain_text import CAUTION, derived_lines, due_line, finding_line, printable
+from capnote.plain_text import CAUTION, derived_lines, due_line, finding_line
 
 
 class Listing(Protocol):
@@ -34,7 +34,7 @@ class TextListing:
 
     def add(self, result: RecordResult) -> None:
         """Print one result."""
-        name = printable(result.source.name)
+        name = result.source.shown
         if not result.source.streamed:
             self._block(result)
         elif result.line is None:  # a streamed file that could not be opened
@@ -46,7 +46,7 @@ class TextListing:
 
     def _block(self, result: RecordResult) -> None:
         state = "FAILED" if result.failed else "ok"
-        lines = [f"{printable(result.source.name)} ({result.kind}): {state}"]
+        lines = [f"{result.source.shown} ({result.kind}): {state}"]
         lines += [finding_line(f) for f in result.findings]
         if result.derived is not None:
             lines += derived_lines(result.derived)

@@ -24,7 +24,7 @@ from capnote.batch.listing import BundleListing, Listing, NdjsonListing, TextLis
 from capnote.batch.output import AtomicFile, ReportWriter, RunInfo
 from capnote.batch.reports import open_report, report_format
 from capnote.cli.options import NowOption, PolicyOption, assessor, present
-from capnote.plain_text import finding_line, printable
+from capnote.plain_text import finding_line
 from capnote.schema_files import write_schemas
 
 _PICKED_UP = (
@@ -208,7 +208,7 @@ def _emit_one(source: Source, policy: Path | None, now: datetime | None, out: Pa
         findings = [f for f in result.findings if f.blocking]
     for f in findings:
         typer.echo(finding_line(f), err=True)
-    typer.echo(f"{printable(source.name)}: not emitted, the note has errors", err=True)
+    typer.echo(f"{source.shown}: not emitted, the note has errors", err=True)
     raise typer.Exit(1)
 
 

@@ -44,9 +44,7 @@ from sqlalchemy.engine import Dialect
 from sqlalchemy.sql import ClauseElement
 
 from capnote.derive import PriorSession
-from capnote.errors import InputError
 from capnote.fhir.readmodel import Searchable
-from capnote.findings import refusal
 from capnote.store.tables import ApiToken, AuditEntry, FhirIndex, NoteVersion, OutboxEntry
 from capnote.tokens import hash_token, new_secret
 
@@ -94,18 +92,6 @@ class VersionRow:
 
 
 VERSION_COLUMNS = tuple(VersionRow.__slots__)
-
-
-def unstorable() -> InputError:
-    """A value the database cannot hold or search (PostgreSQL refuses a NUL byte in text):
-    the caller's error, answered 422 alike on both engines' paths, never a 500."""
-    return refusal(
-        "parameter-unstorable",
-        "request",
-        "a parameter holds characters that cannot be stored or searched",
-        "text without NUL bytes",
-        issue_type="value",
-    )
 
 
 @dataclass(frozen=True, slots=True)

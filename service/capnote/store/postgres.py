@@ -24,6 +24,7 @@ from sqlalchemy.engine import make_url
 
 from capnote.derive import PriorSession
 from capnote.errors import UnavailableError
+from capnote.findings import unstorable
 from capnote.store.base import (
     VERSION_COLUMNS,
     DuplicateVersionError,
@@ -31,7 +32,6 @@ from capnote.store.base import (
     Sql,
     Store,
     sessions_from_rows,
-    unstorable,
 )
 
 # Connections per process: enough for the requests one event loop has in flight.
