@@ -24,11 +24,11 @@ from capnote.policy.loader import default_policy_data
 from capnote.rules import Context, check_payload, graded
 from tests.conftest import NOW, routine
 
-# The clinical (never blocking) finding codes of service/rules/clinical.py and the severity
+# The clinical (never blocking) finding codes of service/capnote/rules/clinical.py and the severity
 # each check gives, written out by hand from its warning(...) and information(...) calls.
 # An explicit list rather than a scan of the source: reading code as text breaks on the
 # first reformatting. When a check is added there, add its code here and to
-# service/policy/model.py CLINICAL_FINDING_CODES and default.toml [severity].
+# service/capnote/policy/model.py CLINICAL_FINDING_CODES and default.toml [severity].
 CHECK_SEVERITY: dict[str, str] = {
     "pulse-energy-above-usual": "warning",
     "total-energy-band": "warning",
@@ -58,8 +58,8 @@ CHECK_SEVERITY: dict[str, str] = {
     "iol-pit-on-axis": "warning",
 }
 
-# The reason codes service/derive.py risk() adds, written out by hand from its add(...) calls
-# (an explicit list, for the same reason as above).
+# The reason codes service/capnote/derive.py risk() adds, written out by hand from its
+# add(...) calls (an explicit list, for the same reason as above).
 RISK_CODES = {
     "glaucoma",
     "high-myopia",

@@ -1061,7 +1061,8 @@ def test_a_stored_draft_keeps_not_recorded_apart_from_no(clinic: Clinic) -> None
     )
 
 
-# The site's lens list as /web/defaults gives it (service/policy/default.toml, a placeholder).
+# The site's lens list as /web/defaults gives it (service/capnote/policy/default.toml, a
+# placeholder).
 LISTED_LENS = "Capsulotomy lens (example, 1.6x)"
 LISTED_HINT = "Magnification 1.6\N{MULTIPLICATION SIGN} (site lens list)."
 
