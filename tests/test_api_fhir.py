@@ -113,7 +113,7 @@ def test_amendment_raises_the_version_id_and_keeps_history(api: Api) -> None:
     r = api.client.put(
         f"/notes/{key}",
         content=json.dumps({"reason": "re-measured", "note": changed}),
-        headers=api.headers("clinician"),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
     )
     assert r.status_code == 200
     current = fhir(api, f"/fhir/Procedure/{key}").json()

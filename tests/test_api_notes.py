@@ -107,8 +107,19 @@ def test_amend_versions_and_if_match(api: Api) -> None:
     changed = routine()
     changed["result"]["opening"]["horizontal_mm"] = 4.0
     url = f"/notes/{key}"
+    blind = api.client.put(
+        url,
+        content=json.dumps({"reason": "x", "note": changed}),
+        headers=api.headers("clinician"),
+    )
+    # Without If-Match the last writer would win silently: 428 (RFC 6585), nothing stored.
+    assert blind.status_code == 428
+    assert blind.json()["issue"][0]["code"] == "required"
+    assert "If-Match" in blind.json()["issue"][0]["diagnostics"]
     no_reason = api.client.put(
-        url, content=json.dumps({"note": changed}), headers=api.headers("clinician")
+        url,
+        content=json.dumps({"note": changed}),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
     )
     assert no_reason.status_code == 422  # a final note is amended only with a reason
     assert no_reason.json()["issue"][0]["expression"] == ["reason"]
@@ -143,10 +154,13 @@ def test_amend_versions_and_if_match(api: Api) -> None:
 def test_void_marks_everything_entered_in_error(api: Api) -> None:
     key = post(api, ROUTINE).json()["id"]
     url = f"/notes/{key}/void"
-    assert api.client.post(url, content="{}", headers=api.headers("submitter")).status_code == 422
-    r = api.client.post(
+    h = api.headers("submitter", **{"if-match": 'W/"1"'})
+    blind = api.client.post(
         url, content=json.dumps({"reason": "wrong patient"}), headers=api.headers("submitter")
     )
+    assert blind.status_code == 428  # a void without If-Match is refused like an amend
+    assert api.client.post(url, content="{}", headers=h).status_code == 422
+    r = api.client.post(url, content=json.dumps({"reason": "wrong patient"}), headers=h)
     assert r.status_code == 200
     assert r.json()["status"] == "void"
     statuses = {e["resource"]["status"] for e in r.json()["bundle"]["entry"]}
@@ -155,7 +169,7 @@ def test_void_marks_everything_entered_in_error(api: Api) -> None:
     amend = api.client.put(
         f"/notes/{key}",
         content=json.dumps({"reason": "x", "note": routine()}),
-        headers=api.headers("submitter"),
+        headers=api.headers("submitter", **{"if-match": 'W/"2"'}),
     )
     assert amend.status_code == 409
 
@@ -258,7 +272,7 @@ def test_audit_trail_records_writes(api: Api) -> None:
     api.client.post(
         f"/notes/{key}/void",
         content=json.dumps({"reason": "duplicate"}),
-        headers=api.headers("clinician"),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
     )
     entries = api.client.get("/audit", params={"note": key}, headers=api.headers("auditor")).json()[
         "entries"
@@ -287,7 +301,7 @@ def amend(
     key: str,
     note: dict[str, Any],
     reason: str | None = "fix",
-    if_match: str | None = None,
+    if_match: str | None = 'W/"1"',
     **extra: Any,
 ) -> Any:
     body: dict[str, Any] = {"note": note, **extra}
@@ -356,7 +370,7 @@ def test_draft_then_final_is_final_not_amended(api: Api) -> None:
     assert {o["status"] for o in observations} == {"final"}
     back = routine()
     back["status"] = "draft"
-    refused = amend(api, key, back, reason="undo")
+    refused = amend(api, key, back, reason="undo", if_match='W/"2"')
     assert refused.status_code == 422
     assert refused.json()["issue"][0]["expression"] == ["note.status"]
 

@@ -30,7 +30,7 @@ def code_of(exc: InputError) -> tuple[str, str]:
 
 
 def test_the_same_content_again_is_a_retry_that_landed() -> None:
-    assert amendment(latest(), note(), "hash-of-v2", None, None) == "already-stored"
+    assert amendment(latest(), note(), "hash-of-v2", None, 1) == "already-stored"
 
 
 def test_a_changed_signed_note_needs_a_reason_and_the_latest_version() -> None:
@@ -40,7 +40,6 @@ def test_a_changed_signed_note_needs_a_reason_and_the_latest_version() -> None:
     with pytest.raises(PreconditionError):
         amendment(latest(), note(), "other", "re-measured", 1)  # If-Match names version 1
     assert amendment(latest(), note(), "other", "re-measured", 2) == "store"
-    assert amendment(latest(), note(), "other", "re-measured", None) == "store"
 
 
 def test_a_signed_note_stays_signed_and_a_void_one_stays_void() -> None:

@@ -32,9 +32,9 @@ def problem(code: str, location: str, message: str, rule: str) -> InputError:
     return refusal(code, location, message, rule, issue_type="required")
 
 
-def check_match(latest: int, if_match: int | None) -> None:
+def check_match(latest: int, if_match: int) -> None:
     """412 when If-Match names a version other than the latest."""
-    if if_match is not None and if_match != latest:
+    if if_match != latest:
         raise PreconditionError(f"If-Match names version {if_match} but the latest is {latest}")
 
 

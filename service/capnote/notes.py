@@ -332,7 +332,7 @@ class NoteService:
         )
 
     async def amend(
-        self, key: str, body: bytes, who: Principal, if_match: int | None
+        self, key: str, body: bytes, who: Principal, if_match: int
     ) -> StoredNote:
         """Store a new version of a note; a signed note needs a reason and stays signed."""
         key = known_key(key)
@@ -374,7 +374,7 @@ class NoteService:
         except DuplicateVersionError as exc:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
-    async def void(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
+    async def void(self, key: str, body: bytes, who: Principal, if_match: int) -> StoredNote:
         """Mark a note entered-in-error: a new version whose resources say so."""
         key = known_key(key)
         reason = reason_text(json_object(body, allowed={"reason"}).get("reason"), required=True)

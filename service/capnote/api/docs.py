@@ -74,6 +74,7 @@ _MEANING = {
     413: "the body is over the size limit",
     415: "the body is not JSON",
     422: "the input breaks the contract or a blocking rule; every problem is listed",
+    428: "If-Match is missing: read the note and send its ETag",
     500: "an unexpected failure; only an incident id is given",
     503: "the database is not reachable; retry after Retry-After seconds",
 }

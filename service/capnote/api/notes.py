@@ -20,6 +20,7 @@ from capnote.api.auth import CHECK, READ, WRITE, allow
 from capnote.api.deps import Notes
 from capnote.api.docs import AMEND_BODY, CHECK_BODY, NOTE_BODY, VOID_BODY, responses
 from capnote.api.media import JSON, json_body, json_response
+from capnote.errors import PreconditionRequired
 from capnote.findings import refusal
 from capnote.notes import Principal, StoredNote
 
@@ -35,10 +36,12 @@ def _answer(stored: StoredNote, status: int = 200) -> Response:
     return Response(stored.json(), status, _etag(stored), media_type=JSON)
 
 
-def _if_match(value: str | None) -> int | None:
-    """The version in If-Match (W/"3", "3" or 3); None when absent."""
+def _if_match(value: str | None) -> int:
+    """The version in If-Match (W/"3", "3" or 3); required on every change (428)."""
     if value is None:
-        return None
+        raise PreconditionRequired(
+            "If-Match is required: read the note, then send its ETag as If-Match"
+        )
     text = value.strip().removeprefix("W/").strip('"')
     # ASCII digits only: str.isdigit() also takes "²", which int() then refuses; nine digits
     # at most, so the number fits every engine's version column.
@@ -166,7 +169,7 @@ async def _change(
 @router.put(
     "/{note_id}",
     openapi_extra=AMEND_BODY,
-    responses=responses(200, 404, 409, 412, 422, model=NoteAnswer),
+    responses=responses(200, 404, 409, 412, 422, 428, model=NoteAnswer),
 )
 async def amend_note(
     request: Request,
@@ -182,7 +185,7 @@ async def amend_note(
 @router.post(
     "/{note_id}/void",
     openapi_extra=VOID_BODY,
-    responses=responses(200, 404, 412, 422, model=NoteAnswer),
+    responses=responses(200, 404, 412, 422, 428, model=NoteAnswer),
 )
 async def void_note(
     request: Request,

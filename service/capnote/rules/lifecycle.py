@@ -28,7 +28,7 @@ class Latest:
 
 
 def amendment(
-    latest: Latest, note: Note, content_hash: str, reason: str | None, if_match: int | None
+    latest: Latest, note: Note, content_hash: str, reason: str | None, if_match: int
 ) -> Decision:
     """Whether an amendment is stored: the same content again is a retry that landed; a
     void note cannot change; a signed note needs a reason and stays signed; an amendment
@@ -72,9 +72,9 @@ def amendment(
     return "store"
 
 
-def voiding(latest: Latest, if_match: int | None) -> Decision:
+def voiding(latest: Latest, if_match: int) -> Decision:
     """Whether a void is stored: a void note is voided already (a retry, or someone else
-    did); otherwise If-Match, when given, must name the latest version."""
+    did); otherwise If-Match must name the latest version."""
     if latest.status == "void":
         return "already-stored"
     check_match(latest.version, if_match)
