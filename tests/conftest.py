@@ -132,10 +132,10 @@ class SyncNotes:
     def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredNote]:
         return self.run(self.service.submit(payload, who))
 
-    def amend(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
+    def amend(self, key: str, body: bytes, who: Principal, if_match: int) -> StoredNote:
         return self.run(self.service.amend(key, body, who, if_match))
 
-    def void(self, key: str, body: bytes, who: Principal, if_match: int | None) -> StoredNote:
+    def void(self, key: str, body: bytes, who: Principal, if_match: int) -> StoredNote:
         return self.run(self.service.void(key, body, who, if_match))
 
     def get(self, key: str, version: int | None = None) -> StoredNote:

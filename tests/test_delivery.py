@@ -145,7 +145,7 @@ def test_an_amendment_updates_what_the_receiver_holds(setup: Any) -> None:
         changed = json.loads(notes(1)[0])
         changed["result"]["opening"]["horizontal_mm"] = 4.0
         body = json.dumps({"reason": "re-measured", "note": changed}).encode()
-        service.amend(stored.key, body, WHO, None)
+        service.amend(stored.key, body, WHO, 1)
         drain(service, worker, clock, rounds=2)
         service.run(worker.aclose())
     assert states(service) == Counter({"delivered": 2})

@@ -13,6 +13,7 @@ import threading
 import time
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
+from typing import Any
 
 import orjson
 import pytest
@@ -25,7 +26,9 @@ from sqlmodel import Session, select
 from capnote.app import create_app
 from capnote.assess import Assessor
 from capnote.config import Settings
+from capnote.fhir.common import stable_uuid
 from capnote.fhir.readmodel import ROLE_MAX, parse_id, resource_id
+from capnote.note import Note
 from capnote.notes import NoteService, Principal, content_hash, note_key
 from capnote.policy import load_policy
 from capnote.store.base import FAILED, PENDING, Store
@@ -284,6 +287,35 @@ def test_codec_round_trips(assessor: Assessor) -> None:
     )
 
 
+def _as_of_revision_0002(
+    note: Note, bundle: dict[str, Any], roles: tuple[str, ...]
+) -> tuple[dict[str, Any], tuple[str, ...]]:
+    """The Bundle as capnote emitted it when 0003 was written: repeated items were named by
+    their position (iop-after-0, series-0, prophylaxis-0-before, take-home-0), each UUID
+    being uuid5 of the note identifier and that role."""
+    counts: dict[str, int] = {}
+    drops: dict[str, int] = {}
+    old_roles = []
+    for role in roles:
+        prefix = next(
+            (p for p in ("iop-after", "series", "take-home") if role.startswith(p + "-")), None
+        )
+        if prefix is not None:
+            old_roles.append(f"{prefix}-{counts.setdefault(prefix, 0)}")
+            counts[prefix] += 1
+        elif role.startswith("prophylaxis-"):
+            index = drops.setdefault(role.rsplit("-", 1)[0], len(drops))
+            old_roles.append(
+                f"prophylaxis-{index}-{'before' if role.endswith('-pre') else 'after'}"
+            )
+        else:
+            old_roles.append(role)
+    text_form = orjson.dumps(bundle).decode()
+    for new, old in zip(roles, old_roles, strict=True):
+        text_form = text_form.replace(stable_uuid(note, new), stable_uuid(note, old))
+    return orjson.loads(text_form), tuple(old_roles)
+
+
 def test_migration_0003_converts_stored_versions(database_url: str) -> None:
     # A store at revision 0002 holding a version in the old layout (Bundle as text).
     engine = make_engine(database_url)
@@ -298,6 +330,7 @@ def test_migration_0003_converts_stored_versions(database_url: str) -> None:
     assert result.bundle is not None
     key = note_key(result.note)
     note_json = result.note.model_dump_json(exclude_none=True)
+    old_bundle, old_roles = _as_of_revision_0002(result.note, result.bundle, result.roles)
     with engine.begin() as connection:
         connection.execute(
             text(
@@ -316,7 +349,7 @@ def test_migration_0003_converts_stored_versions(database_url: str) -> None:
                 "eye": result.note.eye,
                 "at": NOW,
                 "nj": note_json,
-                "bj": orjson.dumps(result.bundle).decode(),
+                "bj": orjson.dumps(old_bundle).decode(),
             },
         )
     upgrade(engine)
@@ -324,12 +357,12 @@ def test_migration_0003_converts_stored_versions(database_url: str) -> None:
         row = session.exec(select(NoteVersion)).one()
         index = session.exec(select(FhirIndex)).all()
     engine.dispose()
-    assert orjson.loads(unpack_bundle(bytes(row.bundle))) == result.bundle
-    assert tuple(r for _k, r in unpack_roles(row.roles)) == result.roles
+    assert orjson.loads(unpack_bundle(bytes(row.bundle))) == old_bundle
+    assert tuple(r for _k, r in unpack_roles(row.roles)) == old_roles
     assert row.content_hash == content_hash(note_json)
     assert sorted(i.role for i in index) == sorted(
         r
-        for r, e in zip(result.roles, result.bundle["entry"], strict=True)
+        for r, e in zip(old_roles, old_bundle["entry"], strict=True)
         if e["resource"]["resourceType"] in ("Procedure", "ServiceRequest")
     )
     assert all(i.latest for i in index)

@@ -15,6 +15,12 @@ from capnote.errors import EmissionError
 from capnote.fhir.bindings import status_problem
 from capnote.fhir.codes import RESOURCE_KEY
 from capnote.fhir.common import Emitted, Entry, Version, VersionContext, key_query
+from capnote.fhir.identity import (
+    prophylaxis_roles,
+    reading_roles,
+    take_home_roles,
+    treatment_roles,
+)
 from capnote.fhir.observations import observations
 from capnote.fhir.procedure import procedure
 from capnote.fhir.requests import (
@@ -40,14 +46,20 @@ def entries(
     made = observations(ctx, proc, derived)
     out = [proc, *made]
     out += [service_request(ctx, proc, item) for item in due]
-    for i, drop in enumerate(note.plan.prophylaxis):
-        out += administrations(ctx, proc, drop, i)
-    readings = {e.role: e for e in made if e.role.startswith("iop-after-")}
-    for i, given in enumerate(note.result.pressure_treatment):
+    plan = note.plan
+    for name, drop in zip(prophylaxis_roles(plan.prophylaxis), plan.prophylaxis, strict=True):
+        out += administrations(ctx, proc, drop, name)
+    by_role = {e.role: e for e in made}
+    reading = reading_roles(note.result.iop_after)
+    given = note.result.pressure_treatment
+    for i, (role, treatment) in enumerate(zip(treatment_roles(given), given, strict=True)):
         reason = derived.pathway.treated_reading[i]
-        entry = readings.get(f"iop-after-{reason}") if reason is not None else None
-        out.append(pressure_treatment(ctx, proc, given, i, entry))
-    out += [medication_request(ctx, proc, drop, i) for i, drop in enumerate(note.plan.take_home)]
+        entry = by_role.get(reading[reason]) if reason is not None else None
+        out.append(pressure_treatment(ctx, proc, treatment, role, entry))
+    out += [
+        medication_request(ctx, proc, drop, role)
+        for role, drop in zip(take_home_roles(plan.take_home), plan.take_home, strict=True)
+    ]
     return out
 
 
@@ -82,6 +94,41 @@ def withdrawn(previous: Emitted, kept: set[str]) -> list[Entry]:
         resource["status"] = _WITHDRAWN[resource["resourceType"]]
         out.append(Entry(key, resource, key_query(key), role))
     return out
+
+
+# Where an Observation holds what was measured or worked out.
+_VALUE = ("valueQuantity", "valueString", "valueCodeableConcept", "valueInteger", "component")
+# Statuses an unchanged Observation keeps from the version before.
+_KEPT = frozenset({"final", "amended", "corrected"})
+
+
+def restatused(items: list[Entry], previous: Emitted) -> None:
+    """Mark, in an amendment of a signed note, only the Observations it changed.
+
+    Unchanged, an Observation keeps the status it had; changed, a measurement whose value
+    changed is ``corrected`` (R4 ObservationStatus: modified to correct an error in the
+    result) and anything else ``amended`` (modified, including new information: a derived
+    value counted again, a time or method put right); a new one is ``final``. Marking
+    every Observation amended after any change would tell the receiver that results moved
+    which nobody touched."""
+    before = {
+        e["fullUrl"].removeprefix("urn:uuid:"): e["resource"]
+        for e in previous.bundle.get("entry", [])
+    }
+    for item in items:
+        resource, old = item.resource, before.get(item.key)
+        if resource["resourceType"] != "Observation" or old is None:
+            continue
+        if _without_status(resource) == _without_status(old):
+            resource["status"] = old["status"] if old["status"] in _KEPT else "amended"
+        elif "derivedFrom" not in resource and any(resource.get(k) != old.get(k) for k in _VALUE):
+            resource["status"] = "corrected"
+        else:
+            resource["status"] = "amended"
+
+
+def _without_status(resource: dict[str, Any]) -> dict[str, Any]:
+    return {k: v for k, v in resource.items() if k != "status"}
 
 
 class OutputCheck(StrEnum):
@@ -133,6 +180,8 @@ def emit(
     ctx = VersionContext(note, version)
     items = entries(note, derived, due, version, ctx)
     if version.previous is not None:
+        if ctx.amended:
+            restatused(items, version.previous)
         items += withdrawn(version.previous, {e.key for e in items})
     result: dict[str, Any] = {
         "resourceType": "Bundle",

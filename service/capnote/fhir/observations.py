@@ -12,6 +12,7 @@ from capnote.derive import Derived
 from capnote.fhir import codes
 from capnote.fhir.codes import LOINC, OBS_CATEGORY, SNOMED, coding, concept, own, quantity
 from capnote.fhir.common import Entry, VersionContext, keyed, keyed_entry, when
+from capnote.fhir.identity import reading_roles, series_roles
 from capnote.note import IopReading, VisualAcuity
 
 _METHOD = {
@@ -36,7 +37,8 @@ class ObservationMaker:
     def __init__(self, ctx: VersionContext, procedure: Entry) -> None:
         self.ctx = ctx
         self.procedure = procedure
-        self.status = ctx.status("final", draft="preliminary", amended="amended")
+        # An amendment marks only what it changed (capnote.fhir.bundle.restatused).
+        self.status = ctx.status("final", draft="preliminary")
         self.part_of = [procedure.reference]
         self.performer = [ctx.clinician]
         self.body_site = _BODY_SITE[ctx.note.eye]
@@ -119,7 +121,10 @@ def observations(ctx: VersionContext, procedure: Entry, derived: Derived) -> lis
 
     before = make.iop("iop-before", note.before.iop, start)
     out.append(before)
-    after = [make.iop(f"iop-after-{i}", r, finish) for i, r in enumerate(note.result.iop_after)]
+    readings = note.result.iop_after
+    after = [
+        make.iop(role, r, finish) for role, r in zip(reading_roles(readings), readings, strict=True)
+    ]
     out += after
     if note.before.visual_acuity is not None:
         logmar = derived.acuity.before_logmar
@@ -130,7 +135,7 @@ def observations(ctx: VersionContext, procedure: Entry, derived: Derived) -> lis
 
     series = [
         make.make(
-            f"series-{i}",
+            role,
             "procedure",
             concept(own("laser-series")),
             start,
@@ -139,7 +144,7 @@ def observations(ctx: VersionContext, procedure: Entry, derived: Derived) -> lis
                 part("pulse-count", quantity(s.pulses, "pulses", "{pulses}")),
             ],
         )
-        for i, s in enumerate(note.laser.series)
+        for role, s in zip(series_roles(note.laser.series), note.laser.series, strict=True)
     ]
     out += series
     from_series = [e.reference for e in series]

@@ -71,8 +71,12 @@ def _drug(agent: str, strength: float | None) -> dict[str, Any]:
     return concept(text=f"{agent}{strength_text} eye drops")
 
 
+# Short, so a drop's role fits a read API id (capnote.fhir.identity).
+_WHEN_ROLE = {"before": "pre", "after": "post"}
+
+
 def administrations(
-    ctx: VersionContext, procedure: Entry, drop: ClinicDrop, index: int
+    ctx: VersionContext, procedure: Entry, drop: ClinicDrop, name: str
 ) -> list[Entry]:
     """A prophylaxis drop given in clinic: one administration per time it was given."""
     note = ctx.note
@@ -83,7 +87,7 @@ def administrations(
     moments["both"] = moments["before"] + moments["after"]
     out = []
     for label, moment in moments[drop.timing]:
-        role = f"prophylaxis-{index}-{label}"
+        role = f"{name}-{_WHEN_ROLE[label]}"
         key, resource = keyed(ctx, role, "MedicationAdministration")
         resource["status"] = ctx.status("completed")
         resource["partOf"] = [procedure.reference]
@@ -113,11 +117,10 @@ def pressure_treatment(
     ctx: VersionContext,
     procedure: Entry,
     given: PressureTreatment,
-    index: int,
+    role: str,
     reason: Entry | None,
 ) -> Entry:
     """A treatment given in clinic for a raised IOP after the laser, as given."""
-    role = f"pressure-treatment-{index}"
     key, resource = keyed(ctx, role, "MedicationAdministration")
     resource["status"] = ctx.status("completed")
     resource["category"] = concept(own("iop-treatment"))
@@ -140,10 +143,9 @@ def pressure_treatment(
     return keyed_entry(key, resource, role)
 
 
-def medication_request(ctx: VersionContext, procedure: Entry, drop: HomeDrop, index: int) -> Entry:
+def medication_request(ctx: VersionContext, procedure: Entry, drop: HomeDrop, role: str) -> Entry:
     """Drops to take home, with how often and for how long."""
     note = ctx.note
-    role = f"take-home-{index}"
     key, resource = keyed(ctx, role, "MedicationRequest")
     resource["status"] = ctx.status("active", draft="draft")
     resource["intent"] = "order"
