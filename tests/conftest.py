@@ -79,10 +79,20 @@ def on_store(url: str, work: Callable[[Store], Coroutine[Any, Any, T]]) -> T:
     return asyncio.run(run())
 
 
-def new_token(url: str, role: str, label: str, now: datetime = NOW) -> tuple[str, int]:
+def new_token(
+    url: str,
+    role: str,
+    label: str,
+    now: datetime = NOW,
+    *,
+    staff: tuple[str, str] | None = None,
+    expires_at: datetime | None = None,
+) -> tuple[str, int]:
     """A token in the database at url: (the token, its id)."""
     migrate(url)
-    return on_store(url, lambda store: store.new_token(role, label, now))
+    return on_store(
+        url, lambda store: store.new_token(role, label, now, staff=staff, expires_at=expires_at)
+    )
 
 
 def revoke_token(url: str, token_id: int, now: datetime = NOW) -> bool:

@@ -106,6 +106,21 @@ def apply(store: Store, bundle: dict[str, Any]) -> tuple[int, dict[str, Any] | s
             rid = found[0] if found else uuid.uuid4().hex
             ids[entry["fullUrl"]] = f"{kind}/{rid}"
             plan.append((kind, rid, "200 OK" if found else "201 Created", True))
+        elif request.get("method") == "PUT" and request.get("url", "").count("/") == 1:
+            # Update as create with the client's id (R4 http.html, "Update as Create"): the
+            # id in the URL must be the resource's; the same content again makes no version.
+            url_kind, rid = request["url"].split("/")
+            if url_kind != kind or resource.get("id") != rid:
+                return 400, "the update's URL does not name the resource"
+            ids[entry["fullUrl"]] = f"{kind}/{rid}"
+            plan.append(
+                (
+                    kind,
+                    rid,
+                    "200 OK" if rid in staged.get(kind, {}) else "201 Created",
+                    rid not in staged.get(kind, {}),
+                )
+            )
         else:
             return 400, "unsupported request in transaction"
     answers = []

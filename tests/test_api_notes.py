@@ -168,8 +168,16 @@ def test_void_marks_everything_entered_in_error(api: Api) -> None:
     r = api.client.post(url, content=json.dumps({"reason": "wrong patient"}), headers=h)
     assert r.status_code == 200
     assert r.json()["status"] == "void"
-    statuses = {e["resource"]["status"] for e in r.json()["bundle"]["entry"]}
+    entries = r.json()["bundle"]["entry"]
+    statuses = {e["resource"]["status"] for e in entries if "status" in e["resource"]}
     assert statuses == {"entered-in-error"}
+    # The void's own record: who voided it, why, as a DELETE over every resource (R4
+    # Provenance); it is the one entry without a status.
+    [provenance] = [e["resource"] for e in entries if "status" not in e["resource"]]
+    assert provenance["resourceType"] == "Provenance"
+    assert provenance["activity"]["coding"][0]["code"] == "DELETE"
+    assert provenance["reason"] == [{"text": "wrong patient"}]
+    assert len(provenance["target"]) == len(entries) - 1
     assert r4_problems(r.json()["bundle"]) == []
     amend = api.client.put(
         f"/notes/{key}",

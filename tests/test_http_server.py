@@ -85,9 +85,11 @@ def server(database_url: str, workdir: Path, workers: int = 1) -> Iterator[str]:
 
 
 def token(database_url: str, role: str) -> str:
-    return run_cli(database_url, "token", "new", "--role", role, "--label", f"http {role}").split()[
-        -1
-    ]
+    # A clinician token belongs to a named person with a staff identifier.
+    staff = ["--staff-id", "https://harbourside-eye.example/fhir/sid/staff|S-9"]
+    extra = staff if role == "clinician" else []
+    args = ("token", "new", "--role", role, "--label", f"http {role}", *extra)
+    return run_cli(database_url, *args).split()[-1]
 
 
 def test_submit_resend_and_read_over_http(database_url: str, tmp_path: Path) -> None:
@@ -156,9 +158,47 @@ def test_token_commands(database_url: str) -> None:
     )
     assert created.split()[-1].startswith("cap_")
     listing = run_cli(database_url, "token", "list")
-    assert "auditor\trecords office" in listing
+    header, row = listing.splitlines()
+    assert header.split("\t") == [
+        "id",
+        "role",
+        "label",
+        "staff",
+        "created",
+        "expires",
+        "last used",
+        "state",
+    ]
+    assert "auditor\trecords office\t-\t" in row
+    assert row.endswith("\tnever\tnever\tlive")  # no expiry, never used
     assert created.split()[-1] not in listing  # only hashes are kept
-    token_id = listing.split()[0]
+    token_id = row.split()[0]
+    person = run_cli(
+        database_url,
+        *("token", "new", "--role", "clinician", "--label", "Dr Ada Quill"),
+        *(
+            "--staff-id",
+            "https://harbourside-eye.example/fhir/sid/staff|S-1",
+            "--expires-days",
+            "30",
+        ),
+    )
+    assert "expires" in person
+    clinician = run_cli(database_url, "token", "list").splitlines()[-1].split("\t")
+    assert clinician[2:4] == ["Dr Ada Quill", "https://harbourside-eye.example/fhir/sid/staff|S-1"]
+    assert clinician[5] != "never"
+    assert clinician[7] == "live"
+    nameless = subprocess.run(  # a clinician token must name its person
+        [*CAPNOTE, "token", "new", "--role", "clinician", "--label", "x"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+        cwd=ROOT,
+        check=False,
+        env={**os.environ, "CAPNOTE_DATABASE_URL": database_url},
+    )
+    assert nameless.returncode == 2
+    assert "--staff-id" in nameless.stderr
     assert "revoked" in run_cli(database_url, "token", "revoke", token_id)
     assert "revoked" in run_cli(database_url, "token", "list")
     bad = subprocess.run(
@@ -183,7 +223,7 @@ def test_token_commands(database_url: str) -> None:
     assert long.returncode == 2, long.stderr
     assert "1 to 100 characters" in long.stderr
     assert "Traceback" not in long.stderr
-    assert run_cli(database_url, "token", "list").count("\n") == 1  # nothing was stored
+    assert run_cli(database_url, "token", "list").count("\n") == 3  # header and two tokens
 
 
 def test_a_forwarded_address_longer_than_the_audit_column(

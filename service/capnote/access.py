@@ -3,6 +3,9 @@ once); on SQLite a few microseconds on the event loop, on PostgreSQL one round t
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from datetime import datetime, timedelta
+
 from capnote.errors import AuthenticationError, ForbiddenError
 from capnote.findings import refusal
 from capnote.notes import Principal
@@ -10,12 +13,17 @@ from capnote.plain_text import printable
 from capnote.store.base import Store
 from capnote.tokens import REMOTE_MAX, hash_token
 
+# How often a token's last-used time is written: often enough for `token list` to show
+# whether a token is still in use, rarely enough that reads stay reads.
+TOUCH_EVERY = timedelta(minutes=1)
+
 
 class Access:
     """Tokens to principals."""
 
-    def __init__(self, store: Store) -> None:
+    def __init__(self, store: Store, clock: Callable[[], datetime]) -> None:
         self.store = store
+        self.clock = clock
 
     async def principal(
         self, authorization: str, allowed: frozenset[str], remote: str | None
@@ -28,9 +36,21 @@ class Access:
         row = await self.store.token(hash_token(token.strip()))
         if row is None:
             raise AuthenticationError("the token is unknown or revoked")
+        now = self.clock()
+        if row.expires_at is not None and row.expires_at <= now:
+            raise AuthenticationError("the token has expired; ask the operator for a new one")
+        if row.last_used_at is None or now - row.last_used_at >= TOUCH_EVERY:
+            await self.store.token_used(row.id, now)
+        who = Principal(
+            label=row.label,
+            role=row.role,
+            remote=_checked_remote(remote),
+            token_id=row.id,
+            staff=row.staff,
+        )
         if row.role not in allowed:
             raise ForbiddenError(f"the role {row.role} may not do this")
-        return Principal(label=row.label, role=row.role, remote=_checked_remote(remote))
+        return who
 
 
 def _checked_remote(remote: str | None) -> str | None:

@@ -86,7 +86,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     app.state.notes = NoteService(store, assessor, clock, forward=receiver is not None)
     app.state.fhir_reads = FhirReads(store)
     app.state.audit_trail = AuditTrail(store)
-    app.state.access = Access(store)
+    app.state.access = Access(store, clock)
     app.state.settings = settings
     errors.install(app)
     docs.install(app)

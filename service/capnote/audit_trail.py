@@ -26,6 +26,8 @@ class AuditTrail:
                 "version": r.version,
                 "remote": r.remote,
                 "outcome": r.outcome,
+                "token_id": r.token_id,
+                "detail": r.detail,
             }
             for r in rows
         ]

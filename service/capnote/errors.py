@@ -5,7 +5,7 @@
     ├── NotFoundError        (404, not-found)   no such record
     ├── ConflictError        (409, conflict)    same identifier, different content
     ├── PreconditionError    (412, conflict)    If-Match names a version that is not the latest
-    ├── PreconditionRequired (428, required)    an amend or void without If-Match
+    ├── PreconditionRequiredError (428, required)  an amend or void without If-Match
     ├── AuthenticationError  (401, login)       no token, or one capnote does not know
     ├── ForbiddenError       (403, forbidden)   the token's role may not do this
     ├── PayloadError         (413/415, ...)     a body too large or of the wrong media type
@@ -76,7 +76,7 @@ class PreconditionError(CapnoteError):
     issue_type = "conflict"
 
 
-class PreconditionRequired(CapnoteError):
+class PreconditionRequiredError(CapnoteError):
     """An amend or a void came without If-Match: without it the last writer would win
     silently over a change the sender never saw."""
 

@@ -22,7 +22,8 @@ import orjson
 from capnote.assess import Assessment, Assessor
 from capnote.derive import PriorSession, recounted, total_energy_mj
 from capnote.errors import ConflictError, InputError, NotFoundError, PreconditionError
-from capnote.fhir.common import Emitted, Version, stable_uuid
+from capnote.fhir.common import Emitted, KeyMaker, Version, stable_uuid
+from capnote.fhir.provenance import Actor, provenance_entry
 from capnote.fhir.readmodel import read_references, searchables
 from capnote.findings import Finding, has_errors
 from capnote.note import Note
@@ -47,11 +48,15 @@ _ATTEMPTS = 3
 
 @dataclass(frozen=True, slots=True)
 class Principal:
-    """Who is asking: a token's label and role, and where from."""
+    """Who is asking: the person or system client a token belongs to (label: the display
+    name; staff: a person's staff identifier, system and value), its role, its token id
+    (labels may repeat; ids do not) and where the request came from."""
 
     label: str
     role: str
     remote: str | None = None
+    token_id: int | None = None
+    staff: tuple[str, str] | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -67,7 +72,45 @@ class Change:
     emitted: Version
     status: str
     reason: str | None
-    action: str  # for the audit trail: create, amend or void
+    action: str  # for the audit trail and the Provenance: create, amend, void or recount
+    # A version capnote writes itself keeps the signature of the version it recounts.
+    carried: Signature | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Signature:
+    """Who vouched for a signed version, and when: a clinician's own token signs as that
+    person; a system client (the EHR) sends what the note's performer signed there."""
+
+    by: str
+    staff: tuple[str, str] | None
+    at: datetime
+
+    def actor(self) -> Actor:
+        """The attester of the version's Provenance."""
+        return Actor(self.by, self.staff)
+
+
+def signature(change: Change, who: Principal, now: datetime) -> Signature | None:
+    """The signature a stored version carries: none for a draft or a void; the carried one
+    for a version capnote recounts (it signs nothing itself)."""
+    if change.status != "final":
+        return None
+    if change.carried is not None or who.role == SYSTEM.role:
+        return change.carried
+    if who.role == "clinician":
+        return Signature(who.label, who.staff, now)
+    performer = change.note.performer
+    staff = (performer.identifier.system, performer.identifier.value)
+    return Signature(performer.name, staff, now)
+
+
+def signature_of(row: VersionRow) -> Signature | None:
+    """The signature a stored version carries (None before signers were recorded)."""
+    if row.signed_by is None or row.signed_at is None:
+        return None
+    system, _, value = (row.signed_by_staff or "").partition("|")
+    return Signature(row.signed_by, (system, value) if value else None, row.signed_at)
 
 
 @dataclass(frozen=True, slots=True)
@@ -89,6 +132,7 @@ class StoredNote:
     bundle_json: bytes
     # Where each Bundle entry is read on the FHIR API ("Observation/<id>"), in entry order.
     resources: tuple[str, ...]
+    signed: Signature | None = None
 
     def json(self) -> bytes:
         """The JSON body for this version."""
@@ -99,6 +143,7 @@ class StoredNote:
                 "status": self.status,
                 "recorded_at": self.recorded_at.isoformat(),
                 "reason": self.reason,
+                "signed": _signed_view(self.signed),
                 "note": orjson.Fragment(self.note_json),
                 **self.result,
                 "resources": self.resources,
@@ -110,6 +155,13 @@ class StoredNote:
         """The same body as data."""
         data: dict[str, Any] = orjson.loads(self.json())
         return data
+
+
+def _signed_view(signed: Signature | None) -> dict[str, Any] | None:
+    if signed is None:
+        return None
+    staff = None if signed.staff is None else {"system": signed.staff[0], "value": signed.staff[1]}
+    return {"by": signed.by, "staff_identifier": staff, "at": signed.at.isoformat()}
 
 
 SYSTEM = Principal("capnote (system)", "system")
@@ -144,6 +196,7 @@ def _stored(row: VersionRow) -> StoredNote:
         result=orjson.loads(row.result_json),
         bundle_json=unpack_bundle(row.bundle),
         resources=read_references(row.note_key, unpack_roles(row.roles)),
+        signed=signature_of(row),
     )
 
 
@@ -151,6 +204,29 @@ def emitted_before(row: VersionRow) -> Emitted:
     """What a stored version emitted: its Bundle and the roles of its entries."""
     roles = tuple(role for _kind, role in unpack_roles(row.roles))
     return Emitted(orjson.loads(unpack_bundle(row.bundle)), roles)
+
+
+def _with_provenance(
+    bundle: dict[str, Any],
+    roles: tuple[str, ...],
+    change: Change,
+    who: Principal,
+    now: datetime,
+    signed: Signature | None,
+) -> tuple[dict[str, Any], tuple[str, ...]]:
+    """The version's Bundle with its Provenance last: every entry its target, the sender its
+    author, the signer its attester (capnote.fhir.provenance)."""
+    entry, role = provenance_entry(
+        KeyMaker(change.note),
+        change.emitted.number,
+        [e["fullUrl"] for e in bundle["entry"]],
+        change.action,
+        now,
+        Actor(who.label, who.staff if who.role == "clinician" else None, who.token_id),
+        None if signed is None else signed.actor(),
+        change.reason,
+    )
+    return {**bundle, "entry": [*bundle["entry"], entry]}, (*roles, role)
 
 
 class NoteService:
@@ -204,8 +280,10 @@ class NoteService:
         if result.bundle is None or result.derived is None:  # complete() always sets both
             raise RuntimeError("assessment of a checked note came back incomplete")
         view = assessment_view(result)
-        bundle_json = orjson.dumps(result.bundle)
-        kinds = [e["resource"]["resourceType"] for e in result.bundle["entry"]]
+        signed = signature(change, who, now)
+        bundle, roles = _with_provenance(result.bundle, result.roles, change, who, now, signed)
+        bundle_json = orjson.dumps(bundle)
+        kinds = [e["resource"]["resourceType"] for e in bundle["entry"]]
         row = VersionRow(
             note_key=key,
             version=change.emitted.number,
@@ -221,13 +299,19 @@ class NoteService:
             note_json=note_json,
             result_json=orjson.dumps(view).decode(),
             bundle=pack_bundle(bundle_json),
-            roles=pack_roles(kinds, result.roles),
+            roles=pack_roles(kinds, roles),
             reason=change.reason,
             recorded_at=now,
             recorded_by=who.label,
+            recorded_by_token=who.token_id,
+            signed_by=None if signed is None else signed.by,
+            signed_by_staff=None
+            if signed is None or signed.staff is None
+            else "|".join(signed.staff),
+            signed_at=None if signed is None else signed.at,
         )
-        index = tuple(searchables(result.bundle, result.roles))
-        audit = AuditRow(now, who.label, who.role, change.action, who.remote)
+        index = tuple(searchables(bundle, roles))
+        audit = AuditRow(now, who.label, who.role, change.action, who.remote, who.token_id)
         stored = StoredNote(
             key=key,
             version=row.version,
@@ -238,7 +322,8 @@ class NoteService:
             note_json=note_json,
             result=view,
             bundle_json=bundle_json,
-            resources=read_references(key, tuple(zip(kinds, result.roles, strict=True))),
+            resources=read_references(key, tuple(zip(kinds, roles, strict=True))),
+            signed=signed,
         )
         return NewVersion(row, index, audit), stored
 
@@ -293,6 +378,7 @@ class NoteService:
             f"session number and cumulative energy counted again: an earlier session of this "
             f"eye (note {cause.key}) was {what}",
             "recount",
+            signature_of(latest),
         )
         new, _stored_note = self.prepare(change, SYSTEM)
         return new
@@ -331,9 +417,7 @@ class NoteService:
             f"amend it with PUT /notes/{key}"
         )
 
-    async def amend(
-        self, key: str, body: bytes, who: Principal, if_match: int
-    ) -> StoredNote:
+    async def amend(self, key: str, body: bytes, who: Principal, if_match: int) -> StoredNote:
         """Store a new version of a note; a signed note needs a reason and stays signed."""
         key = known_key(key)
         wrapper = json_object(body, allowed={"note", "reason"})
@@ -425,6 +509,8 @@ class NoteService:
                 "reason": r.reason,
                 "recorded_at": r.recorded_at.isoformat(),
                 "recorded_by": r.recorded_by,
+                "recorded_by_token": r.recorded_by_token,
+                "signed": _signed_view(signature_of(r)),
             }
             for r in rows
         ]

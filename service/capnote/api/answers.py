@@ -49,6 +49,22 @@ class AssessmentAnswer(Answer):
     caution: str
 
 
+class StaffIdentifier(Answer):
+    """A person's identifier in the site's staff system."""
+
+    system: str
+    value: str
+
+
+class Signed(Answer):
+    """Who vouched for a signed version: a clinician signing with their own token, or the
+    note's performer as the sending system (the EHR) records them."""
+
+    by: str
+    staff_identifier: StaffIdentifier | None
+    at: datetime
+
+
 class NoteAnswer(AssessmentAnswer):
     """One stored version of a note (POST /notes, GET /notes/{id}, PUT, void)."""
 
@@ -57,6 +73,9 @@ class NoteAnswer(AssessmentAnswer):
     status: Literal["draft", "final", "void"]
     recorded_at: datetime
     reason: str | None
+    signed: Signed | None = Field(
+        description="who signed this version and when (none for a draft or a void)"
+    )
     note: Note
     resources: list[str] = Field(
         description="where each Bundle entry is read on the FHIR API, in entry order"
@@ -87,7 +106,11 @@ class VersionSummary(Answer):
     status: Literal["draft", "final", "void"]
     reason: str | None
     recorded_at: datetime
-    recorded_by: str
+    recorded_by: str = Field(description="the person or system client the token belongs to")
+    recorded_by_token: int | None = Field(
+        description="the id of the token that stored it (labels may repeat; ids do not)"
+    )
+    signed: Signed | None
 
 
 class VersionsAnswer(Answer):
@@ -128,6 +151,11 @@ class AuditEntryAnswer(Answer):
     version: int | None
     remote: str | None
     outcome: str
+    token_id: int | None = Field(description="the token used (labels may repeat; ids do not)")
+    detail: str | None = Field(
+        description="what was read or searched for, or why a request was refused: "
+        "resource ids and search parameters only"
+    )
 
 
 class AuditAnswer(Answer):

@@ -20,7 +20,7 @@ from capnote.api.auth import CHECK, READ, WRITE, allow
 from capnote.api.deps import Notes
 from capnote.api.docs import AMEND_BODY, CHECK_BODY, NOTE_BODY, VOID_BODY, responses
 from capnote.api.media import JSON, json_body, json_response
-from capnote.errors import PreconditionRequired
+from capnote.errors import PreconditionRequiredError
 from capnote.findings import refusal
 from capnote.notes import Principal, StoredNote
 
@@ -39,7 +39,7 @@ def _answer(stored: StoredNote, status: int = 200) -> Response:
 def _if_match(value: str | None) -> int:
     """The version in If-Match (W/"3", "3" or 3); required on every change (428)."""
     if value is None:
-        raise PreconditionRequired(
+        raise PreconditionRequiredError(
             "If-Match is required: read the note, then send its ETag as If-Match"
         )
     text = value.strip().removeprefix("W/").strip('"')

@@ -12,13 +12,17 @@ import asyncio
 import os
 import signal
 from collections.abc import Awaitable, Callable
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from typing import TYPE_CHECKING, Annotated, TypeVar
 
 import typer
 
 from capnote.config import Settings
+from capnote.plain_text import printable
 from capnote.tokens import LABEL_MAX
+
+# The demo clinician's staff identifier (invented, like the demo notes' clinicians).
+DEMO_STAFF = ("https://harbourside-eye.example/fhir/sid/staff", "S-DEMO")
 
 if TYPE_CHECKING:
     from capnote.store.base import Store
@@ -67,30 +71,81 @@ def db_upgrade() -> None:
 @token_app.command("new")
 def token_new(
     role: Annotated[str, typer.Option(help="submitter, clinician, analyst or auditor.")],
-    label: Annotated[str, typer.Option(help="Who or what holds it, e.g. 'EHR interface'.")],
+    label: Annotated[
+        str,
+        typer.Option(
+            help="Whose it is: the person's display name ('Dr Ilona Marsh') or the system "
+            "client's name ('EHR interface'); the audit trail and signatures show it."
+        ),
+    ],
+    staff_id: Annotated[
+        str | None,
+        typer.Option(
+            help="The person's staff identifier as system|value (required for a clinician: "
+            "a signature names who signed)."
+        ),
+    ] = None,
+    expires_days: Annotated[
+        int | None, typer.Option(min=1, max=3650, help="Days until the token stops working.")
+    ] = None,
 ) -> None:
     """Create a token and print it once; only its hash is kept."""
     if role not in ROLES:
         raise typer.BadParameter(f"use one of {', '.join(ROLES)}", param_hint="--role")
+    staff = _staff(staff_id, role)
     if not (0 < len(label.strip()) <= LABEL_MAX and label.isprintable()):
         # Checked here so both engines answer alike (PostgreSQL would refuse it, SQLite keep it).
         raise typer.BadParameter(
             f"printable text of 1 to {LABEL_MAX} characters (this one has {len(label)})",
             param_hint="--label",
         )
+    now = datetime.now(UTC)
+    expires = None if expires_days is None else now + timedelta(days=expires_days)
     token, token_id = _with_store(
-        lambda store: store.new_token(role, label, datetime.now(UTC)), migrate=True
+        lambda store: store.new_token(role, label, now, staff=staff, expires_at=expires),
+        migrate=True,
     )
-    typer.echo(f"token {token_id} ({role}, {label}); shown once, keep it safe:")
+    until = f", expires {expires:%Y-%m-%d %H:%M} UTC" if expires else ""
+    typer.echo(f"token {token_id} ({role}, {printable(label)}{until}); shown once, keep it safe:")
     typer.echo(token)
+
+
+def _staff(text: str | None, role: str) -> tuple[str, str] | None:
+    """A staff identifier from system|value; a clinician token must have one."""
+    if text is None:
+        if role == "clinician":
+            raise typer.BadParameter(
+                "a clinician token belongs to a named person: give --staff-id system|value",
+                param_hint="--staff-id",
+            )
+        return None
+    system, sep, value = text.partition("|")
+    if not (sep and 0 < len(system) <= 255 and 0 < len(value) <= 64 and text.isprintable()):
+        raise typer.BadParameter(
+            "system|value, the system up to 255 and the value up to 64 printable characters",
+            param_hint="--staff-id",
+        )
+    return system, value
 
 
 @token_app.command("list")
 def token_list() -> None:
-    """Every token: id, role, label, created, revoked (never the token itself)."""
+    """Every token: id, role, whose, staff id, created, expires, last used, state (never the
+    token itself)."""
+    now = datetime.now(UTC)
+    typer.echo("id\trole\tlabel\tstaff\tcreated\texpires\tlast used\tstate")
     for row in _with_store(lambda store: store.tokens(), migrate=True):
-        state = f"revoked {row.revoked_at:%Y-%m-%d}" if row.revoked_at else "live"
-        typer.echo(f"{row.id}\t{row.role}\t{row.label}\t{row.created_at:%Y-%m-%d}\t{state}")
+        if row.revoked_at:
+            state = f"revoked {row.revoked_at:%Y-%m-%d}"
+        elif row.expires_at is not None and row.expires_at <= now:
+            state = "expired"
+        else:
+            state = "live"
+        staff = f"{row.staff_system}|{row.staff_value}" if row.staff_value else "-"
+        expires = f"{row.expires_at:%Y-%m-%d %H:%M}" if row.expires_at else "never"
+        used = f"{row.last_used_at:%Y-%m-%d %H:%M}" if row.last_used_at else "never"
+        cells = (row.id, row.role, row.label, staff, f"{row.created_at:%Y-%m-%d}", expires, used)
+        typer.echo("\t".join(printable(str(c)) for c in cells) + f"\t{state}")
 
 
 @token_app.command("revoke")
@@ -206,7 +261,9 @@ def _load_demo(settings: Settings) -> None:
         try:
             for path in demo:
                 await notes.submit(path.read_bytes(), who)
-            token, _id = await notes.store.new_token("clinician", "demo", datetime.now(UTC))
+            token, _id = await notes.store.new_token(
+                "clinician", "Demo Clinician", datetime.now(UTC), staff=DEMO_STAFF
+            )
             return str(token)
         finally:
             await notes.store.aclose()

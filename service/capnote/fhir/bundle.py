@@ -88,7 +88,8 @@ def withdrawn(previous: Emitted, kept: set[str]) -> list[Entry]:
     out = []
     for entry, role in zip(previous.bundle.get("entry", []), previous.roles, strict=True):
         key = entry["fullUrl"].removeprefix("urn:uuid:")
-        if key in kept:
+        # A version's Provenance stays what it was: the record of that version.
+        if key in kept or entry["resource"]["resourceType"] == "Provenance":
             continue
         resource = dict(entry["resource"])
         resource["status"] = _WITHDRAWN[resource["resourceType"]]

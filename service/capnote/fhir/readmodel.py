@@ -28,6 +28,7 @@ READABLE = (
     "ServiceRequest",
     "MedicationRequest",
     "MedicationAdministration",
+    "Provenance",
 )
 SEARCHABLE = ("Procedure", "ServiceRequest")
 _UUID = r"[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}"
@@ -121,7 +122,7 @@ class StoredBundle:
             },
         }
         for name, value in resource.items():
-            if name != "resourceType":
+            if name not in ("resourceType", "id"):  # the read API names it
                 served[name] = _resolved(value, refs)
         return served
 

@@ -61,10 +61,15 @@ class DuplicateVersionError(Exception):
 
 @dataclass(frozen=True, slots=True)
 class TokenRow:
-    """A live token's label and role."""
+    """A live token: whose it is (label: a person's display name or a system client's
+    name; staff: the person's staff identifier) and its role."""
 
+    id: int
     label: str
     role: str
+    staff: tuple[str, str] | None
+    expires_at: datetime | None
+    last_used_at: datetime | None
 
 
 @dataclass(frozen=True, slots=True)
@@ -89,6 +94,10 @@ class VersionRow:
     reason: str | None
     recorded_at: datetime
     recorded_by: str
+    recorded_by_token: int | None = None
+    signed_by: str | None = None
+    signed_by_staff: str | None = None  # system|value
+    signed_at: datetime | None = None
 
 
 VERSION_COLUMNS = tuple(VersionRow.__slots__)
@@ -103,6 +112,9 @@ class AuditRow:
     role: str
     action: str
     remote: str | None
+    token_id: int | None = None
+    detail: str | None = None
+    outcome: str = "ok"
 
 
 @dataclass(frozen=True, slots=True)
@@ -123,6 +135,10 @@ class TokenInfo:
     role: str
     created_at: datetime
     revoked_at: datetime | None
+    staff_system: str | None
+    staff_value: str | None
+    expires_at: datetime | None
+    last_used_at: datetime | None
 
 
 @dataclass(frozen=True, slots=True)
@@ -138,6 +154,8 @@ class AuditRecord:
     version: int | None
     remote: str | None
     outcome: str
+    token_id: int | None
+    detail: str | None
 
 
 @dataclass(frozen=True, slots=True)
@@ -199,9 +217,17 @@ _newest_of_patient = (
     .subquery()
 )
 STATEMENTS: dict[str, ClauseElement] = {
-    "token": select(_TOKEN.c.token_hash, _TOKEN.c.label, _TOKEN.c.role, _TOKEN.c.revoked_at).where(
-        _TOKEN.c.token_hash == bindparam("digest")
-    ),
+    "token": select(
+        _TOKEN.c.token_hash,
+        _TOKEN.c.label,
+        _TOKEN.c.role,
+        _TOKEN.c.revoked_at,
+        _TOKEN.c.id,
+        _TOKEN.c.staff_system,
+        _TOKEN.c.staff_value,
+        _TOKEN.c.expires_at,
+        _TOKEN.c.last_used_at,
+    ).where(_TOKEN.c.token_hash == bindparam("digest")),
     "hashes": select(_NOTE.c.content_hash)
     .where(_NOTE.c.note_key == bindparam("key"))
     .order_by(_NOTE.c.version),
@@ -251,9 +277,19 @@ STATEMENTS: dict[str, ClauseElement] = {
     .values(
         {
             name: bindparam(name)
-            for name in ("at", "actor", "role", "action", "note_key", "version", "remote")
+            for name in (
+                "at",
+                "actor",
+                "role",
+                "action",
+                "note_key",
+                "version",
+                "remote",
+                "outcome",
+                "token_id",
+                "detail",
+            )
         }
-        | {"outcome": "ok"}
     ),
     "add_outbox": insert(_OUTBOX)
     .inline()
@@ -270,8 +306,17 @@ STATEMENTS: dict[str, ClauseElement] = {
 }
 
 
-TOKEN_COLUMNS = ("id", "label", "role", "created_at", "revoked_at")
-AUDIT_COLUMNS = ("id", "at", "actor", "role", "action", "note_key", "version", "remote", "outcome")
+TOKEN_COLUMNS = tuple(f.name for f in fields(TokenInfo))
+AUDIT_COLUMNS = tuple(f.name for f in fields(AuditRecord))
+_TOKEN_NEW = (
+    "token_hash",
+    "role",
+    "label",
+    "created_at",
+    "staff_system",
+    "staff_value",
+    "expires_at",
+)
 OUTBOX_COLUMNS = (
     "id",
     "note_key",
@@ -308,8 +353,11 @@ STATEMENTS.update(
         .where(_NOTE.c.note_key == bindparam("key"))
         .limit(1),
         "add_token": insert(_TOKEN)
-        .values({name: bindparam(name) for name in ("token_hash", "role", "label", "created_at")})
+        .values({name: bindparam(name) for name in _TOKEN_NEW})
         .returning(_TOKEN.c.id),
+        "touch_token": update(_TOKEN)
+        .where(_TOKEN.c.id == bindparam("token_id"))
+        .values(last_used_at=bindparam("at")),
         "tokens": select(*(_TOKEN.c[name] for name in TOKEN_COLUMNS)).order_by(_TOKEN.c.id),
         "revoke_token": update(_TOKEN)
         .where(_TOKEN.c.id == bindparam("token_id"), _TOKEN.c.revoked_at.is_(None))
@@ -667,7 +715,15 @@ class Store(ABC):
 
     # -- tokens ------------------------------------------------------------------------------
 
-    async def new_token(self, role: str, label: str, now: datetime) -> tuple[str, int]:
+    async def new_token(
+        self,
+        role: str,
+        label: str,
+        now: datetime,
+        *,
+        staff: tuple[str, str] | None = None,
+        expires_at: datetime | None = None,
+    ) -> tuple[str, int]:
         """Create a token: (the token, shown once and never stored; its id)."""
         token = new_secret()
         params = {
@@ -675,6 +731,9 @@ class Store(ABC):
             "role": role,
             "label": label,
             "created_at": self._time(now),
+            "staff_system": staff[0] if staff else None,
+            "staff_value": staff[1] if staff else None,
+            "expires_at": None if expires_at is None else self._time(expires_at),
         }
         [(token_id,)] = await self._fetch(self._sql["add_token"], params)
         return token, int(token_id)
@@ -682,6 +741,17 @@ class Store(ABC):
     async def tokens(self) -> list[TokenInfo]:
         """Every token, revoked ones included, oldest first."""
         return _as(TokenInfo, await self._fetch(self._sql["tokens"], {}))
+
+    async def token_used(self, token_id: int, now: datetime) -> None:
+        """Record when a token was last used (the caller writes it at most once a minute)."""
+        await self._fetch(self._sql["touch_token"], {"token_id": token_id, "at": self._time(now)})
+
+    async def record(self, entry: AuditRow, note_key: str | None, version: int | None) -> None:
+        """An audit entry of its own: a read, a search, a refusal, a token made or revoked,
+        a delivery (a stored version's entry is written with the version instead)."""
+        await self._fetch(
+            self._sql["add_audit"], audit_params(entry, note_key, version, self._time)
+        )
 
     async def revoke_token(self, token_id: int, now: datetime) -> bool:
         """Mark a token revoked; False when there is no such live token."""
@@ -771,11 +841,41 @@ class Store(ABC):
 
 
 def token_row(row: Sequence[Any] | None, digest: str) -> TokenRow | None:
-    """A live token from (token_hash, label, role, revoked_at), or None."""
+    """A token that was not revoked, from the "token" statement's row, or None (whether it
+    has expired is the caller's question: it knows the time)."""
     # The hash is compared once more in constant time, though the lookup already matched it.
     if row is None or row[3] is not None or not hmac.compare_digest(row[0], digest):
         return None
-    return TokenRow(label=row[1], role=row[2])
+    _hash, label, role, _revoked, token_id, system, value, expires, used = row
+    return TokenRow(
+        id=int(token_id),
+        label=label,
+        role=role,
+        staff=(system, value) if system and value else None,
+        expires_at=None if expires is None else read_moment(expires),
+        last_used_at=None if used is None else read_moment(used),
+    )
+
+
+def audit_params(
+    entry: AuditRow,
+    note_key: str | None,
+    version: int | None,
+    moment: Callable[[datetime], Any],
+) -> dict[str, Any]:
+    """The parameters of "add_audit" for an entry (moment: the engine's way with times)."""
+    return {
+        "at": moment(entry.at),
+        "actor": entry.actor,
+        "role": entry.role,
+        "action": entry.action,
+        "note_key": note_key,
+        "version": version,
+        "remote": entry.remote,
+        "outcome": entry.outcome,
+        "token_id": entry.token_id,
+        "detail": entry.detail,
+    }
 
 
 def sessions_from_rows(key: str, rows: Sequence[Sequence[Any]]) -> list[PriorSession]:
@@ -800,5 +900,7 @@ def version_row(row: Sequence[Any]) -> VersionRow:
     values = dict(zip(VERSION_COLUMNS, row, strict=True))
     values["started_at"] = read_moment(values["started_at"])
     values["recorded_at"] = read_moment(values["recorded_at"])
+    if values["signed_at"] is not None:
+        values["signed_at"] = read_moment(values["signed_at"])
     values["bundle"] = bytes(values["bundle"])
     return VersionRow(**values)

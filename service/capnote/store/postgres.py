@@ -76,8 +76,9 @@ def _write_statement(retire: bool, forward: bool) -> str:
         " %(index_statuses)s::varchar[], %(index_dates)s::timestamptz[])"
         " AS x(role, kind, status, date))",
         "a AS (INSERT INTO audit_entry (at, actor, role, action, note_key, version, remote,"
-        " outcome) VALUES (%(audit_at)s, %(audit_actor)s, %(audit_role)s, %(audit_action)s,"
-        " %(note_key)s, %(version)s, %(audit_remote)s, 'ok'))",
+        " outcome, token_id, detail) VALUES (%(audit_at)s, %(audit_actor)s, %(audit_role)s,"
+        " %(audit_action)s, %(note_key)s, %(version)s, %(audit_remote)s, 'ok',"
+        " %(audit_token_id)s, %(audit_detail)s))",
         "o AS (INSERT INTO outbox_entry (note_key, version, state, attempts, next_attempt_at,"
         " created_at) VALUES (%(note_key)s, %(version)s, 'pending', 0, %(recorded_at)s,"
         " %(recorded_at)s))"
@@ -191,6 +192,7 @@ def _write_params(new: NewVersion) -> dict[str, Any]:
     params: dict[str, Any] = {name: getattr(row, name) for name in VERSION_COLUMNS}
     params["started_at"] = row.started_at.astimezone(UTC)
     params["recorded_at"] = row.recorded_at.astimezone(UTC)
+    params["signed_at"] = None if row.signed_at is None else row.signed_at.astimezone(UTC)
     params["index_roles"] = [i.role for i in new.index]
     params["index_kinds"] = [i.resource_type for i in new.index]
     params["index_statuses"] = [i.status for i in new.index]
@@ -200,4 +202,6 @@ def _write_params(new: NewVersion) -> dict[str, Any]:
     params["audit_role"] = audit.role
     params["audit_action"] = audit.action
     params["audit_remote"] = audit.remote
+    params["audit_token_id"] = audit.token_id
+    params["audit_detail"] = audit.detail
     return params

@@ -37,6 +37,7 @@ from capnote.store.base import (
     NewVersion,
     Sql,
     Store,
+    audit_params,
     sessions_from_rows,
 )
 
@@ -239,6 +240,7 @@ class SqliteStore(Store):
         version = {name: getattr(row, name) for name in VERSION_COLUMNS}
         version["started_at"] = _moment(row.started_at)
         version["recorded_at"] = _moment(row.recorded_at)
+        version["signed_at"] = None if row.signed_at is None else _moment(row.signed_at)
         steps: list[tuple[Sql, Any]] = [(sql["add_version"], version)]  # the constraint first
         if row.version > 1:
             steps.append((sql["retire"], {"key": row.note_key}))
@@ -255,17 +257,9 @@ class SqliteStore(Store):
                 for i in new.index
             ]
             steps.append((sql["add_index"], rows))
-        audit = new.audit
-        audit_params = {
-            "at": _moment(audit.at),
-            "actor": audit.actor,
-            "role": audit.role,
-            "action": audit.action,
-            "note_key": row.note_key,
-            "version": row.version,
-            "remote": audit.remote,
-        }
-        steps.append((sql["add_audit"], audit_params))
+        steps.append(
+            (sql["add_audit"], audit_params(new.audit, row.note_key, row.version, _moment))
+        )
         if forward:
             at = _moment(row.recorded_at)
             steps.append(

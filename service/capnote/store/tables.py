@@ -50,6 +50,12 @@ class NoteVersion(SQLModel, table=True):
     reason: str | None = Field(default=None, max_length=500)
     recorded_at: datetime
     recorded_by: str = Field(max_length=LABEL_MAX)
+    # The token that stored it (labels may repeat; ids do not); None before revision 0004.
+    recorded_by_token: int | None = None
+    # A signed version: who vouched for it and when (the Provenance attester).
+    signed_by: str | None = Field(default=None, max_length=200)
+    signed_by_staff: str | None = Field(default=None, max_length=320)  # system|value
+    signed_at: datetime | None = None
 
 
 class FhirIndex(SQLModel, table=True):
@@ -88,9 +94,15 @@ class ApiToken(SQLModel, table=True):
     id: int | None = Field(default=None, primary_key=True)
     token_hash: str = Field(max_length=64, unique=True)
     role: str = Field(max_length=20)
+    # The display name of the person (clinician, auditor...) or system client it belongs to.
     label: str = Field(max_length=LABEL_MAX)
     created_at: datetime
     revoked_at: datetime | None = None
+    # A person's staff identifier in the site's system (clinician tokens have one).
+    staff_system: str | None = Field(default=None, max_length=255)
+    staff_value: str | None = Field(default=None, max_length=64)
+    expires_at: datetime | None = None
+    last_used_at: datetime | None = None
 
 
 class AuditEntry(SQLModel, table=True):
@@ -107,6 +119,9 @@ class AuditEntry(SQLModel, table=True):
     version: int | None = None
     remote: str | None = Field(default=None, max_length=REMOTE_MAX)
     outcome: str = Field(max_length=20)
+    token_id: int | None = None
+    # What was read or searched for (resource ids, the search's parameters): identifiers only.
+    detail: str | None = Field(default=None, max_length=500)
 
 
 class OutboxEntry(SQLModel, table=True):
