@@ -429,6 +429,11 @@ def test_sign_final_then_amend_and_void_with_reasons(clinic: Clinic) -> None:
     dialog.get_by_role("button", name="Sign as final").focus()
     page.keyboard.press("Enter")
     expect(page.locator("#notice")).to_contain_text("Signed as final: version 1")
+    page.emulate_media(media="print")  # the print says who signed, and when
+    expect(page.locator("#print-summary .p-signed")).to_contain_text(
+        "Signed by form test clinician at"
+    )
+    page.emulate_media(media="screen")
     key = page.locator("#record-id").inner_text().strip()
     with clinic.api() as api:
         stored = api.get(f"/notes/{key}")
@@ -468,6 +473,20 @@ def test_sign_final_then_amend_and_void_with_reasons(clinic: Clinic) -> None:
     void.get_by_role("button", name="Void the note").click()
     expect(page.locator("#notice")).to_contain_text("Voided: version 3")
     expect(page.get_by_label("Patient ID", exact=True)).to_be_disabled()
+    # A void is unmistakable on the form and on every printed page, and books nothing
+    # (issue 14: a note voided for the wrong patient must not get that patient booked).
+    expect(page.locator("#void-banner")).to_be_visible()
+    expect(page.locator("#void-banner")).to_contain_text("ENTERED IN ERROR — NOT FOR CLINICAL USE")
+    page.emulate_media(media="print")
+    summary = page.locator("#print-summary")
+    expect(summary.locator(".p-void")).to_have_text("ENTERED IN ERROR — NOT FOR CLINICAL USE")
+    expect(summary.locator(".p-void-page")).to_be_visible()
+    expect(summary).to_contain_text("Nothing to book: this note was entered in error.")
+    expect(summary).not_to_contain_text("Review visit")
+    expect(summary.locator(".p-signed")).to_contain_text("version 3: voided, reason: wrong eye")
+    pdf = page.pdf(format="A4", print_background=True, prefer_css_page_size=True)
+    artifact("void-summary.pdf").write_bytes(pdf)
+    page.emulate_media(media="screen")
     with clinic.api() as api:
         latest = api.get(f"/notes/{key}").json()
         assert (latest["status"], latest["reason"]) == ("void", "wrong eye recorded")

@@ -341,7 +341,7 @@ async function runCheck() {
 // --- stored note state --------------------------------------------------------------------
 
 function setStored(view) {
-  state.stored = view ? { id: view.id, version: view.version, status: view.status, reason: view.reason } : null;
+  state.stored = view ? { id: view.id, version: view.version, status: view.status, reason: view.reason, signed: view.signed || null } : null;
   const s = state.stored;
   $("record-id").textContent = s ? s.id : "none yet";
   $("record-state").textContent = s
@@ -357,10 +357,30 @@ function setStored(view) {
   $("void").hidden = !s || voided;
   $("show-versions").hidden = !s;
   document.body.classList.toggle("is-void", Boolean(voided));
+  voidBanner(Boolean(voided));
   for (const el of form.querySelectorAll("input, select, textarea, button")) {
     if (["print", "show-versions"].includes(el.id)) continue;
     el.disabled = Boolean(voided);
   }
+}
+
+/** A voided note says so above everything, in words no one can miss: notes are usually voided
+ * because they were filed against the wrong patient. */
+function voidBanner(show) {
+  let banner = document.getElementById("void-banner");
+  if (!show) {
+    if (banner) banner.remove();
+    return;
+  }
+  if (!banner) {
+    banner = document.createElement("p");
+    banner.id = "void-banner";
+    banner.className = "void-banner";
+    banner.setAttribute("role", "alert");
+    form.before(banner);
+  }
+  banner.textContent = "ENTERED IN ERROR — NOT FOR CLINICAL USE. This note was voided"
+    + (state.stored?.reason ? ` (${state.stored.reason})` : "") + "; nothing in it is to be acted on or booked.";
 }
 
 function newNote() {

@@ -70,6 +70,16 @@ const said = (v) => yes(v) ?? "not recorded";
 // A date of birth without the weekday: "12 Mar 1950".
 const born = (day) => (day ? formatCalendarDay(day, true).replace(/^\S+ /, "") : null);
 
+/** "Signed by ... at ...", and for a version after the first, which version and why. */
+function signedLine(stored, zone) {
+  if (!stored) return null;
+  const parts = [];
+  if (stored.signed) parts.push(`Signed by ${stored.signed.by}${stored.signed.staff_identifier ? ` (${stored.signed.staff_identifier.value})` : ""} at ${formatMoment(stored.signed.at, zone)}`);
+  else if (stored.status === "draft") parts.push("Not signed");
+  if (stored.version > 1 && stored.reason) parts.push(`version ${stored.version}: ${stored.status === "void" ? "voided" : "amended"}, reason: ${stored.reason}`);
+  return parts.length ? el("p", "p-signed", parts.join(" · ")) : null;
+}
+
 export function renderPrint(section, { note, view, findings: open, zone, stored, svg, caution }) {
   const time = (iso) => (iso ? fromInstant(iso, zone)?.time : null);
   const start = note.started_at ? fromInstant(note.started_at, zone) : null;
@@ -92,8 +102,10 @@ export function renderPrint(section, { note, view, findings: open, zone, stored,
       el("p", null, [
         stored ? `${stored.status === "final" ? "Signed final" : stored.status === "void" ? "VOID (entered in error)" : "Draft"}, version ${stored.version}, record ${stored.id}` : "Not stored yet: this print is not a record",
         `printed ${formatMoment(new Date().toISOString(), zone)}`,
-      ].join(" · "))),
+      ].join(" · ")),
+      signedLine(stored, zone)),
     eye);
+  const voided = stored?.status === "void";
 
   const consent = note.consent?.given === undefined ? null
     : `${yes(note.consent.given)}${note.consent.kind ? `, ${w(note.consent.kind)}` : ""}`;
@@ -213,11 +225,18 @@ export function renderPrint(section, { note, view, findings: open, zone, stored,
     item.dataset.code = r.code;
     why.append(item);
   }
-  const dueBlock = why.children.length
-    ? block("Follow-up to book", due, el("p", "p-why-title", "Raised risk, which sets these dates:"), why)
-    : block("Follow-up to book", due);
+  // A voided note books nothing: its follow-up belonged to a record entered in error.
+  const dueBlock = voided
+    ? block("Follow-up", el("p", "p-void-note", "Nothing to book: this note was entered in error."))
+    : why.children.length
+      ? block("Follow-up to book", due, el("p", "p-why-title", "Raised risk, which sets these dates:"), why)
+      : block("Follow-up to book", due);
 
-  section.replaceChildren(head,
+  section.classList.toggle("p-voided", voided);
+  section.replaceChildren(
+    ...(voided ? [el("p", "p-void", "ENTERED IN ERROR — NOT FOR CLINICAL USE"),
+      el("p", "p-void-page", "ENTERED IN ERROR — NOT FOR CLINICAL USE")] : []),
+    head,
     el("div", "p-grid", patient, before, laser, result, plan, el("div", "p-side", worked, figure)),
     el("div", "p-bottom", block("Findings", findings), dueBlock),
     el("p", "p-caution", caution));
