@@ -40,12 +40,15 @@ ALLOWED: dict[tuple[str, str], set[str] | None] = {
     ("get", "/fhir/{kind}/{resource_id}/_history/{version}"): READ,
     ("post", "/fhir/{kind}/$validate"): CHECK,
     ("get", "/audit"): {"auditor"},
+    ("get", "/fhir/AuditEvent"): {"auditor"},
+    ("get", "/fhir/AuditEvent/{event_id}"): {"auditor"},
 }
 FILL = {
     "{note_id}": "00000000-0000-0000-0000-000000000000",
     "{version}": "1",
     "{kind}": "Procedure",
     "{resource_id}": "x",
+    "{event_id}": "1",
 }
 
 
@@ -220,7 +223,7 @@ def test_database_down_answers_503_with_retry_after(api: Api) -> None:
     dead = NoteService(dead_store, live.assessor, live.clock)
     # The services are dependencies: swapped here for ones on a database that is not there.
     app.dependency_overrides[deps.notes_service] = lambda: dead
-    app.dependency_overrides[deps.access] = lambda: Access(dead_store)
+    app.dependency_overrides[deps.access] = lambda: Access(dead_store, live.clock)
     try:
         for r in (
             api.client.get("/readyz"),

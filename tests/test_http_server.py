@@ -19,7 +19,7 @@ import httpx
 import pytest
 from sqlalchemy import create_engine, text
 
-from tests.conftest import ROOT, VALID, routine
+from tests.conftest import ROOT, VALID, on_store, routine
 from tests.fhir_r4_check import r4_problems
 
 CAPNOTE = [sys.executable, "-c", "from capnote.cli import main; main()"]
@@ -224,6 +224,13 @@ def test_token_commands(database_url: str) -> None:
     assert "1 to 100 characters" in long.stderr
     assert "Traceback" not in long.stderr
     assert run_cli(database_url, "token", "list").count("\n") == 3  # header and two tokens
+    # Each token made or revoked is in the audit trail, by token id (issue 14, §7).
+    trail = on_store(database_url, lambda store: store.audit_entries(None, 0, 10))
+    assert [(e.action, e.token_id) for e in trail][-3:] == [
+        ("token-revoke", int(token_id)),
+        ("token-create", int(person.split()[1])),
+        ("token-create", int(token_id)),
+    ]
 
 
 def test_a_forwarded_address_longer_than_the_audit_column(

@@ -14,6 +14,7 @@ from fastapi.middleware.cors import CORSMiddleware
 from capnote import __version__
 from capnote.access import Access
 from capnote.api import audit, docs, errors, fhir, health, notes, web
+from capnote.api.access_audit import AccessAudit
 from capnote.api.body_limit import BodyLimit
 from capnote.api.guard import Guard
 from capnote.api.headers import SecurityHeaders
@@ -90,7 +91,8 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     app.state.settings = settings
     errors.install(app)
     docs.install(app)
-    for router in (health.router, notes.router, fhir.router, audit.router, web.router):
+    # audit before fhir: /fhir/AuditEvent is the auditor's, not the read API's.
+    for router in (health.router, notes.router, audit.router, fhir.router, web.router):
         app.include_router(router)
 
     if settings.cors_origins:
@@ -101,6 +103,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
             allow_headers=["Authorization", "Content-Type", "If-Match"],
             expose_headers=["ETag", "Location"],
         )
+    app.add_middleware(AccessAudit, store=store, clock=clock)
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     app.add_middleware(Guard)
     # Outermost, so that the 413 of BodyLimit and the 500 of Guard carry the headers too.

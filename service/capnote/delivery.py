@@ -21,7 +21,7 @@ from email.utils import parsedate_to_datetime
 
 import httpx
 
-from capnote.store.base import Store
+from capnote.store.base import AuditRow, Store
 from capnote.store.codec import unpack_bundle
 
 log = logging.getLogger("capnote.delivery")
@@ -101,6 +101,10 @@ def all_entries_succeeded(answer: httpx.Response) -> bool:
     )
 
 
+# Who the audit trail names for a delivery.
+DELIVERY = "capnote (delivery)"
+
+
 class DeliveryWorker:
     """Claims due outbox entries and posts their Bundles as FHIR transactions."""
 
@@ -144,10 +148,24 @@ class DeliveryWorker:
         entries = await self.store.claim(self.worker_id, self.clock(), self.lease, limit)
         for entry in entries:
             bundle = unpack_bundle(await self.store.bundle_of(entry))
-            await self._deliver(entry.id, entry.attempts, bundle)
+            outcome = await self._deliver(entry.id, entry.attempts, bundle)
+            # Every delivery to the receiver is in the audit trail, whatever came of it.
+            detail = f"outbox entry {entry.id}, attempt {entry.attempts}: {outcome}"
+            row = AuditRow(
+                self.clock(),
+                DELIVERY,
+                "system",
+                "deliver",
+                None,
+                None,
+                detail,
+                "ok" if outcome == "delivered" else outcome,
+            )
+            await self.store.record(row, entry.note_key, entry.version)
         return len(entries)
 
-    async def _deliver(self, entry_id: int, attempts: int, bundle: bytes) -> None:
+    async def _deliver(self, entry_id: int, attempts: int, bundle: bytes) -> str:
+        """Post one Bundle; what came of it: delivered, or why not (for the audit trail)."""
         now = self.clock()
         try:
             credentials = await self.credentials.header()
@@ -160,21 +178,22 @@ class DeliveryWorker:
             )
         except httpx.HTTPError as exc:
             await self._again(entry_id, attempts, None, f"network: {type(exc).__name__}", None)
-            return
+            return "retry-network"
         status = answer.status_code
         if 200 <= status < 300 and all_entries_succeeded(answer):
             await self.store.delivered(entry_id, self.worker_id, status, now)
-            return
+            return "delivered"
         if status == 401:
             self.credentials.forget()
         if status == 429 or status >= 500:
             await self._again(
                 entry_id, attempts, status, answer.text[:2000], retry_after(answer, now)
             )
-            return
+            return f"retry-{status}"
         # A 4xx (or a 2xx that is no successful transaction-response) will not mend by itself.
         await self.store.park(entry_id, self.worker_id, status, answer.text[:4000])
         log.warning("delivery parked: outbox entry %s answered %s", entry_id, status)
+        return f"parked-{status}"
 
     async def _again(
         self,

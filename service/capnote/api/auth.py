@@ -33,6 +33,8 @@ def allow(*roles: Role) -> Callable[..., Awaitable[Principal]]:
 
     async def principal(request: Request, tokens: Tokens) -> Principal:
         client = request.client.host if request.client else None
-        return await tokens.principal(request.headers.get("authorization", ""), allowed, client)
+        who = await tokens.principal(request.headers.get("authorization", ""), allowed, client)
+        request.state.principal = who  # for the audit trail (capnote.api.access_audit)
+        return who
 
     return principal

@@ -25,7 +25,7 @@ from capnote.tokens import LABEL_MAX
 DEMO_STAFF = ("https://harbourside-eye.example/fhir/sid/staff", "S-DEMO")
 
 if TYPE_CHECKING:
-    from capnote.store.base import Store
+    from capnote.store.base import AuditRow, Store
 
 T = TypeVar("T")
 
@@ -101,13 +101,25 @@ def token_new(
         )
     now = datetime.now(UTC)
     expires = None if expires_days is None else now + timedelta(days=expires_days)
-    token, token_id = _with_store(
-        lambda store: store.new_token(role, label, now, staff=staff, expires_at=expires),
-        migrate=True,
-    )
+
+    async def create(store: Store) -> tuple[str, int]:
+        made = await store.new_token(role, label, now, staff=staff, expires_at=expires)
+        await store.record(
+            _operator(now, "token-create", made[1], f"token {made[1]} ({role})"), None, None
+        )
+        return made
+
+    token, token_id = _with_store(create, migrate=True)
     until = f", expires {expires:%Y-%m-%d %H:%M} UTC" if expires else ""
     typer.echo(f"token {token_id} ({role}, {printable(label)}{until}); shown once, keep it safe:")
     typer.echo(token)
+
+
+def _operator(now: datetime, action: str, token_id: int, detail: str) -> AuditRow:
+    """An audit entry for what the operator did at the command line."""
+    from capnote.store.base import AuditRow  # the store loads only for commands that need it
+
+    return AuditRow(now, "operator (command line)", "operator", action, None, token_id, detail)
 
 
 def _staff(text: str | None, role: str) -> tuple[str, str] | None:
@@ -151,7 +163,17 @@ def token_list() -> None:
 @token_app.command("revoke")
 def token_revoke(token_id: Annotated[int, typer.Argument(help="The id from token list.")]) -> None:
     """Revoke a token: it answers 401 from now on."""
-    if not _with_store(lambda store: store.revoke_token(token_id, datetime.now(UTC))):
+
+    async def revoke(store: Store) -> bool:
+        now = datetime.now(UTC)
+        done = await store.revoke_token(token_id, now)
+        if done:
+            await store.record(
+                _operator(now, "token-revoke", token_id, f"token {token_id}"), None, None
+            )
+        return done
+
+    if not _with_store(revoke):
         typer.echo(f"no live token {token_id}", err=True)
         raise typer.Exit(1)
     typer.echo(f"token {token_id} revoked")

@@ -367,6 +367,9 @@ STATEMENTS.update(
         .order_by(_AUDIT.c.id.desc())
         .offset(bindparam("offset", type_=Integer))
         .limit(bindparam("limit", type_=Integer)),
+        "audit_one": select(*(_AUDIT.c[name] for name in AUDIT_COLUMNS)).where(
+            _AUDIT.c.id == bindparam("entry_id")
+        ),
         "audit_of_note": select(*(_AUDIT.c[name] for name in AUDIT_COLUMNS))
         .where(_AUDIT.c.note_key == bindparam("key"))
         .order_by(_AUDIT.c.id.desc())
@@ -771,6 +774,54 @@ class Store(ABC):
             rows = await self._fetch(self._sql["audit_of_note"], {**page, "key": note_key})
         return _as(AuditRecord, rows)
 
+    async def audit_entry(self, entry_id: int) -> AuditRecord | None:
+        """One audit entry by id."""
+        rows = await self._fetch(self._sql["audit_one"], {"entry_id": entry_id})
+        found = _as(AuditRecord, rows)
+        return found[0] if found else None
+
+    async def audit_search(
+        self,
+        *,
+        after: tuple[str, datetime] | None = None,
+        before: tuple[str, datetime] | None = None,
+        token_id: int | None = None,
+        actor: str | None = None,
+        note_key: str | None = None,
+        outcome: str | None = None,
+        offset: int = 0,
+        limit: int = 100,
+    ) -> tuple[int, list[AuditRecord]]:
+        """Audit entries by time (after: ("ge" | "gt", t), before: ("le" | "lt", t)), token,
+        actor name (starts with, any case), note and outcome class ("0" success, "4" refused,
+        "8" failed on capnote's or the receiver's side: AuditEvent.outcome); newest first,
+        with how many match in all."""
+        shape = (
+            None if after is None else after[0],
+            None if before is None else before[0],
+            token_id is not None,
+            actor is not None,
+            note_key is not None,
+            outcome,
+        )
+        params: dict[str, Any] = {}
+        if after is not None:
+            params["after"] = self._time(after[1])
+        if before is not None:
+            params["before"] = self._time(before[1])
+        if token_id is not None:
+            params["token_id"] = token_id
+        if actor is not None:
+            escaped = actor.lower().replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_")
+            params["actor"] = escaped + "%"
+        if note_key is not None:
+            params["note_key"] = note_key
+        counted = self._variant(("audit", *shape, True), lambda: _audit_search(*shape, True))
+        listed = self._variant(("audit", *shape, False), lambda: _audit_search(*shape, False))
+        [(total,)] = await self._fetch(counted, params)
+        rows = await self._fetch(listed, {**params, "offset": offset, "limit": limit})
+        return int(total), _as(AuditRecord, rows)
+
     # -- the outbox --------------------------------------------------------------------------
 
     async def claim(
@@ -838,6 +889,56 @@ class Store(ABC):
         else:
             raise ValueError(f"an operator sets an entry pending or failed, not {state}")
         return bool(await self._fetch(sql, params))
+
+
+def _failed_on_a_server(column: Any) -> Any:
+    """An outcome that is a server's failure: capnote's 5xx, or a delivery the receiver
+    answered 5xx or never answered."""
+    return or_(column.like("5%"), column.like("retry-5%"), column == "retry-network")
+
+
+def _audit_search(
+    after: str | None,
+    before: str | None,
+    token: bool,
+    actor: bool,
+    note: bool,
+    outcome: str | None,
+    count: bool,
+) -> ClauseElement:
+    a = _AUDIT.c
+    conditions: list[Any] = []
+    if after is not None:
+        conditions.append(
+            a.at > bindparam("after") if after == "gt" else a.at >= bindparam("after")
+        )
+    if before is not None:
+        conditions.append(
+            a.at < bindparam("before") if before == "lt" else a.at <= bindparam("before")
+        )
+    if token:
+        conditions.append(a.token_id == bindparam("token_id"))
+    if actor:
+        conditions.append(func.lower(a.actor).like(bindparam("actor"), escape="\\"))
+    if note:
+        conditions.append(a.note_key == bindparam("note_key"))
+    if outcome == "0":
+        conditions.append(a.outcome == "ok")
+    elif outcome == "4":
+        conditions.append(and_(a.outcome != "ok", ~_failed_on_a_server(a.outcome)))
+    elif outcome == "8":
+        conditions.append(_failed_on_a_server(a.outcome))
+    elif outcome is not None:  # 12, a major failure: capnote records none
+        conditions.append(literal(False))
+    if count:
+        return select(func.count()).select_from(_AUDIT).where(*conditions)
+    return (
+        select(*(a[name] for name in AUDIT_COLUMNS))
+        .where(*conditions)
+        .order_by(a.id.desc())
+        .offset(bindparam("offset", type_=Integer))
+        .limit(bindparam("limit", type_=Integer))
+    )
 
 
 def token_row(row: Sequence[Any] | None, digest: str) -> TokenRow | None:
