@@ -13,7 +13,7 @@ from fastapi.middleware.cors import CORSMiddleware
 
 from capnote import __version__
 from capnote.access import Access
-from capnote.api import audit, docs, errors, fhir, health, notes, web
+from capnote.api import audit, docs, errors, fhir, fhir_validate, health, notes, web
 from capnote.api.body_limit import BodyLimit
 from capnote.api.guard import Guard
 from capnote.api.headers import SecurityHeaders
@@ -90,7 +90,14 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     app.state.settings = settings
     errors.install(app)
     docs.install(app)
-    for router in (health.router, notes.router, fhir.router, audit.router, web.router):
+    for router in (
+        health.router,
+        notes.router,
+        fhir_validate.router,
+        fhir.router,
+        audit.router,
+        web.router,
+    ):
         app.include_router(router)
 
     if settings.cors_origins:
