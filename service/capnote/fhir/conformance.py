@@ -407,6 +407,10 @@ class Walker:
             self._object(value, type_name, rule.content_reference, where, scope)
         elif code in ("BackboneElement", "Element") and core_table.children(type_name, rule.path):
             self._object(value, type_name, rule.path, where, scope)
+        elif code == "SimpleQuantity":
+            # Quantity's elements; the node keeps the profile's name for sqty-1.
+            self._object(value, "Quantity", "Quantity", where, scope)
+            scope.nodes[-1].type_name = code
         elif core_table.is_type(code):
             self._object(value, code, code, where, scope)
             if code == "Reference":

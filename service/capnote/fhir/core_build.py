@@ -42,6 +42,7 @@ INVARIANTS = (
     "obs-7",
     "obs-3",
     "qty-3",
+    "sqty-1",
     "per-1",
     "bdl-1",
     "bdl-2",
@@ -51,6 +52,9 @@ INVARIANTS = (
     "bdl-7",
     "bdl-8",
     "bdl-9",
+    "bdl-10",
+    "bdl-11",
+    "bdl-12",
     "txt-1",
     "txt-2",
 )
@@ -101,6 +105,10 @@ def _element(element: dict[str, Any]) -> list[Any]:
     types: list[Any] = []
     for entry in element.get("type", []):
         code = _type_code(entry)
+        if _SD + "SimpleQuantity" in entry.get("profile", []):
+            # The one core profile used as an element's type (a Quantity without a
+            # comparator, sqty-1); its JSON name stays "...Quantity".
+            code = "SimpleQuantity"
         targets = [str(p).removeprefix(_SD) for p in entry.get("targetProfile", [])]
         types.append([code, targets] if targets else code)
     binding = element.get("binding") or {}
@@ -196,6 +204,14 @@ def build(path: Path) -> dict[str, Any]:
     invariants: dict[str, Any] = {}
     bound: set[str] = set()
     for sd in package.structures():
+        if sd["id"] == "SimpleQuantity":
+            for element in sd["snapshot"]["element"]:
+                for constraint in element.get("constraint", []):
+                    if constraint["key"] == "sqty-1":
+                        invariants["sqty-1"] = {
+                            "expression": constraint["expression"],
+                            "human": constraint["human"],
+                        }
         if sd.get("derivation") != "specialization" and sd["id"] not in ("Resource", "Element"):
             continue  # profiles and extension definitions
         if sd["kind"] == "logical":

@@ -106,7 +106,8 @@ def choice_names(type_name: str, parent: str) -> dict[str, tuple[ElementRule, st
     for rule in children(type_name, parent).values():
         if rule.choice:
             for code in rule.types:
-                out[rule.name + code[:1].upper() + code[1:]] = (rule, code)
+                suffix = "Quantity" if code == "SimpleQuantity" else code
+                out[rule.name + suffix[:1].upper() + suffix[1:]] = (rule, code)
     return out
 
 

@@ -21,7 +21,9 @@ from capnote.findings import Finding, Severity
 
 # Resources that are no DomainResource (no text, contained, extension): dom-* do not apply.
 _NOT_DOMAIN = frozenset({"Bundle", "Binary", "Parameters"})
-_QUANTITIES = frozenset({"Quantity", "Age", "Count", "Distance", "Duration", "MoneyQuantity"})
+_QUANTITIES = frozenset(
+    {"Quantity", "Age", "Count", "Distance", "Duration", "MoneyQuantity", "SimpleQuantity"}
+)
 
 
 def _fails(key: str, location: str, detail: str = "") -> Finding:
@@ -99,6 +101,12 @@ def qty_3(node: Node) -> Iterator[Finding]:
         yield _fails("qty-3", node.location)
 
 
+def sqty_1(node: Node) -> Iterator[Finding]:
+    """sqty-1: comparator.empty() (SimpleQuantity)"""
+    if node.type_name == "SimpleQuantity" and _has(node.data, "comparator"):
+        yield _fails("sqty-1", node.location + ".comparator")
+
+
 def per_1(node: Node) -> Iterator[Finding]:
     """per-1: start.hasValue().not() or end.hasValue().not() or (start <= end)"""
     if node.type_name != "Period":
@@ -112,19 +120,24 @@ def per_1(node: Node) -> Iterator[Finding]:
 
 
 def _compare(start: str, end: str) -> bool | None:
-    """start <= end as FHIRPath compares dateTimes: empty (None) when the precisions differ."""
-    if len(start) <= 10 or len(end) <= 10:
-        if len(start) != len(end):
+    """start <= end as FHIRPath compares dates and dateTimes: at the precision both have;
+    empty (None) when they agree that far but one is more precise (FHIRPath 2.0,
+    "Comparison")."""
+    if len(start) > 10 and len(end) > 10:
+        try:
+            first = datetime.fromisoformat(start.replace("Z", "+00:00"))
+            second = datetime.fromisoformat(end.replace("Z", "+00:00"))
+        except ValueError:
             return None
-        return start <= end
-    try:
-        first = datetime.fromisoformat(start.replace("Z", "+00:00"))
-        second = datetime.fromisoformat(end.replace("Z", "+00:00"))
-    except ValueError:
-        return None
-    if (first.tzinfo is None) != (second.tzinfo is None):
-        return None
-    return first <= second
+        if (first.tzinfo is None) != (second.tzinfo is None):
+            return None
+        return first <= second
+    # A date (YYYY, YYYY-MM, YYYY-MM-DD) against a date or a dateTime: the calendar
+    # parts line up as text.
+    common = min(len(start), len(end), 10)
+    if start[:common] != end[:common]:
+        return start[:common] < end[:common]
+    return True if min(len(start), 10) == min(len(end), 10) else None
 
 
 def obs_3(node: Node) -> Iterator[Finding]:
@@ -208,7 +221,7 @@ _RESPONSE_TYPES = ("batch-response", "transaction-response", "history")
 
 
 def bundle(scope: ResourceScope) -> Iterator[Finding]:
-    """bdl-1 to bdl-9 (R4 has no bdl-6) on a Bundle."""
+    """bdl-1 to bdl-12 (R4 has no bdl-6) on a Bundle."""
     data = scope.data
     if data.get("resourceType") != "Bundle":
         return
@@ -247,11 +260,22 @@ def bundle(scope: ResourceScope) -> Iterator[Finding]:
             if pair in pairs and kind != "history":
                 yield _fails("bdl-7", f"{where}.fullUrl", f"as entry[{pairs[pair]}]")
             pairs.setdefault(pair, i)
-    # bdl-9: type = 'document' implies (identifier.system.exists() and identifier.value.exists())
+    first = _obj(entries[0].get("resource")).get("resourceType") if entries else None
     if kind == "document":
+        # bdl-9: type = 'document' implies (identifier.system.exists() and
+        #   identifier.value.exists())
         identifier = _obj(data.get("identifier"))
         if not (_has(identifier, "system") and _has(identifier, "value")):
             yield _fails("bdl-9", f"{here}.identifier")
+        # bdl-10: type = 'document' implies (timestamp.hasValue())
+        if not isinstance(data.get("timestamp"), str):
+            yield _fails("bdl-10", f"{here}.timestamp")
+        # bdl-11: type = 'document' implies entry.first().resource.is(Composition)
+        if first != "Composition":
+            yield _fails("bdl-11", f"{here}.entry[0]")
+    # bdl-12: type = 'message' implies entry.first().resource.is(MessageHeader)
+    if kind == "message" and first != "MessageHeader":
+        yield _fails("bdl-12", f"{here}.entry[0]")
 
 
 # -- the narrative -----------------------------------------------------------------------
@@ -306,6 +330,7 @@ _NODE_CHECKS: tuple[Callable[[Node], Iterator[Finding]], ...] = (
     ele_1,
     ext_1,
     qty_3,
+    sqty_1,
     per_1,
     obs_3,
 )
