@@ -13,7 +13,17 @@ from fastapi.middleware.cors import CORSMiddleware
 
 from capnote import __version__
 from capnote.access import Access
-from capnote.api import audit, docs, errors, fhir, fhir_validate, health, notes, web
+from capnote.api import (
+    audit,
+    docs,
+    errors,
+    fhir,
+    fhir_package,
+    fhir_validate,
+    health,
+    notes,
+    web,
+)
 from capnote.api.body_limit import BodyLimit
 from capnote.api.guard import Guard
 from capnote.api.headers import SecurityHeaders
@@ -94,6 +104,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         health.router,
         notes.router,
         fhir_validate.router,
+        fhir_package.router,
         fhir.router,
         audit.router,
         web.router,

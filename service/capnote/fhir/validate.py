@@ -11,8 +11,9 @@ from __future__ import annotations
 
 from typing import Any
 
-from capnote.fhir import core_table, invariants
+from capnote.fhir import core_table, invariants, profiles
 from capnote.fhir.conformance import problem, walk
+from capnote.fhir.profile_check import check_profile
 from capnote.findings import Finding, Severity
 
 CORE_PROFILE = "http://hl7.org/fhir/StructureDefinition/"
@@ -33,7 +34,13 @@ def _profiles(data: dict[str, Any], profile: str | None) -> list[Finding]:
     out: list[Finding] = []
     if profile is not None:
         base = profile.split("|")[0]
-        if not base.startswith(CORE_PROFILE) or not core_table.is_resource_type(
+        own = profiles.profile(base)
+        if own is not None:
+            if own["type"] != kind:
+                out.append(_wrong_type(base, str(own["type"]), kind))
+            else:
+                out += check_profile(data, own)
+        elif not base.startswith(CORE_PROFILE) or not core_table.is_resource_type(
             base.removeprefix(CORE_PROFILE)
         ):
             out.append(
@@ -42,27 +49,24 @@ def _profiles(data: dict[str, Any], profile: str | None) -> list[Finding]:
                     "profile",
                     f"profile {profile[:200]!r} is not known here, so the resource was not "
                     "checked against it",
-                    "$validate profile: a StructureDefinition this server has "
-                    "(the R4 core resource definitions)",
+                    "$validate profile: a StructureDefinition this server has (the R4 core "
+                    "resource definitions and capnote's own, under /fhir/StructureDefinition)",
                     "not-supported",
                     value=profile[:200],
                     allowed=CORE_PROFILE + "[resource type]",
                 )
             )
         elif base.removeprefix(CORE_PROFILE) != kind:
-            out.append(
-                problem(
-                    "fhir-profile-type",
-                    "resourceType",
-                    f"profile {base} is for {base.removeprefix(CORE_PROFILE)}, not {kind}",
-                    "a profile constrains one resource type",
-                    "invalid",
-                )
-            )
+            out.append(_wrong_type(base, base.removeprefix(CORE_PROFILE), kind))
     meta = data.get("meta")
     declared = meta.get("profile") if isinstance(meta, dict) else None
     for i, url in enumerate(declared if isinstance(declared, list) else []):
-        if isinstance(url, str) and url.split("|")[0] != f"{CORE_PROFILE}{kind}":
+        if isinstance(url, str) and url.split("|")[0] == profile:
+            continue  # checked above
+        own = profiles.profile(url) if isinstance(url, str) else None
+        if own is not None and own["type"] == kind:
+            out += check_profile(data, own)  # a declared profile capnote publishes
+        elif isinstance(url, str) and url.split("|")[0] != f"{CORE_PROFILE}{kind}":
             out.append(
                 Finding(
                     severity=Severity.INFORMATION,
@@ -75,3 +79,13 @@ def _profiles(data: dict[str, Any], profile: str | None) -> list[Finding]:
                 )
             )
     return out
+
+
+def _wrong_type(url: str, profiled: str, kind: object) -> Finding:
+    return problem(
+        "fhir-profile-type",
+        "resourceType",
+        f"profile {url} is for {profiled}, not {kind}",
+        "a profile constrains one resource type",
+        "invalid",
+    )
