@@ -11,6 +11,7 @@ from typing import Any
 import httpx
 import pytest
 
+from tests.conftest import ROOT
 from tests.fhir_conformance.make_cases import EXAMPLES
 from tests.fhir_r4_check import r4_problems
 from tests.test_http_server import server, token
@@ -125,3 +126,52 @@ def test_a_body_over_the_limit_says_the_limit(http: httpx.Client) -> None:
     answer = validate(http, "Observation", big)
     assert answer.status_code == 413
     assert "the limit is 1048576 bytes" in answer.json()["issue"][0]["diagnostics"]
+
+
+# capnote's FHIR package over the same server (issue 15, section 6).
+PROFILE = "https://capnote.org/fhir/StructureDefinition/capnote-iop"
+
+
+def emitted_iop() -> dict[str, Any]:
+    bundle = json.loads((ROOT / "examples/bundles/right-routine.bundle.json").read_text())
+    return next(
+        e["resource"]
+        for e in bundle["entry"]
+        if e["resource"]["resourceType"] == "Observation"
+        and e["resource"]["code"]["coding"][0]["code"] == "79892-6"
+    )
+
+
+@pytest.mark.parametrize(
+    ("kind", "count"), [("StructureDefinition", 14), ("CodeSystem", 1), ("ValueSet", 4)]
+)
+def test_the_package_is_served(http: httpx.Client, kind: str, count: int) -> None:
+    with httpx.Client(base_url=str(http.base_url), timeout=30) as public:  # no token
+        found = public.get(f"/fhir/{kind}")
+        assert found.status_code == 200
+        bundle = found.json()
+        assert r4_problems(bundle) == []
+        assert bundle["total"] == len(bundle["entry"]) == count
+        first = bundle["entry"][0]["resource"]
+        read = public.get(f"/fhir/{kind}/{first['id']}")
+        assert read.json() == first
+        by_url = public.get(f"/fhir/{kind}", params={"url": first["url"]}).json()
+        assert [e["resource"]["id"] for e in by_url["entry"]] == [first["id"]]
+        assert public.get(f"/fhir/{kind}/no-such").status_code == 404
+        refused = public.get(f"/fhir/{kind}", params={"name": "x"})
+        assert refused.status_code == 422
+        assert refused.json()["issue"][0]["expression"] == ["name"]
+
+
+def test_validate_takes_one_of_capnote_profiles(http: httpx.Client) -> None:
+    iop = emitted_iop()
+    assert errors(validate(http, "Observation", iop, profile=PROFILE)) == []
+    assert errors(validate(http, "Observation", parameters(iop, profile=PROFILE))) == []
+    wrong_unit = {**iop, "valueQuantity": {**iop["valueQuantity"], "code": "kPa"}}
+    found = errors(validate(http, "Observation", wrong_unit, profile=PROFILE))
+    assert [i["expression"] for i in found] == [["Observation.valueQuantity.code"]]
+    assert PROFILE in found[0]["diagnostics"]
+    other = errors(
+        validate(http, "Procedure", {**iop, "resourceType": "Procedure"}, profile=PROFILE)
+    )
+    assert "fhir-profile-type" in [i["details"]["coding"][0]["code"] for i in other]
