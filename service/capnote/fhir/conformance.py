@@ -43,6 +43,9 @@ _LITERAL = re.compile(
 _CONDITIONAL = re.compile(r"^(?P<type>[A-Z][A-Za-z]+)\?\S+$")
 _UUID = re.compile(r"^urn:uuid:[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}$")
 _OID = re.compile(r"^urn:oid:[0-2](\.(0|[1-9][0-9]*))+$")
+# Real resources nest a few levels (a Questionnaire's items perhaps twenty); a hostile one
+# could nest until the walk's recursion ran out, which must be a finding, not a 500.
+MAX_DEPTH = 64
 _SCHEME = re.compile(r"^[A-Za-z][A-Za-z0-9+.\-]*:")
 
 
@@ -106,6 +109,8 @@ class Walker:
         self.scopes: list[ResourceScope] = []
         # urn:uuid / absolute fullUrls of a Bundle's entries -> their resource type
         self.full_urls: dict[str, str] = {}
+        self._depth = 0
+        self._too_deep = False
 
     def add(self, finding: Finding) -> None:
         """Record a finding."""
@@ -194,6 +199,36 @@ class Walker:
         location: str,
         scope: ResourceScope,
         resource_root: bool = False,
+    ) -> None:
+        if self._depth >= MAX_DEPTH:
+            if not self._too_deep:
+                self._too_deep = True
+                self.add(
+                    problem(
+                        "fhir-too-deep",
+                        location,
+                        f"{location}: nested more than {MAX_DEPTH} elements deep; "
+                        "not checked below",
+                        f"capnote checks FHIR elements up to {MAX_DEPTH} levels deep",
+                        "too-costly",
+                        allowed=f"<= {MAX_DEPTH} levels",
+                    )
+                )
+            return
+        self._depth += 1
+        try:
+            self._children(data, type_name, path, location, scope, resource_root)
+        finally:
+            self._depth -= 1
+
+    def _children(
+        self,
+        data: dict[str, Any],
+        type_name: str,
+        path: str,
+        location: str,
+        scope: ResourceScope,
+        resource_root: bool,
     ) -> None:
         rules = core_table.children(type_name, path)
         choices = core_table.choice_names(type_name, path)

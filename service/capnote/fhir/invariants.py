@@ -181,16 +181,19 @@ def dom(scope: ResourceScope) -> Iterator[Finding]:
 
 
 def _references_inside(value: Any) -> set[str]:
+    """Every Reference.reference below value (iterative: a hostile resource nests deep)."""
     found: set[str] = set()
-    if isinstance(value, dict):
-        for key, child in value.items():
-            if key == "reference" and isinstance(child, str):
-                found.add(child)
-            else:
-                found |= _references_inside(child)
-    elif isinstance(value, list):
-        for child in value:
-            found |= _references_inside(child)
+    stack = [value]
+    while stack:
+        item = stack.pop()
+        if isinstance(item, dict):
+            for key, child in item.items():
+                if key == "reference" and isinstance(child, str):
+                    found.add(child)
+                else:
+                    stack.append(child)
+        elif isinstance(item, list):
+            stack.extend(item)
     return found
 
 
