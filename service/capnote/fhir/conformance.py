@@ -130,7 +130,8 @@ class Walker:
                 problem(
                     "fhir-json-type",
                     location,
-                    f"{location}: a resource is a JSON object, not {_json_type(data)}",
+                    f"{location or 'the body'}: a resource is a JSON object, not "
+                    f"{_json_type(data)}",
                     _STRUCTURE + "Resource",
                     "structure",
                 )
