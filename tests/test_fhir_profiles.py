@@ -11,13 +11,18 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from hypothesis import HealthCheck, Phase, given, settings
+from hypothesis import strategies as st
 
 from capnote import __version__
+from capnote.assess import Assessor
 from capnote.fhir import profiles
+from capnote.fhir.common import Version
 from capnote.fhir.profile_check import check_profile
 from capnote.fhir.validate import validate_resource
 from tests.conftest import EXAMPLES, ROOT
 from tests.fhir_r4_check import r4_problems
+from tests.test_bundle_properties import _emitted, notes
 
 PACKAGE = ROOT / "schemas" / "fhir-package"
 BUNDLES = sorted((EXAMPLES / "bundles").glob("*.bundle.json"))
@@ -164,3 +169,32 @@ def test_each_profile_catches_what_it_constrains(
     change(resource)
     found = check_profile(resource, sd)
     assert any(f.location.startswith(where) for f in found), [f.location for f in found]
+
+
+# Each example emits two Bundles (about a second): no shrinking; a failure prints it whole.
+@settings(
+    max_examples=15,
+    deadline=None,
+    phases=[Phase.explicit, Phase.reuse, Phase.generate],
+    suppress_health_check=[HealthCheck.too_slow],
+)
+@given(notes(), notes(), st.booleans())
+def test_generated_notes_and_amendments_conform_to_the_profiles(
+    assessor: Assessor, first: dict[str, Any], second: dict[str, Any], void: bool
+) -> None:
+    # The shapes a session can take (tests/test_bundle_properties.py), and an amendment or
+    # void of it, whose withdrawn resources must conform too.
+    second["note_id"], second["patient"] = first["note_id"], first["patient"]
+    v1 = _emitted(assessor, first, Version(1))
+    signed = first["status"] == "final"
+    if signed:
+        second["status"] = "final"
+    v2 = _emitted(assessor, second, Version(2, voided=void, amends_final=signed, previous=v1))
+    for bundle in (v1.bundle, v2.bundle):
+        assert [f.message for f in validate_resource(bundle) if f.blocking] == []
+        for entry in bundle["entry"]:
+            url = profiles.profile_for(entry["resource"])
+            assert url is not None
+            sd = profiles.profile(url)
+            assert sd is not None
+            assert check_profile(entry["resource"], sd) == [], url
