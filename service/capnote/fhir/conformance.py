@@ -200,6 +200,7 @@ class Walker:
         location: str,
         scope: ResourceScope,
         resource_root: bool = False,
+        node_type: str | None = None,
     ) -> None:
         if self._depth >= MAX_DEPTH:
             if not self._too_deep:
@@ -219,6 +220,8 @@ class Walker:
         self._depth += 1
         try:
             self._children(data, type_name, path, location, scope, resource_root)
+            # The invariants see the node as its profile's type where one applies.
+            scope.nodes.append(Node(node_type or type_name, path, location, data))
         finally:
             self._depth -= 1
 
@@ -281,7 +284,6 @@ class Walker:
                         "required",
                     )
                 )
-        scope.nodes.append(Node(type_name, path, location, data))
 
     @staticmethod
     def _rule_for(
@@ -445,8 +447,7 @@ class Walker:
             self._object(value, type_name, rule.path, where, scope)
         elif code == "SimpleQuantity":
             # Quantity's elements; the node keeps the profile's name for sqty-1.
-            self._object(value, "Quantity", "Quantity", where, scope)
-            scope.nodes[-1].type_name = code
+            self._object(value, "Quantity", "Quantity", where, scope, node_type=code)
         elif core_table.is_type(code):
             self._object(value, code, code, where, scope)
             if code == "Reference":
