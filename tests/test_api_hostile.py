@@ -39,6 +39,7 @@ ALLOWED: dict[tuple[str, str], set[str] | None] = {
     ("get", "/fhir/{kind}/{resource_id}/_history"): READ,
     ("get", "/fhir/{kind}/{resource_id}/_history/{version}"): READ,
     ("post", "/fhir/{kind}/$validate"): CHECK,
+    ("post", "/fhir/$validate"): CHECK,
     ("get", "/fhir/StructureDefinition"): None,
     ("get", "/fhir/CodeSystem"): None,
     ("get", "/fhir/ValueSet"): None,

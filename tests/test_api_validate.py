@@ -99,6 +99,16 @@ def test_profile_is_honoured(http: httpx.Client) -> None:
     assert [i["details"]["coding"][0]["code"] for i in other] == ["fhir-profile-type"]
 
 
+def test_the_system_level_operation_takes_any_type(http: httpx.Client) -> None:
+    # POST [base]/$validate (resource-operation-validate.html: system level too).
+    answer = http.post("/fhir/$validate", content=json.dumps(parameters(GLUCOSE)))
+    assert errors(answer) == []
+    bad = http.post(
+        "/fhir/$validate", content=json.dumps({"resourceType": "Patient", "gender": "m"})
+    )
+    assert [i["expression"] for i in errors(bad)] == [["Patient.gender"]]
+
+
 def test_an_unknown_parameter_is_refused(http: httpx.Client) -> None:
     body = parameters(GLUCOSE)
     body["parameter"].append({"name": "strict", "valueBoolean": True})

@@ -22,13 +22,23 @@ from capnote.notes import Principal
 router = APIRouter(prefix="/fhir", tags=["fhir"])
 
 
+Mode = Annotated[str | None, Query(max_length=40)]
+Profile = Annotated[str | None, Query(max_length=1024)]
+Checker = Annotated[Principal, Depends(allow(*CHECK))]
+
+
+@router.post("/$validate", responses=responses(200, 413, 415, 422, media=FHIR_JSON))
+async def validate_any(
+    request: Request, _who: Checker, mode: Mode = None, profile: Profile = None
+) -> Response:
+    """Validate one R4 JSON resource of any type (system-level $validate); as
+    POST /fhir/{type}/$validate, with the type taken from the resource."""
+    return await _validate(request, None, mode, profile)
+
+
 @router.post("/{kind}/$validate", responses=responses(200, 404, 413, 415, 422, media=FHIR_JSON))
 async def validate(
-    request: Request,
-    kind: str,
-    _who: Annotated[Principal, Depends(allow(*CHECK))],
-    mode: Annotated[str | None, Query(max_length=40)] = None,
-    profile: Annotated[str | None, Query(max_length=1024)] = None,
+    request: Request, kind: str, _who: Checker, mode: Mode = None, profile: Profile = None
 ) -> Response:
     """Validate one R4 JSON resource (or a Bundle), sent as the body or as the `resource`
     parameter of a Parameters body, with optional `mode` and `profile`: an
@@ -36,6 +46,12 @@ async def validate(
     or not the resource is valid."""
     if not core_table.is_resource_type(kind):
         raise NotFoundError(f"{kind[:64]!r} is not a FHIR R4 resource type, so it has no $validate")
+    return await _validate(request, kind, mode, profile)
+
+
+async def _validate(
+    request: Request, kind: str | None, mode: str | None, profile: str | None
+) -> Response:
     raw = await json_body(request)
     try:
         body = orjson.loads(raw)
@@ -50,7 +66,10 @@ async def validate(
     wanted = read_input(kind, body, mode, profile)
     findings = validate_resource(wanted.resource, wanted.profile)
     resource = wanted.resource
-    if isinstance(resource, dict) and resource.get("resourceType") not in (kind, None):
+    named = resource.get("resourceType") if isinstance(resource, dict) else None
+    if kind is None:
+        kind = named[:64] if isinstance(named, str) else "Resource"
+    elif named not in (kind, None):
         findings.insert(
             0,
             Finding(

@@ -39,8 +39,9 @@ def _one(name: str, from_url: str | None, from_body: str | None) -> str | None:
     return from_body if from_body is not None else from_url
 
 
-def read_input(kind: str, body: Any, mode: str | None, profile: str | None) -> ValidateInput:
-    """The operation's inputs from the parsed body and the URL's mode and profile."""
+def read_input(kind: str | None, body: Any, mode: str | None, profile: str | None) -> ValidateInput:
+    """The operation's inputs from the parsed body and the URL's mode and profile (kind is
+    None at the system level, where a Parameters body is always the operation's)."""
     resource = body
     body_mode = body_profile = None
     if (
