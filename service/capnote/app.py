@@ -13,7 +13,17 @@ from fastapi.middleware.cors import CORSMiddleware
 
 from capnote import __version__
 from capnote.access import Access
-from capnote.api import audit, docs, errors, fhir, health, notes, web
+from capnote.api import (
+    audit,
+    docs,
+    errors,
+    fhir,
+    fhir_package,
+    fhir_validate,
+    health,
+    notes,
+    web,
+)
 from capnote.api.access_audit import AccessAudit
 from capnote.api.body_limit import BodyLimit
 from capnote.api.guard import Guard
@@ -92,7 +102,15 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     errors.install(app)
     docs.install(app)
     # audit before fhir: /fhir/AuditEvent is the auditor's, not the read API's.
-    for router in (health.router, notes.router, audit.router, fhir.router, web.router):
+    for router in (
+        health.router,
+        notes.router,
+        fhir_validate.router,
+        fhir_package.router,
+        audit.router,
+        fhir.router,
+        web.router,
+    ):
         app.include_router(router)
 
     if settings.cors_origins:

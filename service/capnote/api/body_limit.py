@@ -9,9 +9,14 @@ from capnote.errors import PayloadError
 from capnote.fhir.outcome import error_outcome
 
 
-def too_large() -> PayloadError:
-    """The one refusal of an oversized body, whether Content-Length or the stream told."""
-    return PayloadError("the request body is too large", 413, "too-costly")
+def too_large(max_bytes: int) -> PayloadError:
+    """The one refusal of an oversized body, whether Content-Length or the stream told; it
+    says the limit, so a sender knows what to split or raise (CAPNOTE_MAX_BODY_BYTES)."""
+    return PayloadError(
+        f"the request body is too large: the limit is {max_bytes} bytes (CAPNOTE_MAX_BODY_BYTES)",
+        413,
+        "too-costly",
+    )
 
 
 class BodyLimit:
@@ -28,7 +33,9 @@ class BodyLimit:
         declared = dict(scope.get("headers", [])).get(b"content-length")
         if declared is not None and (not declared.isdigit() or int(declared) > self.max_bytes):
             # The body is never read, so the connection cannot be reused.
-            await send_fhir(send, 413, error_outcome(too_large()), ((b"connection", b"close"),))
+            await send_fhir(
+                send, 413, error_outcome(too_large(self.max_bytes)), ((b"connection", b"close"),)
+            )
             return
         seen = 0
 
@@ -38,7 +45,7 @@ class BodyLimit:
             if message["type"] == "http.request":
                 seen += len(message.get("body", b""))
                 if seen > self.max_bytes:
-                    raise too_large()
+                    raise too_large(self.max_bytes)
             return message
 
         await self.app(scope, counted, send)

@@ -1,4 +1,4 @@
-"""The FHIR R4 read API and $validate, under /fhir, as application/fhir+json."""
+"""The FHIR R4 read API under /fhir, as application/fhir+json ($validate: fhir_validate)."""
 
 from __future__ import annotations
 
@@ -6,20 +6,17 @@ import re
 from datetime import UTC, date, datetime, time, timedelta
 from typing import Annotated
 
-import orjson
 from fastapi import APIRouter, Depends, Path, Query, Request
 from fastapi.responses import Response
 
-from capnote.api.auth import CHECK, READ, allow
+from capnote.api.auth import READ, allow
 from capnote.api.capability import capability_statement
 from capnote.api.deps import Reads
 from capnote.api.docs import responses
-from capnote.api.media import FHIR_JSON, fhir_response, json_body
+from capnote.api.media import FHIR_JSON, fhir_response
 from capnote.errors import InputError
-from capnote.fhir.outcome import outcome
-from capnote.fhir.validate import validate_resource
 from capnote.fhir_reads import SearchPage
-from capnote.findings import Finding, Severity, refusal
+from capnote.findings import refusal
 from capnote.notes import Principal
 
 router = APIRouter(prefix="/fhir", tags=["fhir"])
@@ -177,31 +174,3 @@ async def version_read(
     """One version of a resource (vread)."""
     resource = await reads.vread(kind, resource_id, version)
     return fhir_response(resource, headers={"ETag": f'W/"{version}"'})
-
-
-@router.post("/{kind}/$validate", responses=responses(200, 422, media=FHIR_JSON))
-async def validate(
-    request: Request, kind: str, _who: Annotated[Principal, Depends(allow(*CHECK))]
-) -> Response:
-    """Validate one R4 JSON resource (or a Bundle): an OperationOutcome with FHIRPath
-    expressions for every issue. The answer is 200 whether or not the resource is valid."""
-    raw = await json_body(request)
-    try:
-        data = orjson.loads(raw)
-    except orjson.JSONDecodeError as exc:
-        raise _problem("", "the body is not valid JSON") from exc
-    findings = validate_resource(data)
-    if isinstance(data, dict) and data.get("resourceType") not in (kind, None):
-        findings.insert(
-            0,
-            Finding(
-                severity=Severity.ERROR,
-                code="fhir-type-mismatch",
-                location="resourceType",
-                message=f"resourceType {data.get('resourceType')!r} does not match the URL's "
-                f"{kind}",
-                rule="POST [base]/[type]/$validate takes a resource of that type",
-                issue_type="invalid",
-            ),
-        )
-    return fhir_response(outcome(findings))

@@ -58,7 +58,7 @@ def check_record(raw: bytes, ctx: Context) -> tuple[str, list[Finding]]:
 
 
 def _resource_findings(data: dict[str, object]) -> list[Finding]:
-    """A FHIR resource's findings (capnote.fhir.validate, loaded with the R4B models on the
+    """A FHIR resource's findings (capnote.fhir.validate and its R4 table, loaded on the
     first resource met: a batch of notes alone never waits for them)."""
     from capnote.fhir.validate import validate_resource
 
