@@ -65,7 +65,9 @@ def test_a_draft_with_only_patient_eye_and_time_is_saved_with_its_findings(api: 
     body = r.json()
     assert body["status"] == "draft"
     assert body["accepted"] is False
-    assert body["bundle"] is None and body["resources"] == [] and body["derived"] is None
+    assert body["bundle"] is None
+    assert body["resources"] == []
+    assert body["derived"] is None
     codes = {(f["code"], f["location"]) for f in body["findings"] if f["severity"] == "error"}
     # What is still missing is listed, not refused.
     assert ("missing-field", "performer") in codes
@@ -143,13 +145,15 @@ def test_a_kept_draft_becomes_whole_then_signed_and_only_then_is_emitted(api: Ap
     third = put(api, key, whole, 2)
     assert third.status_code == 200, third.text
     body = third.json()
-    assert body["accepted"] is True and body["bundle"]["type"] == "transaction"
+    assert body["accepted"] is True
+    assert body["bundle"]["type"] == "transaction"
     # The first version the record sees is conditional (it updates or creates), whatever
     # its number: nothing of versions 1 and 2 was ever sent.
     assert body["bundle"]["entry"][0]["request"]["method"] == "PUT"
     whole["status"] = "final"
     signed = put(api, key, whole, 3)
-    assert signed.status_code == 200 and signed.json()["status"] == "final"
+    assert signed.status_code == 200
+    assert signed.json()["status"] == "final"
     # Once in the record, a version with errors is refused again.
     assert put(api, key, {**bare_draft(), "status": "final"}, 4, reason="x").status_code == 422
     versions = api.client.get(f"/notes/{key}/versions", headers=api.headers("clinician"))
@@ -183,7 +187,8 @@ def test_the_draft_key_is_the_whole_notes_key() -> None:
 def test_the_worklist_lists_todays_notes_and_my_drafts(api: Api) -> None:
     mine = post(api, bare_draft()).json()
     old_draft = post(
-        api, bare_draft(note_id={"system": "urn:x", "value": "OLD"}, started_at="2026-11-20T09:00:00Z")
+        api,
+        bare_draft(note_id={"system": "urn:x", "value": "OLD"}, started_at="2026-11-20T09:00:00Z"),
     ).json()
     someone_else = post(
         api, bare_draft(note_id={"system": "urn:x", "value": "THEIRS"}), role="submitter"
