@@ -98,6 +98,18 @@ def test_a_draft_without_what_identifies_it_is_refused_naming_that_field(
     assert [(i.get("expression") or [""])[0] for i in issues] == [location]
 
 
+@pytest.mark.parametrize(
+    "start", ["0045-09-06T09:25:44Z", "1979-12-31T23:59:59Z", "2200-01-01T00:00:00Z"]
+)
+def test_a_draft_starting_outside_the_years_of_the_laser_is_refused(api: Api, start: str) -> None:
+    # The stores cannot keep every year (SQLite's text dates need four digits), and no
+    # capsulotomy with this laser predates 1980 (from memory).
+    r = post(api, bare_draft(started_at=start))
+    assert r.status_code == 422
+    [issue] = r.json()["issue"]
+    assert issue["expression"] == ["started_at"]
+
+
 def test_a_final_note_with_errors_is_still_refused(api: Api) -> None:
     r = post(api, bare_draft(status="final"))
     assert r.status_code == 422

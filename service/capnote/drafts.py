@@ -15,10 +15,11 @@ from __future__ import annotations
 
 import uuid
 from dataclasses import dataclass
-from typing import Literal
+from datetime import UTC, datetime
+from typing import Annotated, Literal
 
 import orjson
-from pydantic import AwareDatetime, ConfigDict, ValidationError
+from pydantic import AwareDatetime, ConfigDict, Field, ValidationError
 
 from capnote.errors import InputError
 from capnote.fhir.codes import CANONICAL
@@ -26,6 +27,9 @@ from capnote.findings import Finding
 from capnote.note import Contract, Eye, Identifier
 from capnote.note_input import check_match, problem
 from capnote.rules.contract import finding_from_error
+
+EARLIEST = datetime(1980, 1, 1, tzinfo=UTC)
+LATEST = datetime(2200, 1, 1, tzinfo=UTC)
 
 PARTIAL = "partial"
 """The store's status of a version kept as typed (the note's own status is "draft")."""
@@ -42,7 +46,10 @@ class DraftIdentity(Contract):
     note_id: Identifier
     patient: Identifier
     eye: Eye
-    started_at: AwareDatetime
+    # A kept draft is stored before the contract's date checks pass, so its start is
+    # bounded here: no Nd:YAG capsulotomy was done before 1980 (from memory: the laser came
+    # into use for it around then), and the stores cannot keep a year before 1000.
+    started_at: Annotated[AwareDatetime, Field(ge=EARLIEST, lt=LATEST)]
     status: Literal["draft"]
 
 
