@@ -17,6 +17,9 @@ from capnote.drafts import DraftIdentity, draft_key
 from capnote.note import Note
 from capnote.notes import Principal, note_key
 from tests.conftest import NOW, Api, routine, sync_notes
+from tests.fhir_receiver import Store as Receiving
+from tests.fhir_receiver import running
+from tests.test_delivery import Clock, drain, worker_for
 
 
 def bare_draft(**over: Any) -> dict[str, Any]:
@@ -222,3 +225,28 @@ def test_the_worklist_lists_todays_notes_and_my_drafts(api: Api) -> None:
     bad = api.client.get("/notes/worklist?day=2026-02-30", headers=api.headers("clinician"))
     assert bad.status_code == 422
     assert api.client.get("/notes/worklist", headers=api.headers("auditor")).status_code == 403
+
+
+def test_a_draft_first_sent_whole_reaches_the_receiver_once(database_url: str) -> None:
+    # Over real HTTP to the test receiver: versions kept as typed send nothing; the first
+    # whole version is a conditional update, which creates what the receiver does not hold
+    # (FHIR R4 3.1.0.4.3, conditional update: no match creates the resource).
+    clock = Clock()
+    service = sync_notes(database_url, clock, forward=True)
+    who = Principal("dr test", "clinician")
+    try:
+        _c, kept = service.submit(json.dumps(bare_draft()).encode(), who)
+        whole = whole_of(bare_draft())
+        body = json.dumps({"note": whole}).encode()
+        stored = service.amend(kept.key, body, who, 1)
+        assert stored.version == 2
+        receiver = Receiving()
+        with running(receiver) as url:
+            worker = worker_for(service, url, clock)
+            drain(service, worker, clock, rounds=3)
+            service.run(worker.aclose())
+        entries = service.run(service.store.outbox(None, 10))
+        assert [(e.version, e.state) for e in entries] == [(2, "delivered")]
+        assert receiver.count("Procedure") == 1
+    finally:
+        service.close()
