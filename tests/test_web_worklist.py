@@ -228,6 +228,19 @@ def test_a_check_that_cannot_reach_the_server_says_so_instead_of_checking_for_ev
     expect(page.locator("#check-time")).to_contain_text("Last checked at")
 
 
+def test_a_server_that_never_answers_is_reported_as_unreachable(page: Page, site: Site) -> None:
+    # The form gives up after 15 s; here after 1 s (the same code path, shortened).
+    page.add_init_script("globalThis.capnoteAnswerWithinMs = 1000")
+    open_signed_in(page, site)
+    page.route("**/notes/check", lambda route: None)  # held: no answer ever comes
+    page.get_by_label("Patient ID", exact=True).fill("HX-SILENT")
+    expect(page.locator("#check-time")).to_contain_text("Checking")
+    expect(page.locator("#check-time")).to_contain_text(
+        "Not checked: capnote could not be reached", timeout=5000
+    )
+    expect(page.locator("#check-status")).to_contain_text("did not answer in time")
+
+
 # --- §6: the clinic's language ----------------------------------------------------------------
 
 
