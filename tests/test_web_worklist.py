@@ -183,7 +183,10 @@ def test_the_worklist_shows_today_my_drafts_and_follow_ups_each_opening_its_note
             r = api.post("/notes", content=json.dumps(note))
             assert r.status_code in (200, 201), r.text
         spike_key = api.post("/notes", content=json.dumps(spike)).json()["id"]
-    open_signed_in(page, site)
+    with page.expect_request("**/fhir/ServiceRequest?*") as search:
+        open_signed_in(page, site)
+    # Due by the server's clinic day (its clock is fixed on 1 December), not the browser's.
+    assert "status=active&occurrence=le2026-12-01&" in search.value.url
     expect(page.locator("#worklist-status")).to_contain_text("Day 2026-12-01")
     expect(page.locator("#today-list button", has_text="HX-TODAY-1")).to_have_count(1)
     followup = page.locator("#followups-list button", has_text="Next-day IOP check: HX101502")

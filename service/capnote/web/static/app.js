@@ -646,12 +646,6 @@ function fillList(list, items, empty) {
   list.replaceChildren(...(items.length ? items : [Object.assign(document.createElement("li"), { className: "muted", textContent: empty })]));
 }
 
-function clinicDay(offsetDays = 0) {
-  const parts = new Intl.DateTimeFormat("en-CA", { timeZone: state.zone, year: "numeric", month: "2-digit", day: "2-digit" })
-    .format(new Date(Date.now() + offsetDays * 86_400_000));
-  return parts; // YYYY-MM-DD in the clinic's zone
-}
-
 async function loadWorklist() {
   const status = $("worklist-status");
   if (!token.get()) {
@@ -660,11 +654,9 @@ async function loadWorklist() {
   }
   status.textContent = "Reading the worklist…";
   try {
-    const [work, due] = await Promise.all([
-      call("GET", "/notes/worklist"),
-      call("GET", `/fhir/ServiceRequest?status=active&occurrence=le${encodeURIComponent(clinicDay())}&_count=50`),
-    ]);
-    const w = work.body;
+    // The day is the server's (its clock, the clinic's zone), never the browser's.
+    const w = (await call("GET", "/notes/worklist")).body;
+    const due = await call("GET", `/fhir/ServiceRequest?status=active&occurrence=le${encodeURIComponent(w.day)}&_count=50`);
     fillList($("today-list"), w.today.map(noteLine), "No notes for today yet.");
     fillList($("drafts-list"), w.drafts.map(noteLine), "No drafts of yours.");
     const followups = (due.body.entry || []).map((e) => e.resource).map((r) => {
