@@ -27,6 +27,8 @@ ALLOWED: dict[tuple[str, str], set[str] | None] = {
     ("post", "/notes"): WRITE,
     ("post", "/notes/check"): CHECK,
     ("get", "/notes"): READ,
+    # The form's worklist names the asking token's drafts: for those who write notes.
+    ("get", "/notes/worklist"): WRITE,
     ("get", "/notes/{note_id}"): READ,
     ("get", "/notes/{note_id}/versions"): READ,
     ("get", "/notes/{note_id}/delivery"): READ,

@@ -13,7 +13,7 @@ from fastapi.testclient import TestClient
 from capnote.policy import load_policy
 from capnote.web import PAGE, STATIC
 from tests.conftest import NOW
-from tests.web_helpers import build_app
+from tests.web_helpers import SYSTEMS, build_app
 
 
 @pytest.fixture
@@ -79,6 +79,19 @@ def test_defaults_come_from_the_policy_without_a_token(client: TestClient) -> No
         {"name": "Capsulotomy lens (example, 1.6x)", "magnification": 1.6}
     ]
     assert "not a certified medical device" in body["caution"]
+    # The site's numbering systems, from its settings (tests.web_helpers.SYSTEMS).
+    assert body["identifier_systems"] == {
+        "patient": SYSTEMS["patient_id_system"],
+        "visit": SYSTEMS["visit_id_system"],
+        "staff": SYSTEMS["staff_id_system"],
+    }
+
+
+def test_numbering_systems_not_set_are_null_for_the_form(tmp_path: Path) -> None:
+    app = build_app(f"sqlite:///{tmp_path / 'capnote.sqlite3'}", lambda: NOW, systems=False)
+    with TestClient(app) as c:
+        systems = c.get("/web/defaults").json()["identifier_systems"]
+    assert systems == {"patient": None, "visit": None, "staff": None}
 
 
 def test_the_web_routes_stay_out_of_the_api_document(client: TestClient) -> None:

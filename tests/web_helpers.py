@@ -52,9 +52,20 @@ def missing(reason: str) -> NoReturn:
     pytest.skip(reason)
 
 
-def build_app(database_url: str, clock: Callable[[], datetime]) -> FastAPI:
-    """The whole service with the form's router (added here until app.py includes it)."""
-    app = create_app(Settings(database_url=database_url), clock=clock)
+# The numbering systems of the invented clinic in examples/notes, as a site sets them.
+SITE = "https://harbourside-eye.example/fhir/sid"
+SYSTEMS = {
+    "patient_id_system": f"{SITE}/mrn",
+    "visit_id_system": f"{SITE}/visit",
+    "staff_id_system": f"{SITE}/staff",
+}
+
+
+def build_app(database_url: str, clock: Callable[[], datetime], *, systems: bool = True) -> FastAPI:
+    """The whole service with the form's router (added here until app.py includes it), with
+    the site's numbering systems set unless systems is False."""
+    settings = Settings(database_url=database_url, **(SYSTEMS if systems else {}))
+    app = create_app(settings, clock=clock)
     if not any(getattr(route, "path", None) == "/" for route in app.routes):
         app.include_router(web.router)
     return app

@@ -40,6 +40,12 @@ class Settings(BaseSettings):
     forward_timeout_s: float = 30.0
     # Run a delivery loop inside each service process; off when `capnote deliver` runs alone.
     deliver_in_service: bool = True
+    # The hospital's numbering systems (URIs) for patient, visit and staff identifiers: the
+    # form records every number under these, so clinicians never type a URI. Unset, the form
+    # says the site has not set them and cannot save a note.
+    patient_id_system: str | None = None
+    visit_id_system: str | None = None
+    staff_id_system: str | None = None
     # How each emitted Bundle is checked before it leaves: "bindings" (required code
     # bindings; the default) or "r4b" (also the whole Bundle through the R4B models).
     output_check: OutputCheck = OutputCheck.BINDINGS

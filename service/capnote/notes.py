@@ -13,21 +13,23 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
-from datetime import datetime
+from dataclasses import dataclass, replace
+from datetime import date, datetime, time, timedelta
 from typing import Any
+from zoneinfo import ZoneInfo
 
 import orjson
 
 from capnote.assess import Assessment, Assessor
 from capnote.derive import PriorSession, recounted, total_energy_mj
+from capnote.drafts import PARTIAL, KeptDraft, amending_kept, draft_key, identity_of, kept_draft
 from capnote.errors import ConflictError, InputError, NotFoundError, PreconditionError
 from capnote.fhir.common import Emitted, KeyMaker, Version, stable_uuid
 from capnote.fhir.provenance import Actor, provenance_entry
 from capnote.fhir.readmodel import read_references, searchables
 from capnote.findings import Finding, has_errors
 from capnote.note import Note
-from capnote.note_input import json_object, known_key, problem, reason_text
+from capnote.note_input import check_match, json_object, known_key, problem, reason_text
 from capnote.rules import Context, check_payload, lifecycle
 from capnote.rules.lifecycle import Latest
 from capnote.store.base import (
@@ -184,17 +186,32 @@ def content_hash(note_json: str) -> str:
     return hashlib.sha256(note_json.encode()).hexdigest()
 
 
+# What a version kept as typed stores for its Bundle: an empty one, so that every reader of
+# stored Bundles finds one; the API answers null for it (nothing was emitted).
+_NO_BUNDLE = b'{"resourceType":"Bundle","type":"transaction","entry":[]}'
+
+
+def shown_status(status: str) -> str:
+    """A version's status as the API shows it: a draft kept as typed is a draft."""
+    return "draft" if status == PARTIAL else status
+
+
+def emitted_nothing(row: VersionRow) -> bool:
+    """True for a version kept as typed, or a void of one: no Bundle was ever made for it."""
+    return row.status == PARTIAL or (row.status == "void" and not row.roles)
+
+
 def _stored(row: VersionRow) -> StoredNote:
     return StoredNote(
         key=row.note_key,
         version=row.version,
-        status=row.status,
+        status=shown_status(row.status),
         recorded_at=row.recorded_at,
         recorded_by=row.recorded_by,
         reason=row.reason,
         note_json=row.note_json,
         result=orjson.loads(row.result_json),
-        bundle_json=unpack_bundle(row.bundle),
+        bundle_json=b"null" if emitted_nothing(row) else unpack_bundle(row.bundle),
         resources=read_references(row.note_key, unpack_roles(row.roles)),
         signed=signature_of(row),
     )
@@ -384,8 +401,11 @@ class NoteService:
         return new
 
     async def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredNote]:
-        """Store a new note; (False, stored) when the same note was already there."""
-        note, findings = self._checked(payload)
+        """Store a new note; (False, stored) when the same note was already there. A draft
+        with errors is kept as typed (capnote.drafts) when it says what it is about."""
+        note, findings = check_payload(payload, Context(self.assessor.policy, self.clock()))
+        if note is None or has_errors(findings):
+            return await self._submit_kept(kept_draft(payload, findings), who)
         note_json = note.model_dump_json(exclude_none=True)
         key, digest = note_key(note), content_hash(note_json)
         patient = (note.patient.system, note.patient.value)
@@ -404,6 +424,122 @@ class NoteService:
                 # between our read and our write: read again.
                 continue
         raise PreconditionError("the eye's record changed meanwhile; send the note again")
+
+    # -- drafts kept as typed ----------------------------------------------------------------
+
+    def _kept(
+        self,
+        key: str,
+        kept: KeptDraft,
+        version: int,
+        who: Principal,
+        action: str,
+        *,
+        voided: str | None = None,
+    ) -> tuple[NewVersion, StoredNote]:
+        """The row of a draft kept as typed (or of its void): the JSON and its findings, no
+        Bundle, no search rows; never forwarded."""
+        now = self.clock()
+        ident = kept.identity
+        view = assessment_view(Assessment(None, kept.findings))
+        row = VersionRow(
+            note_key=key,
+            version=version,
+            sender_system=ident.note_id.system,
+            sender_value=ident.note_id.value,
+            patient_system=ident.patient.system,
+            patient_value=ident.patient.value,
+            eye=ident.eye,
+            started_at=ident.started_at,
+            status="void" if voided is not None else PARTIAL,
+            total_energy_mj=None,
+            content_hash=content_hash(kept.note_json),
+            note_json=kept.note_json,
+            result_json=orjson.dumps(view).decode(),
+            bundle=pack_bundle(_NO_BUNDLE),
+            roles="",
+            reason=voided,
+            recorded_at=now,
+            recorded_by=who.label,
+            recorded_by_token=who.token_id,
+        )
+        audit = AuditRow(now, who.label, who.role, action, who.remote, who.token_id)
+        return NewVersion(row, (), audit), _stored(row)
+
+    async def _submit_kept(self, kept: KeptDraft, who: Principal) -> tuple[bool, StoredNote]:
+        """Keep a new draft as typed; a resend answers as a resend of a whole note does."""
+        key, digest = draft_key(kept.identity), content_hash(kept.note_json)
+        ident = kept.identity
+        patient = (ident.patient.system, ident.patient.value)
+        digests, _others = await self.store.before_write(key, patient, ident.eye)
+        if digests:
+            return False, await self._resent(key, digest, digests)
+        new, stored = self._kept(key, kept, 1, who, "create")
+        try:
+            await self.store.write_many([new], forward=False)
+        except DuplicateVersionError:
+            digests, _others = await self.store.before_write(key, patient, ident.eye)
+            return False, await self._resent(key, digest, digests)
+        return True, stored
+
+    async def _amend_kept(
+        self,
+        latest: VersionRow,
+        note_part: dict[str, Any],
+        who: Principal,
+        if_match: int,
+    ) -> StoredNote:
+        """A new version of a draft kept as typed: kept as typed again while it has errors,
+        stored and emitted like any new note once it passes (nothing was sent before it)."""
+        key = latest.note_key
+        payload = orjson.dumps(note_part)
+        note, findings = check_payload(payload, Context(self.assessor.policy, self.clock()))
+        whole = note is not None and not has_errors(findings)
+        if note is not None and whole:
+            note_json = note.model_dump_json(exclude_none=True)
+            identity: tuple[tuple[str, str], str] = (
+                (note.patient.system, note.patient.value),
+                note.eye,
+            )
+            if note_key(note) != key:
+                raise _other_identifier()
+        else:
+            kept = kept_draft(payload, findings)
+            note_json, identity = kept.note_json, identity_of(kept.note_json)
+            if draft_key(kept.identity) != key:
+                raise _other_identifier()
+        decision = amending_kept(
+            latest_version=latest.version,
+            latest_hash=latest.content_hash,
+            latest_identity=identity_of(latest.note_json),
+            identity=identity,
+            content_hash=content_hash(note_json),
+            if_match=if_match,
+        )
+        if decision != "store":
+            return _stored(latest)
+        try:
+            if note is None or not whole:
+                new, stored = self._kept(key, kept, latest.version + 1, who, "amend")
+                await self.store.write_many([new], forward=False)
+                return stored
+            # The first version the record sees: a new note for the eye's totals, with the
+            # version number counting on from the drafts before it.
+            others = await self._others(note, key)
+            change = Change(
+                key,
+                note,
+                note_json,
+                findings,
+                others,
+                Version(latest.version + 1),
+                note.status,
+                None,
+                "create",  # the record's first sight of the note (its Provenance: CREATE)
+            )
+            return await self._write(change, who, others, [*others, _session(change)])
+        except DuplicateVersionError as exc:
+            raise PreconditionError("the note changed meanwhile; read it and retry") from exc
 
     async def _resent(self, key: str, digest: str, digests: list[str]) -> StoredNote:
         """For a resend: the record as it stands now when any stored version has this content;
@@ -429,16 +565,15 @@ class NoteService:
                 "the amended note is missing",
                 'PUT /notes/{id} takes {"reason": ..., "note": {...}}',
             )
+        latest = await self._latest(key)
+        if latest.status == PARTIAL:
+            return await self._amend_kept(latest, note_part, who, if_match)
+        if latest.status == "void" and emitted_nothing(latest):
+            raise ConflictError("the note was voided; it cannot be amended")
         note, findings = self._checked(orjson.dumps(note_part))
         if note_key(note) != key:
-            raise problem(
-                "identifier-mismatch",
-                "note.note_id",
-                "the note's identifier belongs to another note",
-                "an amendment keeps the note identifier",
-            )
+            raise _other_identifier()
         note_json = note.model_dump_json(exclude_none=True)
-        latest = await self._latest(key)
         old = Note.model_validate_json(latest.note_json)
         facts = Latest(latest.version, latest.status, latest.content_hash, old)
         if lifecycle.amendment(facts, note, content_hash(note_json), reason, if_match) != "store":
@@ -463,6 +598,8 @@ class NoteService:
         key = known_key(key)
         reason = reason_text(json_object(body, allowed={"reason"}).get("reason"), required=True)
         latest = await self._latest(key)
+        if emitted_nothing(latest):
+            return await self._void_kept(latest, reason, who, if_match)
         note = Note.model_validate_json(latest.note_json)
         facts = Latest(latest.version, latest.status, latest.content_hash, note)
         if lifecycle.voiding(facts, if_match) != "store":
@@ -475,6 +612,26 @@ class NoteService:
             return await self._write(change, who, [*others, was], others)
         except DuplicateVersionError as exc:
             raise PreconditionError("the note changed meanwhile; read it and retry") from exc
+
+    async def _void_kept(
+        self, latest: VersionRow, reason: str | None, who: Principal, if_match: int
+    ) -> StoredNote:
+        """Void a draft kept as typed: a version that says so, and nothing to withdraw
+        anywhere (nothing of it ever left)."""
+        if latest.status == "void":
+            return _stored(latest)
+        check_match(latest.version, if_match)
+        kept = kept_draft(latest.note_json.encode(), [])
+        new, _stored_note = self._kept(
+            latest.note_key, kept, latest.version + 1, who, "void", voided=reason or ""
+        )
+        # The void keeps the findings the draft had, as a void of a whole note keeps its own.
+        row = replace(new.row, result_json=latest.result_json)
+        try:
+            await self.store.write_many([NewVersion(row, (), new.audit)], forward=False)
+        except DuplicateVersionError as exc:
+            raise PreconditionError("the note changed meanwhile; read it and retry") from exc
+        return _stored(row)
 
     async def _latest(self, key: str) -> VersionRow:
         latest = await self.store.latest(key)
@@ -505,7 +662,7 @@ class NoteService:
         return [
             {
                 "version": r.version,
-                "status": r.status,
+                "status": shown_status(r.status),
                 "reason": r.reason,
                 "recorded_at": r.recorded_at.isoformat(),
                 "recorded_by": r.recorded_by,
@@ -527,6 +684,22 @@ class NoteService:
         """The latest version of each matching note, in session order."""
         total, rows = await self.store.latest_per_note(patient, eye, start, end, offset, limit)
         return total, [_stored(r) for r in rows]
+
+    async def worklist(self, day: date | None, who: Principal) -> dict[str, Any]:
+        """The form's worklist: the notes of one clinic day (today by default) and the
+        drafts whose latest version this principal saved."""
+        zone = ZoneInfo(self.assessor.policy.calendar.timezone)
+        day = day or self.clock().astimezone(zone).date()
+        start = datetime.combine(day, time(0), zone)
+        end = datetime.combine(day + timedelta(days=1), time(0), zone)
+        rows = await self.store.worklist(start, end, who.token_id, WORKLIST_MAX)
+        today = [_summary(r) for r in rows if start <= r.started_at < end]
+        drafts = [
+            _summary(r)
+            for r in rows
+            if r.status in ("draft", PARTIAL) and r.recorded_by_token == who.token_id
+        ]
+        return {"day": day.isoformat(), "today": today, "drafts": drafts}
 
     async def delivery(self, key: str) -> dict[str, Any]:
         """Where each version's Bundle stands on its way to the hospital's FHIR server."""
@@ -554,6 +727,34 @@ class NoteService:
     async def ready(self) -> None:
         """UnavailableError when the store does not answer."""
         await self.store.ping()
+
+
+WORKLIST_MAX = 200
+"""The most notes a worklist lists (a clinic day holds far fewer laser sessions)."""
+
+
+def _summary(row: VersionRow) -> dict[str, Any]:
+    """One line of the worklist: which note, whose, which eye, when, and how far it is."""
+    return {
+        "id": row.note_key,
+        "version": row.version,
+        "status": shown_status(row.status),
+        "accepted": bool(orjson.loads(row.result_json).get("accepted")),
+        "patient": {"system": row.patient_system, "value": row.patient_value},
+        "eye": row.eye,
+        "started_at": row.started_at.isoformat(),
+        "recorded_at": row.recorded_at.isoformat(),
+        "recorded_by": row.recorded_by,
+    }
+
+
+def _other_identifier() -> InputError:
+    return problem(
+        "identifier-mismatch",
+        "note.note_id",
+        "the note's identifier belongs to another note",
+        "an amendment keeps the note identifier",
+    )
 
 
 def receiver_answer(entry_error: str | None) -> object:

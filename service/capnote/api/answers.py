@@ -9,7 +9,7 @@ committed file and fails a test, never the public API silently.
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import date, datetime
 from typing import Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field
@@ -76,11 +76,16 @@ class NoteAnswer(AssessmentAnswer):
     signed: Signed | None = Field(
         description="who signed this version and when (none for a draft or a void)"
     )
-    note: Note
+    note: Note | dict[str, Any] = Field(
+        description="the note; a draft kept as typed (accepted false) is the JSON as sent"
+    )
     resources: list[str] = Field(
         description="where each Bundle entry is read on the FHIR API, in entry order"
     )
-    bundle: dict[str, Any] = Field(description="the FHIR R4 transaction Bundle")
+    bundle: dict[str, Any] | None = Field(
+        description="the FHIR R4 transaction Bundle; null for a draft kept as typed, which is "
+        "emitted and forwarded only once it passes the contract"
+    )
 
 
 class CheckAnswer(AssessmentAnswer):
@@ -118,6 +123,28 @@ class VersionsAnswer(Answer):
 
     id: str
     versions: list[VersionSummary]
+
+
+class WorklistNote(Answer):
+    """One line of the worklist."""
+
+    id: str
+    version: int
+    status: Literal["draft", "final", "void"]
+    accepted: bool = Field(description="false for a draft that still has errors")
+    patient: dict[str, str] = Field(description="the patient identifier (system and value)")
+    eye: Literal["right", "left"]
+    started_at: datetime
+    recorded_at: datetime
+    recorded_by: str
+
+
+class WorklistAnswer(Answer):
+    """GET /notes/worklist: one clinic day's notes and the asking token's drafts."""
+
+    day: date
+    today: list[WorklistNote]
+    drafts: list[WorklistNote]
 
 
 class DeliveryState(Answer):

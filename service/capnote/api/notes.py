@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from datetime import date
 from typing import Annotated, Any
 
 import orjson
@@ -15,6 +16,7 @@ from capnote.api.answers import (
     NoteAnswer,
     NoteListAnswer,
     VersionsAnswer,
+    WorklistAnswer,
 )
 from capnote.api.auth import CHECK, READ, WRITE, allow
 from capnote.api.deps import Notes
@@ -114,6 +116,17 @@ async def list_notes(
         "notes": [orjson.Fragment(r.json()) for r in rows],
     }
     return json_response(body)
+
+
+@router.get("/worklist", responses=responses(200, 422, model=WorklistAnswer))
+async def worklist(
+    notes: Notes,
+    who: Annotated[Principal, Depends(allow(*WRITE))],
+    day: Annotated[date | None, Query(description="a clinic day; today by default")] = None,
+) -> Response:
+    """The notes of one clinic day and the drafts this token last saved (the form opens on
+    it)."""
+    return json_response(await notes.worklist(day, who))
 
 
 @router.get("/{note_id}", responses=responses(200, 404, model=NoteAnswer))

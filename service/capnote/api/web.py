@@ -10,11 +10,12 @@ from __future__ import annotations
 import re
 from typing import Any
 
-from fastapi import APIRouter
+from fastapi import APIRouter, Request
 from fastapi.responses import FileResponse, Response
 
 from capnote.api.deps import SitePolicy
 from capnote.api.media import json_response
+from capnote.config import Settings
 from capnote.errors import NotFoundError
 from capnote.note import LaserSettings
 from capnote.plain_text import CAUTION
@@ -65,9 +66,11 @@ def _days(window: Window) -> float:
     return window.target * _MINUTES[window.unit] / _MINUTES["d"]
 
 
-def form_defaults(policy: Policy) -> dict[str, Any]:
-    """What the form shows before anything is typed: the site policy's defaults, no patient data."""
+def form_defaults(policy: Policy, settings: Settings | None = None) -> dict[str, Any]:
+    """What the form shows before anything is typed: the site policy's defaults and the
+    site's numbering systems; no patient data."""
     schedule = policy.schedule
+
     return {
         "policy_name": policy.policy_name,
         "timezone": policy.calendar.timezone,
@@ -85,12 +88,18 @@ def form_defaults(policy: Policy) -> dict[str, Any]:
             for lens in policy.contact_lenses
         ],
         "note_id_system": FORM_NOTE_SYSTEM,
+        # The form records every number under the site's system; null: not set here.
+        "identifier_systems": {
+            "patient": settings.patient_id_system if settings else None,
+            "visit": settings.visit_id_system if settings else None,
+            "staff": settings.staff_id_system if settings else None,
+        },
         "caution": FORM_CAUTION,
         "service_caution": CAUTION,
     }
 
 
 @router.get("/web/defaults")
-def defaults(policy: SitePolicy) -> Response:
-    """The form's defaults from the site policy (token-free: no patient data)."""
-    return json_response(form_defaults(policy))
+def defaults(policy: SitePolicy, request: Request) -> Response:
+    """The form's defaults from the site policy and settings (token-free: no patient data)."""
+    return json_response(form_defaults(policy, request.app.state.settings))

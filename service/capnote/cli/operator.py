@@ -259,11 +259,23 @@ def serve(
     _migrated(settings.database_url)
     if demo:
         _load_demo(settings)
+        # The invented demo clinic's numbering systems, unless the site set its own.
+        for name, system in DEMO_SYSTEMS.items():
+            if getattr(settings, name) is None:  # set neither in the environment nor .env
+                os.environ[f"CAPNOTE_{name.upper()}"] = system
     os.environ["CAPNOTE_MIGRATE_ON_START"] = "false"
     # The service has no /docs page (its script would come from a CDN, which the service's
     # CSP and many hospital networks refuse); the OpenAPI document is served as JSON.
     typer.echo(f"capnote serving on http://{host}:{port} (OpenAPI document at /openapi.json)")
     serving.run("capnote.app:app_from_environment", host, port, workers)
+
+
+DEMO_SYSTEMS = {
+    "patient_id_system": "https://harbourside-eye.example/fhir/sid/mrn",
+    "visit_id_system": "https://harbourside-eye.example/fhir/sid/visit",
+    "staff_id_system": "https://harbourside-eye.example/fhir/sid/staff",
+}
+"""The numbering systems of the demo notes (examples/notes), for `capnote serve --demo`."""
 
 
 def _load_demo(settings: Settings) -> None:

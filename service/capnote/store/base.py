@@ -451,6 +451,37 @@ STATEMENTS.update(
 )
 
 
+def _worklist() -> ClauseElement:
+    """The latest version of each note whose session starts in a range (a clinic day) or
+    that is a draft last saved with one token: the form's worklist."""
+
+    def wanted() -> Any:
+        return or_(
+            and_(_NOTE.c.started_at >= bindparam("start"), _NOTE.c.started_at < bindparam("end")),
+            and_(
+                _NOTE.c.recorded_by_token == bindparam("author"),
+                or_(_NOTE.c.status == bindparam("draft"), _NOTE.c.status == bindparam("partial")),
+            ),
+        )
+
+    newest = (
+        select(_NOTE.c.note_key, func.max(_NOTE.c.version).label("v"))
+        .where(_NOTE.c.note_key.in_(select(_NOTE.c.note_key).where(wanted())))
+        .group_by(_NOTE.c.note_key)
+        .subquery()
+    )
+    joined = _NOTE.join(
+        newest, and_(_NOTE.c.note_key == newest.c.note_key, _NOTE.c.version == newest.c.v)
+    )
+    return (
+        select(*(_NOTE.c[name] for name in VERSION_COLUMNS))
+        .select_from(joined)
+        .where(wanted())
+        .order_by(_NOTE.c.started_at, _NOTE.c.note_key)
+        .limit(bindparam("limit", type_=Integer))
+    )
+
+
 def _listing(eye: bool, start: bool, end: bool, count: bool) -> ClauseElement:
     """The latest version of each note of a patient, optionally one eye and a date range.
 
@@ -674,6 +705,23 @@ class Store(ABC):
         [(total,)] = await self._fetch(counted, params)
         rows = await self._fetch(listed, {**params, "offset": offset, "limit": limit})
         return int(total), [version_row(r) for r in rows]
+
+    async def worklist(
+        self, start: datetime, end: datetime, author: int | None, limit: int
+    ) -> list[VersionRow]:
+        """The latest version of each note whose session starts in [start, end) or that is
+        a draft whose latest version the token author saved, in session order (at most
+        limit)."""
+        statement = self._variant(("worklist",), _worklist)
+        params = {
+            "start": self._time(start),
+            "end": self._time(end),
+            "author": author,
+            "draft": "draft",
+            "partial": "partial",
+            "limit": limit,
+        }
+        return [version_row(r) for r in await self._fetch(statement, params)]
 
     async def fhir_search(
         self,
@@ -981,11 +1029,12 @@ def audit_params(
 
 def sessions_from_rows(key: str, rows: Sequence[Sequence[Any]]) -> list[PriorSession]:
     """PriorSession from (note_key, started_at, total_energy_mj, status) rows, leaving out
-    the note itself and voided notes."""
+    the note itself, voided notes and drafts kept as typed (capnote.drafts: not yet a
+    session the record knows)."""
     return [
         PriorSession(read_moment(started), energy or 0.0, k)
         for k, started, energy, status in rows
-        if k != key and status != "void"
+        if k != key and status not in ("void", "partial")
     ]
 
 

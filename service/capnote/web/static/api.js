@@ -20,6 +20,9 @@ export class ApiError extends Error {
   }
 }
 
+// Tests may shorten it (globalThis.capnoteAnswerWithinMs, set before the page loads).
+const ANSWER_WITHIN_MS = 15_000;
+
 const KINDS = { 401: "signed-out", 403: "forbidden", 404: "missing", 409: "conflict",
   412: "stale", 413: "too-large", 422: "refused" };
 
@@ -37,11 +40,16 @@ export async function call(method, path, { body, ifMatch, signal, bearer } = {})
   if (secret) headers.Authorization = `Bearer ${secret}`;
   if (body !== undefined) headers["Content-Type"] = "application/json";
   if (ifMatch) headers["If-Match"] = ifMatch;
+  // A server that never answers is as unreachable as one that refuses the connection: after
+  // ANSWER_WITHIN_MS the request is given up and said so, never left "Checking…".
+  const late = AbortSignal.timeout(globalThis.capnoteAnswerWithinMs || ANSWER_WITHIN_MS);
+  const both = signal ? AbortSignal.any([signal, late]) : late;
   let response;
   try {
-    response = await fetch(path, { method, headers, signal, cache: "no-store",
+    response = await fetch(path, { method, headers, signal: both, cache: "no-store",
       body: body === undefined ? undefined : JSON.stringify(body) });
   } catch (err) {
+    if (late.aborted) throw new ApiError("network", 0, "capnote did not answer in time");
     if (err && err.name === "AbortError") throw err;
     throw new ApiError("network", 0, "capnote could not be reached");
   }
@@ -74,7 +82,7 @@ export function explain(err, doing) {
   const kept = "Everything typed is still in the form.";
   switch (err.kind) {
     case "network":
-      return `${doing} failed: capnote could not be reached (network or server down). ${kept} Try again when the connection is back.`;
+      return `${doing} failed: ${err.detail || "capnote could not be reached"} (network or server down). ${kept} Try again when the connection is back.`;
     case "signed-out":
       return `${doing} failed: your token was not accepted (it is unknown, revoked or missing). Sign in again with a valid clinician token. ${kept}`;
     case "forbidden":

@@ -19,6 +19,7 @@ const state = {
   zone: "Europe/London",
   noteId: null,
   stored: null, // {id, version, status, reason} of the latest stored version
+  pendingOpen: null, // the record id the address named at start, opened once signed in
   loaded: null, // the stored note last opened: what the form has no control for is kept from it
   dirty: false,
   touched: new Set(),
@@ -262,7 +263,27 @@ function refreshLocal() {
 
 function currentNote(status) {
   const wanted = status || (state.stored && state.stored.status === "final" ? "final" : "draft");
-  return collect(form, state.zone, state.noteId, wanted, state.loaded);
+  return withSystems(collect(form, state.zone, state.noteId, wanted, state.loaded));
+}
+
+/**
+ * Every number typed goes under the site's numbering system (from the site settings), so no
+ * clinician types a URI; a note opened from the server keeps the system it was stored with
+ * (changing it would move the note to another patient). A system the site has not set stays
+ * out, and the check says so in words for the administrator.
+ */
+function withSystems(note) {
+  const site = state.defaults?.identifier_systems || {};
+  const loaded = state.loaded || {};
+  const give = (part, stored, own) => {
+    if (!part || part.value === undefined) return;
+    const system = stored || own;
+    if (system) part.system = system;
+  };
+  give(note.patient, loaded.patient?.system, site.patient);
+  give(note.encounter, loaded.encounter?.system, site.visit);
+  give(note.performer?.identifier, loaded.performer?.identifier?.system, site.staff);
+  return note;
 }
 
 function renderFindings() {
@@ -327,6 +348,7 @@ async function runCheck() {
   state.controller = controller;
   const mine = ++state.seq;
   $("check-time").textContent = "Checking…";
+  $("check-again").hidden = true;
   try {
     const answer = await call("POST", "/notes/check", { body, signal: controller.signal });
     if (mine !== state.seq) return;
@@ -334,9 +356,20 @@ async function runCheck() {
   } catch (err) {
     if (err.name === "AbortError" || mine !== state.seq) return;
     checkStatus(explain(err, "Checking the note"), "error");
+    // Never "Checking…" for ever: say when the check failed and that it runs again.
+    $("check-time").textContent = err.kind === "network"
+      ? `Not checked: capnote could not be reached at ${clock()}, clinic time. The check runs again after the next change, or press "Check again".`
+      : `Not checked at ${clock()}, clinic time.`;
+    $("check-again").hidden = false;
     if (err.kind === "signed-out") signedOut();
   }
 }
+
+function clock() {
+  return new Intl.DateTimeFormat("en-GB", { timeZone: state.zone, hour: "2-digit", minute: "2-digit", hourCycle: "h23" }).format(new Date());
+}
+
+$("check-again").addEventListener("click", () => runCheck());
 
 // --- stored note state --------------------------------------------------------------------
 
@@ -347,7 +380,10 @@ function setStored(view) {
   $("record-state").textContent = s
     ? `${s.status === "final" ? "signed final" : s.status === "void" ? "void (entered in error)" : "draft"}, version ${s.version}`
     : "not stored yet";
-  $("note-number").textContent = state.noteId.value;
+  // The address names the stored note (its record id, no patient data), so a reload or
+  // another tab opens it again from the server; nothing of the note is kept in the browser.
+  const want = s ? `#note=${s.id}` : "";
+  if (window.location.hash !== want) history.replaceState(null, "", want || window.location.pathname);
   const final = s && s.status === "final";
   const voided = s && s.status === "void";
   $("save-draft").hidden = Boolean(final || voided);
@@ -471,9 +507,16 @@ async function save(kind) {
     state.dirty = false;
     state.refused = [];
     $("amend-reason").value = "";
+    state.loaded = view.note;
     showView(view, "Saved and checked");
     const what = view.status === "final" ? (kind === "amend" ? "Amendment saved" : "Signed as final") : "Saved as draft";
-    notice(`${what}: version ${view.version}, record id ${view.id}.`, "ok");
+    const errors = (view.findings || []).filter((f) => f.severity === "error").length;
+    const still = view.status === "draft" && errors
+      ? ` It is kept on the server as typed; ${errors} ${errors === 1 ? "entry needs" : "entries need"} attention before it can be signed.`
+      : "";
+    notice(`${what}: version ${view.version}.${still}`, "ok");
+    showVersions();
+    loadWorklist();
   } catch (err) {
     if (err.kind === "refused") {
       state.refused = outcomeFindings(err.body);
@@ -529,6 +572,8 @@ $("void-dialog").addEventListener("close", async () => {
     setStored(answer.body);
     state.dirty = false;
     notice(`Voided: version ${answer.body.version} records the note as entered in error.`, "ok");
+    showVersions();
+    loadWorklist();
   } catch (err) {
     notice(explain(err, "Voiding"), "error");
     if (err.kind === "signed-out") signedOut();
@@ -549,29 +594,108 @@ async function showVersions() {
       li.textContent = `Version ${v.version}: ${v.status}, ${when}${v.recorded_by ? `, by ${v.recorded_by}` : ""}${v.reason ? `. Reason: ${v.reason}` : ""}`;
       list.append(li);
     }
+    $("versions-status").textContent = `As stored at ${clock()}, clinic time.`;
     $("versions").hidden = false;
   } catch (err) {
-    notice(explain(err, "Reading the versions"), "error");
+    // The panel says it could not be read, never an old list as if it were current.
+    $("versions-list").replaceChildren();
+    $("versions-status").textContent = err.kind === "network"
+      ? `The versions could not be read: capnote could not be reached (${clock()}, clinic time). Press "Show versions" to try again.`
+      : explain(err, "Reading the versions");
+    $("versions").hidden = false;
     if (err.kind === "signed-out") signedOut();
   }
 }
 $("show-versions").addEventListener("click", showVersions);
 
-$("open-form").addEventListener("submit", async (event) => {
-  event.preventDefault();
-  const id = $("open-id").value.trim();
-  if (!id) return;
+async function openNote(id) {
   if (state.dirty && !window.confirm("The note in the form has unsaved changes. Open another note and discard them?")) return;
   try {
     const answer = await call("GET", `/notes/${encodeURIComponent(id)}`);
     loadStored(answer.body);
     notice(`Opened version ${answer.body.version} (${answer.body.status}).`, "ok");
     await showVersions();
+    $("step-patient").scrollIntoView({ block: "start" });
   } catch (err) {
     notice(explain(err, "Opening the note"), "error");
     if (err.kind === "signed-out") signedOut();
   }
+}
+
+$("open-form").addEventListener("submit", (event) => {
+  event.preventDefault();
+  const id = $("open-id").value.trim();
+  if (id) openNote(id);
 });
+
+function noteInAddress() {
+  const m = /^#note=([0-9a-f-]{36})$/.exec(window.location.hash);
+  return m ? m[1] : null;
+}
+
+// --- the worklist: today's notes, my drafts, the follow-ups due ---------------------------
+
+const EYE_WORDS = { right: "right eye", left: "left eye" };
+
+function workItem(text, sub, id) {
+  const li = document.createElement("li");
+  const open = document.createElement("button");
+  open.type = "button";
+  open.className = "link work-open";
+  open.textContent = text;
+  open.dataset.note = id;
+  open.addEventListener("click", () => openNote(id));
+  li.append(open);
+  if (sub) {
+    const p = document.createElement("p");
+    p.className = "work-sub";
+    p.textContent = sub;
+    li.append(p);
+  }
+  return li;
+}
+
+function noteLine(n) {
+  const when = formatMoment(n.started_at, state.zone);
+  const stateWords = n.status === "final" ? "signed" : n.status === "void" ? "void (entered in error)"
+    : n.accepted ? "draft" : "draft, not complete yet";
+  return workItem(`${n.patient.value}, ${EYE_WORDS[n.eye] || n.eye}, ${when}`, `${stateWords}; version ${n.version}`, n.id);
+}
+
+function fillList(list, items, empty) {
+  list.replaceChildren(...(items.length ? items : [Object.assign(document.createElement("li"), { className: "muted", textContent: empty })]));
+}
+
+async function loadWorklist() {
+  const status = $("worklist-status");
+  if (!token.get()) {
+    status.textContent = "Sign in to see today's notes, your drafts and the follow-ups due.";
+    return;
+  }
+  status.textContent = "Reading the worklist…";
+  try {
+    // The day is the server's (its clock, the clinic's zone), never the browser's.
+    const w = (await call("GET", "/notes/worklist")).body;
+    const due = await call("GET", `/fhir/ServiceRequest?status=active&occurrence=le${encodeURIComponent(w.day)}&_count=50`);
+    fillList($("today-list"), w.today.map(noteLine), "No notes for today yet.");
+    fillList($("drafts-list"), w.drafts.map(noteLine), "No drafts of yours.");
+    const followups = (due.body.entry || []).map((e) => e.resource).map((r) => {
+      const ref = (r.supportingInfo || []).map((x) => x.reference || "").find((x) => x.startsWith("Procedure/"));
+      const id = ref ? ref.slice("Procedure/".length) : r.id.slice(0, 36);
+      const at = r.occurrenceTiming?.event?.[0];
+      const who = r.subject?.identifier?.value || "";
+      return workItem(`${r.code?.text || "Follow-up"}: ${who}`, at ? `due ${formatMoment(at, state.zone)}` : null, id);
+    });
+    fillList($("followups-list"), followups, "No follow-ups due today.");
+    status.textContent = `Day ${w.day}, as read at ${clock()}, clinic time.`;
+  } catch (err) {
+    status.textContent = err.kind === "network"
+      ? `The worklist could not be read: capnote could not be reached (${clock()}, clinic time). Press "Refresh the list" to try again.`
+      : explain(err, "Reading the worklist");
+    if (err.kind === "signed-out") signedOut();
+  }
+}
+$("refresh-worklist").addEventListener("click", loadWorklist);
 
 $("new-note").addEventListener("click", () => {
   if (state.dirty && !window.confirm("The note in the form has unsaved changes. Start a new note and discard them?")) return;
@@ -589,6 +713,7 @@ function signedIn() {
   $("signin").hidden = true;
   $("signed-in-as").textContent = "Signed in (token kept for this tab only)";
   $("sign-out").hidden = false;
+  loadWorklist();
 }
 
 function signedOut(message) {
@@ -617,7 +742,9 @@ $("signin-form").addEventListener("submit", async (event) => {
     $("token").value = "";
     m.hidden = true;
     signedIn();
-    runCheck();
+    const id = state.pendingOpen;
+    state.pendingOpen = null;
+    if (id && !state.stored) await openNote(id); else runCheck();
   } catch (err) {
     m.textContent = err.kind === "signed-out"
       ? "That token was not accepted: it is unknown or has been revoked. Check it and try again."
@@ -693,13 +820,22 @@ async function start() {
     $("review-hint").textContent = `Leave empty for the site default: ${num(d.review_days_routine, 0)} days, or ${num(d.review_days_raised, 0)} when the risk is raised.`;
     $("zone-hint").textContent = `Dates and times are the clinic's (${d.timezone}), on open clinic days.`;
   }
+  // Read before the empty form replaces the address.
+  state.pendingOpen = noteInAddress();
   newNote();
   if (token.get()) {
     signedIn();
-    runCheck();
+    // After a reload (or a link from another tab) the note comes back from the server.
+    const id = state.pendingOpen;
+    state.pendingOpen = null;
+    if (id) await openNote(id); else runCheck();
   } else {
     $("signin").hidden = false;
   }
+  window.addEventListener("hashchange", () => {
+    const id = noteInAddress();
+    if (id && token.get() && (!state.stored || state.stored.id !== id)) openNote(id);
+  });
   document.body.dataset.ready = "true";
 }
 

@@ -2,6 +2,7 @@
 // all of them in the summary list of the side panel.
 
 import { elementFor, describe, pathIndex } from "./noteform.js";
+import { clinical } from "./messages.js";
 
 const WORDS = { error: "Error", warning: "Warning", information: "Note" };
 let serial = 0;
@@ -61,7 +62,8 @@ function addDescribedBy(el, id) {
   el.setAttribute("aria-describedby", now.join(" "));
 }
 
-function summaryItem(f, el, form) {
+function summaryItem(raw, el, form) {
+  const f = { ...raw, ...clinical(raw, el) };
   const li = document.createElement("li");
   li.className = `finding sev-${f.severity}`;
   li.dataset.code = f.code;
@@ -86,7 +88,7 @@ function summaryItem(f, el, form) {
     });
     where.append(go);
   } else {
-    where.textContent = f.location ? `Not tied to one field: ${f.location}` : "About the whole note";
+    where.textContent = f.location ? "Not tied to one field of the form" : "About the whole note";
   }
   li.append(where);
   const detail = detailLine(f);
@@ -113,8 +115,9 @@ export function showFindings({ form, index, findings, list, stillNeeded, quiet }
   }
   const order = { error: 0, warning: 1, information: 2 };
   shown.sort((a, b) => (order[a.f.severity] ?? 3) - (order[b.f.severity] ?? 3));
-  for (const { f, el } of shown) {
+  for (const { f: raw, el } of shown) {
     const id = `finding-${++serial}`;
+    const f = { ...raw, ...clinical(raw, el) };
     if (el) {
       const box = document.createElement("div");
       box.className = `finding-inline sev-${f.severity}`;
@@ -133,7 +136,7 @@ export function showFindings({ form, index, findings, list, stillNeeded, quiet }
       if (f.severity === "error") target.setAttribute("aria-invalid", "true");
       holder(el).classList.add(f.severity === "error" ? "has-error" : "has-warning");
     }
-    items.push({ f, el });
+    items.push({ f: raw, el });
   }
   // The summary is a live region: rebuild it only when what it says has changed, so that
   // screen readers hear new findings, not the same list after every pause in typing.

@@ -362,8 +362,9 @@ export function elementFor(index, location) {
     const el = index.get(path);
     if (el) return el;
     path = parentPath(path);
-    // A whole section ("before", "result") is no place for a finding: the summary holds it.
-    if (!/[.[]/.test(path)) return null;
+    // A whole section ("before", "result") is no place for a finding: the summary holds it;
+    // a top-level part the form shows as one field (the patient) is.
+    if (!/[.[]/.test(path)) return index.get(path)?.matches(".field[data-path]") ? index.get(path) : null;
   }
   return null;
 }
@@ -373,6 +374,8 @@ export function describe(el) {
   if (!el) return "";
   let source = null;
   if (el.type !== "radio" && el.labels && el.labels.length) source = el.labels[0];
+  // A field's box (data-path on a .field) is named by its own label.
+  else if (el.matches(".field") && el.querySelector(":scope > label")) source = el.querySelector(":scope > label");
   else source = el.closest("fieldset")?.querySelector(":scope > legend") || null;
   if (!source) return el.getAttribute("aria-label") || "";
   const copy = source.cloneNode(true);
