@@ -8,7 +8,9 @@ pass; other types are checked as R4B and the report says so.
 
 from __future__ import annotations
 
+import typing
 from collections import Counter
+from collections.abc import Sequence
 from typing import Any
 
 from fhir.resources.R4B import get_fhir_model_class
@@ -45,6 +47,38 @@ def _error(code: str, location: str, message: str, rule: str, issue_type: str) -
     )
 
 
+def _type_name(annotation: Any) -> str | None:
+    """The FHIR type a field of fhir.resources holds: its annotations are abstract classes
+    named <Type>Type (ReferenceType), inside Optional, List or Annotated."""
+    if isinstance(annotation, type):
+        name = annotation.__name__
+        return name[:-4] if name.endswith("Type") and len(name) > 4 else None
+    for arg in typing.get_args(annotation):
+        found = _type_name(arg)
+        if found is not None:
+            return found
+    return None
+
+
+def expected_type(model: type[Resource], loc: Sequence[int | str]) -> str | None:
+    """The FHIR data type expected at a pydantic error's location (``Reference`` for
+    ``subject``), walking the models of the types on the way; None where it cannot tell."""
+    current: Any = model
+    name: str | None = None
+    for part in loc:
+        if isinstance(part, int):
+            continue
+        fields = getattr(current, "model_fields", None)
+        if not isinstance(fields, dict) or part not in fields:
+            return None
+        name = _type_name(fields[part].annotation)
+        try:
+            current = get_fhir_model_class(name) if name is not None else None
+        except (KeyError, ValueError):
+            current = None
+    return name
+
+
 def _structure(kind: str, data: dict[str, Any]) -> list[Finding]:
     try:
         model = get_fhir_model_class(kind)
@@ -64,7 +98,13 @@ def _structure(kind: str, data: dict[str, Any]) -> list[Finding]:
         model.model_validate(data)
     except ValidationError as exc:
         return [
-            finding_from_error(e, root=kind, code="fhir-structure", rule=_RULE)
+            finding_from_error(
+                e,
+                root=kind,
+                code="fhir-structure",
+                rule=_RULE,
+                expected=expected_type(model, e["loc"]),
+            )
             for e in exc.errors(include_url=False)
         ]
     except (TypeError, ValueError) as exc:
