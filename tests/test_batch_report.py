@@ -165,7 +165,7 @@ def test_html_has_a_table_per_file(checked: dict[str, object]) -> None:
     inputs = checked["inputs"]
     assert isinstance(inputs, list)
     assert list(rows) == [str(p) for p in inputs]
-    for name, (records, failed, errors, warnings, information) in rows.items():
+    for name, (_records, failed, errors, warnings, information) in rows.items():
         mine = [x for x in found if x[0] == name]
         assert errors == sum(1 for x in mine if x[3] == "error")
         assert warnings == sum(1 for x in mine if x[3] == "warning")
@@ -186,7 +186,8 @@ def test_html_summary_has_a_row_per_code_and_rule_that_adds_up(
         table[(r.attrs["data-code"], r.attrs["data-severity"])] += int(r.values[0])
     assert dict(table) == dict(by_code(found))
     # out-of-range, from two different rules, is two rows that say which rule each is.
-    rules = {r.cells[2]: int(r.values[0]) for r in summary if r.attrs["data-code"] == "out-of-range"}
+    ranges = [r for r in summary if r.attrs["data-code"] == "out-of-range"]
+    rules = {r.cells[2]: int(r.values[0]) for r in ranges}
     assert rules == {
         "IOP must be >= 0 and <= 80 mmHg": 13,
         "pulse energy must be > 0 and <= 10 mJ": 1,
