@@ -398,7 +398,7 @@ def _default_sigint() -> None:
     signal.signal(signal.SIGINT, signal.SIG_DFL)
 
 
-def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
+def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> tuple[Path, int]:
     """Start a check with a report, feed it 3,000 lines on standard input and send sig once
     findings are printing.
 
@@ -438,12 +438,12 @@ def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
             with contextlib.suppress(BrokenPipeError):
                 proc.stdin.close()
     assert proc.returncode != 0
-    return target
+    return target, proc.returncode
 
 
 @pytest.mark.parametrize("fmt", ["html", "csv"])
 def test_a_killed_check_leaves_the_last_report_whole(tmp_path: Path, fmt: str) -> None:
-    target = _stop_midway(tmp_path, fmt, signal.SIGKILL)
+    target, _code = _stop_midway(tmp_path, fmt, signal.SIGKILL)
     assert target.read_text() == "the last good report"
     # Nothing half-written under a visible name (a hidden .part may stay after SIGKILL).
     assert sorted(p.name for p in tmp_path.iterdir() if not p.name.startswith(".")) == [
@@ -453,8 +453,15 @@ def test_a_killed_check_leaves_the_last_report_whole(tmp_path: Path, fmt: str) -
 
 
 @pytest.mark.parametrize("fmt", ["html", "csv"])
-def test_an_interrupted_check_cleans_up_after_itself(tmp_path: Path, fmt: str) -> None:
-    target = _stop_midway(tmp_path, fmt, signal.SIGINT)
+@pytest.mark.parametrize(("sig", "code"), [(signal.SIGINT, 130), (signal.SIGTERM, 143)])
+def test_an_interrupted_check_cleans_up_after_itself(
+    tmp_path: Path, fmt: str, sig: signal.Signals, code: int
+) -> None:
+    # Ctrl-C and SIGTERM (what a service manager or `kill` sends) alike: no hidden .part file
+    # and no temporary rows left, the last report untouched, and the shell's exit code for
+    # a death by that signal (128 + its number), never 1 ("errors found").
+    target, returned = _stop_midway(tmp_path, fmt, sig)
+    assert returned == code
     assert target.read_text() == "the last good report"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["dump.ndjson", target.name]
 

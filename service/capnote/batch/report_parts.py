@@ -154,7 +154,7 @@ def files_table(files: dict[str, FileCounts], skipped: tuple[Skipped, ...]) -> s
     if not skipped:
         return table + "<p>No file was skipped.</p>"
     items = "".join(
-        f'<tr><th scope="row">{e(s.name)}</th><td>{e(s.reason)}</td></tr>'
+        f'<tr class="skipped-row"><th scope="row">{e(s.name)}</th><td>{e(s.reason)}</td></tr>'
         for s in skipped[:SHOWN_SKIPPED]
     )
     more = (
