@@ -220,6 +220,11 @@ def test_each_code_links_to_its_rows(checked: dict[str, object]) -> None:
             assert all(r.links and r.links[0].startswith("#r") for r in listed)
         else:  # the first rows of a warning code; the CSV report has all of them
             assert len(listed) == min(found[key], SAMPLE_ROWS)
+    inputs = checked["inputs"]
+    assert isinstance(inputs, list)
+    names = {str(p) for p in inputs}
+    for r in page.body_rows("codes"):  # every row says where its record is: file:line
+        assert r.cells[0].split("\n")[0].rsplit(":", 1)[0] in names, r.cells[0]
     record_ids = {i for i in page.ids if i.startswith("r") and i[1:].isdigit()}
     links = {link.removeprefix("#") for r in page.body_rows("codes") for link in r.links}
     assert links <= record_ids

@@ -25,7 +25,9 @@ from capnote.batch.checking import EMPTY, FILE, RecordResult
 from capnote.batch.output import AtomicFile, Row, RunInfo, rows
 from capnote.batch.report_parts import (
     CODE_HEADINGS,
+    EMPTY_NOTE,
     ERROR_HEADINGS,
+    FILE_NOTES,
     OTHER_RULES,
     RULES_PER_CODE,
     SHOWN_INPUTS,
@@ -88,9 +90,10 @@ class HtmlReport:
         if counts is None:
             counts = self.files[name] = FileCounts("NDJSON" if result.source.streamed else "JSON")
         if result.kind == EMPTY:
-            counts.empty = True
+            counts.note = EMPTY_NOTE
             return
-        counts.unreadable |= result.kind == FILE and result.line is None
+        if result.kind == FILE and result.line is None and result.findings:
+            counts.note = FILE_NOTES.get(result.findings[0].code, "")
         record_rows = list(rows(result))
         counts.records += 1
         seen: set[tuple[Key, tuple[str, str]]] = set()

@@ -47,8 +47,16 @@ class FileCounts:
     errors: int = 0
     warnings: int = 0
     information: int = 0
-    empty: bool = False
-    unreadable: bool = False
+    note: str = ""  # why a file gave no record of its own: empty, unreadable, too large
+
+
+# A file-level finding's code -> what the table of files says about the file.
+FILE_NOTES = {
+    "file-unreadable": "cannot be read",
+    "file-too-large": "too large to read",
+    "json-holds-ndjson": "holds NDJSON: use --ndjson",
+}
+EMPTY_NOTE = "empty: no records"
 
 
 @dataclass(slots=True)
@@ -80,11 +88,11 @@ def location(text: str) -> str:
 
 
 def record_cell(row: Row, anchor: str | None) -> str:
-    """Where a record is: its line (or "whole file") and its identifier; anchor, when the
-    record is listed among the records with errors, links there."""
-    where = "whole file" if row.line is None else f"line {row.line:,}"
+    """Where a record is, as file:line (file:- for a whole JSON file), and its identifier;
+    anchor, when the record is listed among the records with errors, links there."""
+    where = f"{e(row.file)}:{'-' if row.line is None else row.line}"
     if anchor is not None:
-        where = f'<a href="#{anchor}">{e(row.file)}:{row.line if row.line else "-"}</a>'
+        where = f'<a href="#{anchor}">{where}</a>'
     ident = f"<br><small>{e(row.identifier)}</small>" if row.identifier else ""
     return f"{where}{ident}"
 
@@ -135,13 +143,12 @@ def files_table(files: dict[str, FileCounts], skipped: tuple[Skipped, ...]) -> s
     """The table per file, and the list of what the folder walks skipped."""
     body = []
     for name, c in files.items():
-        note = "empty: no records" if c.empty else "cannot be read" if c.unreadable else ""
         body.append(
             f'<tr class="file-row" data-file="{e(name)}"><th scope="row">{e(name)}</th>'
             f"<td>{c.kind}</td>"
             f'<td class="n">{n(c.records)}</td><td class="n">{n(c.failed)}</td>'
             f'<td class="n">{n(c.errors)}</td><td class="n">{n(c.warnings)}</td>'
-            f'<td class="n">{n(c.information)}</td><td>{note}</td></tr>'
+            f'<td class="n">{n(c.information)}</td><td>{e(c.note)}</td></tr>'
         )
     table = (
         '<table class="files" id="by-file"><caption>Each input file</caption><thead><tr>'
