@@ -36,7 +36,7 @@ thead th { background: var(--soft); }
 .n { text-align: right; font-variant-numeric: tabular-nums; }
 table.counts { margin-top: 1rem; }
 table.counts tbody { display: flex; flex-wrap: wrap; gap: .5rem; }
-table.counts tr { display: flex; flex-direction: column-reverse; min-width: 9.5rem;
+table.counts tr { display: flex; flex-direction: column-reverse; min-width: 7.5rem;
   border: 1px solid var(--rule); border-radius: 4px; padding: .3rem .7rem; }
 table.counts th, table.counts td { border: 0; padding: 0; text-align: left; }
 table.counts th { font-weight: normal; color: #333; }
@@ -65,9 +65,9 @@ section.code h3 { font-size: 1rem; margin: 1.4rem 0 .2rem; }
 .rows tbody th { font-weight: normal; background: var(--soft); }
 .rows thead th { position: sticky; top: 0; z-index: 1; }
 .rows small { color: #444; }
-.errors th:nth-child(1) { width: 12%; } .errors th:nth-child(2) { width: 7%; }
+.errors th:nth-child(1) { width: 12%; } .errors th:nth-child(2) { width: 8.5%; }
 .errors th:nth-child(3) { width: 15%; } .errors th:nth-child(4) { width: 11%; }
-.errors th:nth-child(5) { width: 25%; } .errors th:nth-child(6) { width: 19%; }
+.errors th:nth-child(5) { width: 24%; } .errors th:nth-child(6) { width: 18.5%; }
 .code-rows th:nth-child(1) { width: 16%; } .code-rows th:nth-child(2) { width: 17%; }
 .code-rows th:nth-child(3) { width: 33%; } .code-rows th:nth-child(4) { width: 12%; }
 tbody.record { border-top: 2px solid #999; }
