@@ -11,11 +11,11 @@ from typing import Any
 import orjson
 
 from capnote.assess import Assessor
-from capnote.batch.identity import SeenNotes, note_identifier, raw_identifier
+from capnote.batch.identity import SeenNotes, raw_identifier
 from capnote.batch.inputs import Record, Source
 from capnote.derive import Derived
 from capnote.findings import Finding, Severity, has_errors
-from capnote.note import Note
+from capnote.note import Identifier, Note
 from capnote.rules import Context, check_payload
 from capnote.schedule import DueItem
 
@@ -36,7 +36,16 @@ class RecordResult:
     findings: list[Finding]
     derived: Derived | None = None
     due: tuple[DueItem, ...] = ()
-    identifier: str | None = None  # the note's system|value, or a resource's type/id
+    # Who the record is: a note's identifier (made into text only when a report asks), or
+    # what a record that is no note names (a resource's type/id).
+    note_id: Identifier | None = None
+    named: str | None = None
+
+    @property
+    def identifier(self) -> str | None:
+        """The note identifier as system|value, or a resource's resourceType/id."""
+        ident = self.note_id
+        return f"{ident.system}|{ident.value}" if ident is not None else self.named
 
     @property
     def failed(self) -> bool:
@@ -51,7 +60,7 @@ class Checked:
     kind: str
     findings: list[Finding]
     note: Note | None = None
-    identifier: str | None = None
+    named: str | None = None  # what a record that is no note names (raw_identifier)
 
 
 def _loose(raw: bytes) -> Any:
@@ -81,7 +90,7 @@ def _unparsed_resource(raw: bytes, error: orjson.JSONDecodeError) -> Checked | N
         rule="a FHIR resource is well-formed JSON (RFC 8259) with finite numbers",
         issue_type="structure",
     )
-    return Checked(FHIR, [finding], identifier=raw_identifier(data))
+    return Checked(FHIR, [finding], named=raw_identifier(data))
 
 
 def what_record(raw: bytes, ctx: Context) -> Checked:
@@ -93,7 +102,7 @@ def what_record(raw: bytes, ctx: Context) -> Checked:
     """
     note, findings = check_payload(raw, ctx)
     if note is not None:
-        return Checked(NOTE, findings, note, note_identifier(note))
+        return Checked(NOTE, findings, note)
     # A record that is not a note may be a FHIR resource: it names resourceType (or escapes a
     # character, which might spell it). Asked only after the note contract refused it, so the
     # common case, a note, is parsed once and never searched.
@@ -106,13 +115,13 @@ def what_record(raw: bytes, ctx: Context) -> Checked:
             if unparsed is not None:
                 return unparsed
         if isinstance(data, dict) and "resourceType" in data:
-            return Checked(FHIR, _resource_findings(data), identifier=raw_identifier(data))
+            return Checked(FHIR, _resource_findings(data), named=raw_identifier(data))
     else:
         try:
             data = orjson.loads(raw)
         except orjson.JSONDecodeError:
             data = None
-    return Checked(NOTE, findings, identifier=raw_identifier(data))
+    return Checked(NOTE, findings, named=raw_identifier(data))
 
 
 def resource_type(raw: bytes) -> str | None:
@@ -179,31 +188,32 @@ class Checker:
         self.ctx = Context(assessor.policy, now)
         self.seen = SeenNotes()
 
-    def check_file(self, source: Source, raw: bytes) -> RecordResult:
+    def check_file(self, record: Record) -> RecordResult:
         """A whole JSON file: a FHIR resource when it has a resourceType, else a note."""
+        source, raw = record.source, record.data or b""
         checked = what_record(raw, self.ctx)
         if checked.kind == FHIR:
-            return RecordResult(source, None, FHIR, checked.findings, identifier=checked.identifier)
+            return RecordResult(source, None, FHIR, checked.findings, named=checked.named)
         if checked.note is None:
             hint = _ndjson_hint(raw)
             if hint is not None:
                 return RecordResult(source, None, FILE, [hint])
-            return RecordResult(source, None, NOTE, checked.findings, identifier=checked.identifier)
-        findings = self._repeat(checked, source, None)
+            return RecordResult(source, None, NOTE, checked.findings, named=checked.named)
+        findings = self._repeat(checked, record)
         if has_errors(checked.findings):
-            return RecordResult(source, None, NOTE, findings, identifier=checked.identifier)
+            return RecordResult(source, None, NOTE, findings, note_id=checked.note.note_id)
         # A single note gets the whole job: its derived values and due items are shown.
         result = self.assessor.complete(checked.note, checked.findings)
         return RecordResult(
-            source, None, NOTE, findings, result.derived, result.due, checked.identifier
+            source, None, NOTE, findings, result.derived, result.due, checked.note.note_id
         )
 
-    def _repeat(self, checked: Checked, source: Source, line: int | None) -> list[Finding]:
+    def _repeat(self, checked: Checked, record: Record) -> list[Finding]:
         """The findings, with one more when the note's identifier was met before; only notes
         the service would store count (one with errors is refused, so it is no first)."""
-        if checked.note is None or has_errors(checked.findings):
+        if checked.note is None or record.data is None or has_errors(checked.findings):
             return checked.findings
-        again = self.seen.meet(checked.note, source, line)
+        again = self.seen.meet(checked.note, record.data, record)
         return checked.findings if again is None else [*checked.findings, again]
 
     def check(self, record: Record) -> RecordResult:
@@ -213,11 +223,12 @@ class Checker:
                 return RecordResult(record.source, record.line, EMPTY, [])
             return RecordResult(record.source, record.line, FILE, [record.failure])
         if record.line is None:
-            return self.check_file(record.source, record.data)
+            return self.check_file(record)
         checked = what_record(record.data, self.ctx)
-        findings = self._repeat(checked, record.source, record.line)
+        findings = self._repeat(checked, record)
+        note_id = checked.note.note_id if checked.note is not None else None
         return RecordResult(
-            record.source, record.line, checked.kind, findings, identifier=checked.identifier
+            record.source, record.line, checked.kind, findings, note_id=note_id, named=checked.named
         )
 
     def results(self, records: Iterable[Record]) -> Iterator[RecordResult]:

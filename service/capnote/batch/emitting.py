@@ -82,7 +82,7 @@ def emit_records(records: Iterable[Record], assessor: Assessor, now: datetime) -
         if result.bundle is None or result.note is None:
             yield Emitted(record, None, tuple(f for f in result.findings if f.blocking))
             continue
-        again = seen.meet(result.note, record.source, record.line)
+        again = seen.meet(result.note, record.data, record)
         if again is not None and again.blocking:
             yield Emitted(record, None, (again,))
         elif again is not None:

@@ -7,11 +7,10 @@ other content the service's 409 Conflict.
 
 from __future__ import annotations
 
-import hashlib
 from array import array
 from typing import Any
 
-from capnote.batch.inputs import Source
+from capnote.batch.inputs import STDIN, Record, Source
 from capnote.findings import Finding, Severity
 from capnote.note import Note
 
@@ -42,10 +41,17 @@ def raw_identifier(data: Any) -> str | None:
     return None
 
 
-def _digest(text: str) -> int:
-    """A 64-bit digest as a number: collisions among a million notes have odds of about
-    one in thirty million (the birthday bound, n^2 / 2^65)."""
-    return int.from_bytes(hashlib.blake2b(text.encode(), digest_size=8).digest()) or 1
+_MASK = (1 << 64) - 1
+
+
+def _digest(data: bytes | str | tuple[str, str]) -> int:
+    """A 64-bit digest as an unsigned number (0 marks an empty slot, so never 0).
+
+    Python's own hash (SipHash, keyed afresh in every process, so no input can be made to
+    collide on purpose): the table lives in one process only, and blake2b cost three times
+    as much per record. Chance collisions among a million notes have odds of about one in
+    thirty million (the birthday bound, n^2 / 2^65)."""
+    return (hash(data) & _MASK) or 1
 
 
 def content_digest(note: Note) -> int:
@@ -58,22 +64,45 @@ def _where(source: Source, line: int | None) -> str:
     return source.shown if line is None else f"{source.shown}:{line}"
 
 
-_LINE_BITS = 40  # a slot's place: the source's number above, the line (0: whole file) below
+def _reread(source: Source, offset: int) -> Note | None:
+    """The note at offset in source (a line, or the whole file), read again; None when it
+    cannot be (the file has changed or gone)."""
+    try:
+        with source.path.open("rb") as stream:
+            stream.seek(offset)
+            raw = stream.readline() if source.streamed else stream.read()
+        return Note.model_validate_json(raw.removeprefix(b"\xef\xbb\xbf"))
+    except (OSError, ValueError):
+        return None
+
+
+_LINE_BITS = 40  # a place: the source's number above, the line (0: whole file) below
+_CANONICAL = 1 << 63  # the content digest is of the stored form, not of the raw bytes
 
 
 class SeenNotes:
-    """The note identifiers of a batch so far, in an open-addressing table of three arrays
-    of 64-bit numbers (identifier digest, content digest, where first met): 24 bytes a
-    slot, about 40 a note, where a dict of tuples takes about 280. This is the one memory
-    a batch spends per record."""
+    """The note identifiers of a batch so far, in an open-addressing table of four arrays
+    of 64-bit numbers (identifier digest, content digest, where first met, its byte offset):
+    32 bytes a slot, about 55 a note, where a dict of tuples takes about 280. This is the one
+    memory a batch spends per record.
+
+    The content digest is of the raw record: the stored form (pydantic's dump, which costs
+    half a parse) is computed only when an identifier comes again with other bytes, and the
+    first record is then read again from its file. Standard input cannot be read again, so
+    its notes are digested in their stored form at once.
+    """
 
     def __init__(self) -> None:
         self._keys = array("Q", bytes(8 * 1024))
         self._contents = array("Q", bytes(8 * 1024))
         self._places = array("Q", bytes(8 * 1024))
+        self._offsets = array("Q", bytes(8 * 1024))
         self._used = 0
         self._sources: list[Source] = []
         self._numbers: dict[Source, int] = {}
+        self._last: Source | None = None
+        self._last_number = 0
+        self._unreadable = False
 
     def _slot(self, key: int) -> int:
         """Where key is, or the empty slot where it would go (linear probing)."""
@@ -84,42 +113,64 @@ class SeenNotes:
         return slot
 
     def _grow(self) -> None:
-        keys, contents, places = self._keys, self._contents, self._places
-        size = 2 * len(keys)
-        self._keys = array("Q", bytes(8 * size))
-        self._contents = array("Q", bytes(8 * size))
-        self._places = array("Q", bytes(8 * size))
-        for key, content, place in zip(keys, contents, places, strict=True):
+        old = (self._keys, self._contents, self._places, self._offsets)
+        size = 2 * len(self._keys)
+        self._keys, self._contents, self._places, self._offsets = (
+            array("Q", bytes(8 * size)) for _ in range(4)
+        )
+        for key, content, place, offset in zip(*old, strict=True):
             if key:
                 slot = self._slot(key)
-                self._keys[slot], self._contents[slot], self._places[slot] = key, content, place
+                self._keys[slot], self._contents[slot] = key, content
+                self._places[slot], self._offsets[slot] = place, offset
 
     def _place(self, source: Source, line: int | None) -> int:
-        number = self._numbers.get(source)
-        if number is None:
-            number = self._numbers[source] = len(self._sources)
-            self._sources.append(source)
-        return (number << _LINE_BITS) | (line or 0)
+        if source is not self._last:  # a batch meets its sources one after another
+            number = self._numbers.get(source)
+            if number is None:
+                number = self._numbers[source] = len(self._sources)
+                self._sources.append(source)
+            self._last, self._last_number = source, number
+            self._unreadable = source.path == STDIN  # no second reading of standard input
+        return (self._last_number << _LINE_BITS) | (line or 0)
 
-    def _first(self, place: int) -> str:
+    def _first(self, place: int) -> tuple[Source, int | None]:
         line = place & ((1 << _LINE_BITS) - 1)
-        return _where(self._sources[place >> _LINE_BITS], line or None)
+        return self._sources[(place & ~_CANONICAL) >> _LINE_BITS], line or None
 
-    def meet(self, note: Note, source: Source, line: int | None) -> Finding | None:
+    def _same(self, slot: int, note: Note, raw: bytes) -> bool:
+        """Whether note has the content of the first one with its identifier."""
+        if self._places[slot] & _CANONICAL:
+            return self._contents[slot] == content_digest(note)
+        if self._contents[slot] == _digest(raw):
+            return True
+        source, _line = self._first(self._places[slot])
+        first = _reread(source, self._offsets[slot])
+        return first is not None and content_digest(first) == content_digest(note)
+
+    def meet(self, note: Note, raw: bytes, record: Record) -> Finding | None:
         """None the first time an identifier is met; after that a finding: an error when the
         content differs from the first note's, information when it is the same."""
-        key = _digest(note_identifier(note))
-        digest = content_digest(note)
-        slot = self._slot(key)
-        if self._keys[slot] == 0:
-            self._keys[slot], self._contents[slot] = key, digest
-            self._places[slot] = self._place(source, line)
+        key = _digest((note.note_id.system, note.note_id.value))
+        keys = self._keys
+        mask = len(keys) - 1
+        slot = key & mask
+        while keys[slot] not in (0, key):  # the probing of _slot, inline: once per record
+            slot = (slot + 1) & mask
+        if keys[slot] == 0:
+            place = self._place(record.source, record.line)
+            if self._unreadable:
+                digest, place = content_digest(note), place | _CANONICAL
+            else:
+                digest = _digest(raw)
+            keys[slot], self._contents[slot] = key, digest
+            self._places[slot], self._offsets[slot] = place, record.offset
             self._used += 1
-            if self._used * 5 > len(self._keys) * 3:  # past a load of 0.6
+            if self._used * 5 > mask * 3:  # past a load of 0.6
                 self._grow()
             return None
-        where = self._first(self._places[slot])
-        if self._contents[slot] != digest:
+        where = _where(*self._first(self._places[slot]))
+        if not self._same(slot, note, raw):
             return Finding(
                 severity=Severity.ERROR,
                 code=DUPLICATE,

@@ -63,6 +63,7 @@ class Record:
     data: bytes | None
     failure: Finding | None = None
     size: int = 0  # bytes of input behind the record, for a progress bar's time left
+    offset: int = 0  # where the record's line starts in its file, to read it again
 
     @property
     def empty(self) -> bool:
@@ -210,6 +211,7 @@ def _lines(source: Source, stream: BinaryIO) -> Iterator[Record]:
     """The non-blank lines of an NDJSON stream, numbered from 1 as an editor numbers them."""
     number = 0
     found = False
+    offset = 0
     while line := stream.readline(MAX_LINE_BYTES + 1):
         number += 1
         if len(line) > MAX_LINE_BYTES:
@@ -217,14 +219,16 @@ def _lines(source: Source, stream: BinaryIO) -> Iterator[Record]:
             while not line.endswith(b"\n") and (line := stream.readline(MAX_LINE_BYTES)):
                 size += len(line)  # the rest of the overlong line, read in bounded pieces
             found = True
-            yield Record(source, number, None, _too_long(), size)
+            yield Record(source, number, None, _too_long(), size, offset)
+            offset += size
             continue
         raw = line.strip()
         if number == 1 and raw.startswith(_BOM):  # RFC 8259 lets a reader ignore a BOM
             raw = raw[len(_BOM) :].strip()
         if raw:  # blank lines separate nothing in NDJSON: skipped, not counted, still numbered
             found = True
-            yield Record(source, number, raw, None, len(line))
+            yield Record(source, number, raw, None, len(line), offset)
+        offset += len(line)
     if not found:  # named in the summary and the report, rather than passing unnoticed
         yield Record(source, None, None)
 
