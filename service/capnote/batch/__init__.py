@@ -9,7 +9,7 @@
                or report_csv
     emitting   note records -> one compact Bundle per line and note id; errors skipped
 
-Everything streams: memory holds one record and counters, never the results (and about 40
+Everything streams: memory holds one record and counters, never the results (and under 100
 bytes a note for the identifiers met). Nothing here knows of the command line; capnote.cli
 calls it.
 """

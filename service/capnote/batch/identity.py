@@ -83,7 +83,7 @@ _CANONICAL = 1 << 63  # the content digest is of the stored form, not of the raw
 class SeenNotes:
     """The note identifiers of a batch so far, in an open-addressing table of four arrays
     of 64-bit numbers (identifier digest, content digest, where first met, its byte offset):
-    32 bytes a slot, about 55 a note, where a dict of tuples takes about 280. This is the one
+    32 bytes a slot, 50 to 100 a note, where a dict of tuples takes about 280. This is the one
     memory a batch spends per record.
 
     The content digest is of the raw record: the stored form (pydantic's dump, which costs
