@@ -72,6 +72,14 @@ def _loose(raw: bytes) -> Any:
         return None
 
 
+def _problem(error: orjson.JSONDecodeError) -> str:
+    """What is wrong with the JSON and where, in the reader's words."""
+    what = error.msg
+    if "infinity" in what or "out of range" in what:
+        what = "a number too large to hold (such as 1e400)"
+    return f"{what} at line {error.lineno}, column {error.colno}"
+
+
 def _unparsed_resource(raw: bytes, error: orjson.JSONDecodeError) -> Checked | None:
     """A record that names resourceType but is not well-formed JSON: a FHIR resource with
     one finding, rather than a note with every field missing."""
@@ -86,7 +94,7 @@ def _unparsed_resource(raw: bytes, error: orjson.JSONDecodeError) -> Checked | N
         severity=Severity.ERROR,
         code="json-invalid",
         location=kind if isinstance(kind, str) else "",
-        message=f"the resource is not valid JSON: {error}",
+        message=f"the resource is not valid JSON: {_problem(error)}",
         rule="a FHIR resource is well-formed JSON (RFC 8259) with finite numbers",
         issue_type="structure",
     )
