@@ -165,6 +165,15 @@ def test_every_skipped_and_empty_file_is_counted_and_named(tmp_path: Path) -> No
         r.attrs["data-file"]: r.cells for r in page.body_rows("files") if "data-file" in r.attrs
     }
     assert files[str(root / "empty.ndjson")][-1] == "empty: no records"
+    emitted = capnote("emit", str(root), "--now", NOW)
+    assert emitted.returncode == 0, emitted.stderr
+    assert len(emitted.stdout.splitlines()) == 2
+    assert f"{root / 'empty.ndjson'}: empty, no records" in emitted.stderr
+    assert f"skipped: {root / 'notes.txt'} (not .json or .ndjson)" in emitted.stderr
+    assert (
+        "2 Bundle(s) from 2 record(s) in 3 file(s); 0 skipped for errors; 1 empty file(s); "
+        "4 file(s) skipped in folders"
+    ) in emitted.stderr
 
 
 def test_an_empty_standard_input_is_named(tmp_path: Path) -> None:

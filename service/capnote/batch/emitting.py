@@ -99,6 +99,7 @@ class EmitTally:
     emitted: int = 0
     repeated: int = 0
     empty: int = 0
+    skipped_files: int = 0  # what folder walks passed over
 
     def add(self, item: Emitted) -> None:
         """Count one note (an empty file is counted apart)."""
@@ -124,4 +125,6 @@ class EmitTally:
             text += f"; {self.repeated} repeated note(s) emitted once"
         if self.empty:
             text += f"; {self.empty} empty file(s)"
+        if self.skipped_files:
+            text += f"; {self.skipped_files} file(s) skipped in folders"
         return text

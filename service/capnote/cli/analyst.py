@@ -18,7 +18,7 @@ from capnote import __version__
 from capnote.assess import Assessor
 from capnote.batch.checking import Checker, Tally, resource_type
 from capnote.batch.emitting import EmitTally, emit_records, not_a_note
-from capnote.batch.inputs import STDIN, STDIN_NAME, Skipped, Source, expand, gather, records
+from capnote.batch.inputs import STDIN, STDIN_NAME, Skipped, Source, gather, records
 from capnote.batch.listing import (
     BundleListing,
     Listing,
@@ -257,7 +257,8 @@ def emit(
     ] = None,
 ) -> None:
     """Print a note's FHIR R4 transaction Bundle, or one Bundle per line for a batch."""
-    sources = expand(inputs, ndjson, exclude=[out] if out is not None else [])
+    found = gather(inputs, ndjson, exclude=[out] if out is not None else [])
+    sources = found.sources
     batch = (
         ndjson
         or len(sources) > 1
@@ -267,7 +268,7 @@ def emit(
     try:
         with stoppable():
             if batch:
-                _emit_batch(sources, assessor(policy), present(now), out)
+                _emit_batch(sources, assessor(policy), present(now), out, found.skipped)
             else:
                 _emit_one(sources[0], policy, now, out)
     except BrokenPipeError:
@@ -305,12 +306,18 @@ def _emit_one(source: Source, policy: Path | None, now: datetime | None, out: Pa
 
 
 def _emit_batch(
-    sources: list[Source], assessing: Assessor, moment: datetime, out: Path | None
+    sources: list[Source],
+    assessing: Assessor,
+    moment: datetime,
+    out: Path | None,
+    skipped: list[Skipped],
 ) -> None:
-    """A Bundle per clean note, one per line; errors on stderr as file:line: finding."""
+    """A Bundle per clean note, one per line; errors on stderr as file:line: finding, and
+    what folder walks skipped, named and counted."""
     target = AtomicFile(out) if out is not None else None
     sink = target.binary if target is not None else sys.stdout.buffer
-    tally = EmitTally()
+    tally = EmitTally(skipped_files=len(skipped))
+    _name_skipped(skipped)
     try:
         for item in emit_records(records(sources), assessing, moment):
             tally.add(item)
