@@ -88,16 +88,20 @@ def by_code(found: list[Located]) -> Counter[tuple[str, str]]:
 
 @dataclass
 class Row:
-    """One table row of the report: the section it is in, its attributes and cell texts."""
+    """One table row of the report: the top-level section it is in, the innermost section's
+    attributes (a file's group of records, a code's rows), its attributes and cell texts."""
 
     section: str
+    group: dict[str, str]
     attrs: dict[str, str]
     cells: list[str] = field(default_factory=list)
     values: list[str] = field(default_factory=list)  # data-value of numbers, in order
+    links: list[str] = field(default_factory=list)  # href of links in the row
 
 
 class ReportPage(HTMLParser):
-    """The report's rows by section, its counts by id, and every tag name used."""
+    """The report's rows by section, its counts by id, every tag name used, the ids in
+    document order and the sections' attributes."""
 
     def __init__(self, text: str) -> None:
         super().__init__(convert_charrefs=True)
@@ -105,7 +109,9 @@ class ReportPage(HTMLParser):
         self.counts: dict[str, int] = {}
         self.tags: Counter[str] = Counter()
         self.attributes: list[tuple[str, str, str]] = []
-        self._section = ""
+        self.ids: list[str] = []
+        self.sections: list[dict[str, str]] = []
+        self._stack: list[dict[str, str]] = []
         self._row: Row | None = None
         self._cell: list[str] | None = None
         self._count_id: str | None = None
@@ -116,14 +122,23 @@ class ReportPage(HTMLParser):
         a = {k: v or "" for k, v in attrs}
         self.tags[tag] += 1
         self.attributes += [(tag, k, v) for k, v in a.items()]
+        if "id" in a:
+            self.ids.append(a["id"])
         if tag == "section":
-            self._section = a.get("id", "")
+            self._stack.append(a)
+            self.sections.append(a)
         elif tag == "tr":
-            self._row = Row(self._section, a)
+            top = self._stack[0].get("id", "") if self._stack else ""
+            group = self._stack[-1] if self._stack else {}
+            self._row = Row(top, group, a)
         elif tag in ("td", "th") and self._row is not None:
             self._cell = []
             if a.get("id", "").startswith("count-"):
                 self._count_id = a["id"].removeprefix("count-")
+        elif tag == "br" and self._cell is not None:
+            self._cell.append("\n")
+        elif tag == "a" and self._row is not None:
+            self._row.links.append(a.get("href", ""))
         elif tag == "span" and "data-value" in a:
             if self._row is not None:
                 self._row.values.append(a["data-value"])
@@ -131,7 +146,9 @@ class ReportPage(HTMLParser):
                 self.counts[self._count_id] = int(a["data-value"])
 
     def handle_endtag(self, tag: str) -> None:
-        if tag in ("td", "th") and self._row is not None and self._cell is not None:
+        if tag == "section" and self._stack:
+            self._stack.pop()
+        elif tag in ("td", "th") and self._row is not None and self._cell is not None:
             self._row.cells.append("".join(self._cell))
             self._cell = None
             self._count_id = None
@@ -144,5 +161,20 @@ class ReportPage(HTMLParser):
             self._cell.append(data)
 
     def body_rows(self, section: str) -> list[Row]:
-        """The rows of a section's tables that hold data (td cells), not headings."""
+        """The rows of a section's tables that hold data (a class), not headings."""
         return [r for r in self.rows if r.section == section and r.attrs.get("class")]
+
+    def error_findings(self) -> list[tuple[str, str, str, str, str]]:
+        """Every finding listed among the records with errors, located as text output
+        locates it: (file, line, location, severity, code)."""
+        found = []
+        line = ""
+        for r in self.body_rows("errors"):
+            cells = r.cells
+            if len(cells) == 7:  # a record's first row: the record cell comes first
+                head = cells[0].split("\n")[0]
+                line = "-" if head == "whole file" else head.removeprefix("line ").replace(",", "")
+                cells = cells[1:]
+            location = "" if cells[1] == "(payload)" else cells[1]
+            found.append((r.group["data-file"], line, location, cells[0], cells[2]))
+        return found

@@ -14,7 +14,7 @@ import pytest
 from capnote.batch import inputs
 from capnote.batch.inputs import STDIN, Source, expand, records
 from capnote.errors import UsageError
-from tests.batch_helpers import CAPNOTE, NOW, capnote, note
+from tests.batch_helpers import CAPNOTE, NOW, ReportPage, capnote, note
 from tests.conftest import ROOT, VALID
 
 
@@ -174,7 +174,7 @@ def test_check_walks_folders_and_files_together(tmp_path: Path) -> None:
     ]
     assert f"{root / 'a.ndjson'}:2: warning" in run.stdout
     assert f"{root / 'sub/c.json'} (note): FAILED" in run.stdout
-    assert "7 record(s) in 6 file(s): 6 without errors, 1 with errors" in run.stdout
+    assert "7 record(s) in 6 file(s): 6 without errors, 1 with errors" in run.stderr
     assert ".hidden" not in run.stdout
     assert ".cache" not in run.stdout
 
@@ -184,7 +184,7 @@ def test_check_reads_standard_input() -> None:
     run = capnote("check", "-", "--now", NOW, stdin=lines)
     assert run.returncode == 1, run.stdout + run.stderr
     assert "<stdin>:2: error" in run.stdout
-    assert "2 record(s) in 1 file(s): 1 without errors, 1 with errors" in run.stdout
+    assert "2 record(s) in 1 file(s): 1 without errors, 1 with errors" in run.stderr
 
 
 def test_batch_modules_know_nothing_of_the_command_line() -> None:
@@ -205,12 +205,17 @@ def test_batch_modules_know_nothing_of_the_command_line() -> None:
         assert len(path.read_text().splitlines()) <= 400, path.name
 
 
-def test_a_reader_that_goes_away_is_no_failure(tmp_path: Path) -> None:
-    # `capnote check big.ndjson | head`: the pipe closes early; no traceback, no incident.
+@pytest.mark.parametrize("report", [False, True])
+def test_a_reader_that_goes_away_gets_its_own_exit_code(tmp_path: Path, report: bool) -> None:
+    # `capnote check big.ndjson | head`: the pipe closes early. Exit 141 (128 + SIGPIPE, as a
+    # shell reports it), never 1 ("errors found"), and stderr says whether the report was
+    # written: it is, in full, since the checking went on without a reader.
     dump = tmp_path / "dump.ndjson"
     dump.write_text("".join(json.dumps(note(i, "error")) + "\n" for i in range(1, 2001)))
+    target = tmp_path / "r.html"
+    extra = ["--report", str(target), "--print-findings"] if report else []
     with subprocess.Popen(
-        [*CAPNOTE, "check", str(dump), "--now", NOW],
+        [*CAPNOTE, "check", str(dump), "--now", NOW, *extra],
         cwd=ROOT,
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
@@ -221,5 +226,13 @@ def test_a_reader_that_goes_away_is_no_failure(tmp_path: Path) -> None:
         proc.stdout.close()
         err = proc.stderr.read().decode()
         proc.wait(timeout=120)
-    assert proc.returncode == 1
-    assert err == ""
+    assert proc.returncode == 141, err
+    assert "broken pipe" in err
+    assert "Traceback" not in err
+    assert "incident" not in err
+    if report:
+        assert f"the report was written to {target}" in err
+        assert ReportPage(target.read_text()).counts["records"] == 2000
+    else:
+        assert "no report was asked for" in err
+        assert not target.exists()

@@ -18,6 +18,7 @@ import pytest
 
 from capnote.batch.output import AtomicFile
 from capnote.batch.report_csv import COLUMNS, cell
+from capnote.batch.report_html import SAMPLE_ROWS
 from capnote.plain_text import CAUTION
 from tests.batch_helpers import (
     CAPNOTE,
@@ -47,10 +48,12 @@ def _batch(folder: Path, lines: int = 300) -> list[Path]:
     hostile[SCRIPT] = 1
     formula = note(9002, "clean")
     formula[FORMULA] = 1
+    energy = note(9003, "clean")  # out-of-range from a second rule, beside the IOP's
+    energy["laser"]["series"][0]["energy_mj"] = 12
     bundle = load(EXAMPLES / "bundles" / "right-routine.bundle.json")
     bundle["entry"][0]["resource"]["status"] = "done"  # outside the required value set
     with dump.open("a") as out:
-        for extra in (hostile, formula, {"resourceType": IMG}, bundle):
+        for extra in (hostile, formula, energy, {"resourceType": IMG}, bundle):
             out.write(json.dumps(extra) + "\n")
         out.write("{not json\n")
     single = folder / "single.json"
@@ -67,7 +70,9 @@ def checked(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
     runs = {}
     for fmt in ("html", "csv"):
         report = folder / f"report.{fmt}"
-        run = capnote("check", *map(str, inputs), "--now", NOW, "--report", str(report))
+        run = capnote(
+            "check", *map(str, inputs), "--now", NOW, "--report", str(report), "--print-findings"
+        )
         assert run.returncode == 1, run.stdout + run.stderr
         assert f"report written to {report}" in run.stderr
         runs[fmt] = (run, report)
@@ -79,7 +84,8 @@ def checked(tmp_path_factory: pytest.TempPathFactory) -> dict[str, object]:
     assert isinstance(html, Path)
     assert isinstance(csv_path, Path)
     return {
-        "stdout": html_run.stdout,
+        # The findings on stdout, the summary on stderr (stdout is a pipe here).
+        "stdout": html_run.stdout + html_run.stderr,
         "html": html.read_text(),
         "csv": csv_path.read_text(),
         "inputs": inputs,
@@ -101,7 +107,7 @@ def _stdout(checked: dict[str, object]) -> str:
 def test_html_header_counts_match_the_text_tally(checked: dict[str, object]) -> None:
     page = ReportPage(_html(checked))
     tally = text_tally(_stdout(checked))
-    assert tally["records"] == 300 + 5 + 2
+    assert tally["records"] == 300 + 6 + 2
     assert page.counts == {
         "records": tally["records"],
         "passed": tally["passed"],
@@ -109,18 +115,83 @@ def test_html_header_counts_match_the_text_tally(checked: dict[str, object]) -> 
         "errors": tally["errors"],
         "warnings": tally["warnings"],
         "information": tally["information"],
+        "skipped": 0,
+        "empty": 0,
     }
     assert CAUTION in _html(checked)
 
 
-def test_html_summary_by_code_and_severity_matches_the_text_output(
+def test_html_lists_the_records_with_errors_first_grouped_by_file(
+    checked: dict[str, object],
+) -> None:
+    text = _html(checked)
+    page = ReportPage(text)
+    # Before the tables of files and codes: the first thing after the header.
+    order = [i for i in page.ids if i in ("errors", "files", "summary", "chart", "codes")]
+    assert order == ["errors", "files", "summary", "chart", "codes"]
+    found = text_findings(_stdout(checked))
+    failed = {(f, line) for f, line, _loc, sev, _code in found if sev == "error"}
+    listed = page.error_findings()
+    # Every finding of every record with an error, and nothing of the others.
+    expected = [x for x in found if (x[0], x[1]) in failed]
+    assert sorted(listed) == sorted(expected)
+    assert len({(f, line) for f, line, *_ in listed}) == len(failed)
+    # One group per file, in input order, each record's errors before its warnings.
+    groups = [s["data-file"] for s in page.sections if "data-file" in s]
+    inputs = checked["inputs"]
+    assert isinstance(inputs, list)
+    assert groups == [str(p) for p in inputs if any(f == str(p) for f, _l in failed)]
+    rows = page.body_rows("errors")
+    record: list[str] = []
+    for r in [*rows, None]:
+        if r is None or len(r.cells) == 7:
+            assert record == sorted(record, key=lambda sev: sev != "error"), record
+            record = []
+        if r is not None:
+            record.append(r.attrs["class"])
+    # Each finding with its location, rule and allowed range.
+    single = [r for r in rows if r.group["data-file"].endswith("single.json")]
+    assert single[0].cells[0].startswith("whole file")
+    first = next(r for r in rows if r.attrs["class"] == "error" and "out-of-range" in r.cells)
+    assert first.cells[-2] == "IOP must be >= 0 and <= 80 mmHg"
+    assert first.cells[-1] == ">= 0 and <= 80 mmHg"
+    assert first.cells[0].split("\n")[1].startswith("https://")  # the note identifier
+
+
+def test_html_has_a_table_per_file(checked: dict[str, object]) -> None:
+    page = ReportPage(_html(checked))
+    found = text_findings(_stdout(checked))
+    rows = {r.attrs["data-file"]: [int(v) for v in r.values] for r in page.body_rows("files")}
+    inputs = checked["inputs"]
+    assert isinstance(inputs, list)
+    assert list(rows) == [str(p) for p in inputs]
+    for name, (_records, failed, errors, warnings, information) in rows.items():
+        mine = [x for x in found if x[0] == name]
+        assert errors == sum(1 for x in mine if x[3] == "error")
+        assert warnings == sum(1 for x in mine if x[3] == "warning")
+        assert information == sum(1 for x in mine if x[3] == "information")
+        assert failed == len({x[1] for x in mine if x[3] == "error"})
+    assert rows[str(inputs[0])][0] == 306
+    assert rows[str(inputs[1])][0] == 1
+
+
+def test_html_summary_has_a_row_per_code_and_rule_that_adds_up(
     checked: dict[str, object],
 ) -> None:
     page = ReportPage(_html(checked))
     found = text_findings(_stdout(checked))
     summary = page.body_rows("summary")
-    table = {(r.attrs["data-code"], r.attrs["data-severity"]): int(r.values[0]) for r in summary}
-    assert table == dict(by_code(found))
+    table: Counter[tuple[str, str]] = Counter()
+    for r in summary:
+        table[(r.attrs["data-code"], r.attrs["data-severity"])] += int(r.values[0])
+    assert dict(table) == dict(by_code(found))
+    # out-of-range, from two different rules, is two rows that say which rule each is.
+    ranges = [r for r in summary if r.attrs["data-code"] == "out-of-range"]
+    rules = {r.cells[2]: int(r.values[0]) for r in ranges}
+    assert rules == {
+        "IOP must be >= 0 and <= 80 mmHg": 13,
+        "pulse energy must be > 0 and <= 10 mJ": 1,
+    }
     per_severity: Counter[str] = Counter()
     for (_code, severity), count in table.items():
         per_severity[severity] += count
@@ -130,27 +201,33 @@ def test_html_summary_by_code_and_severity_matches_the_text_output(
     assert per_severity["information"] == tally["information"]
 
 
-def test_html_lists_every_finding_with_file_line_and_location(checked: dict[str, object]) -> None:
+def test_each_code_links_to_its_rows(checked: dict[str, object]) -> None:
     page = ReportPage(_html(checked))
-    rows = page.body_rows("problems")
-    listed = [
-        (
-            r.cells[0],
-            r.cells[1],
-            "" if r.cells[2] == "(payload)" else r.cells[2],
-            r.cells[3],
-            r.cells[4],
+    found = by_code(text_findings(_stdout(checked)))
+    sections = {s["id"]: s for s in page.sections if s.get("class", "").startswith("code")}
+    for r in page.body_rows("summary"):
+        (link,) = r.links
+        target = sections[link.removeprefix("#")]
+        assert (target["data-code"], target["data-severity"]) == (
+            r.attrs["data-code"],
+            r.attrs["data-severity"],
         )
-        for r in rows
-    ]
-    expected = text_findings(_stdout(checked))
-    assert sorted(listed) == sorted(expected)
-    assert len(listed) == len(expected)
-    single = next(r for r in rows if r.cells[0].endswith("single.json"))
-    assert single.cells[1] == "-"  # a whole JSON file has no line
-    spike = [r for r in rows if r.cells[0].endswith("right-iop-spike.json")]
-    assert {r.cells[4] for r in spike} == {"iop-rise-moderate", "iop-rise-severe"}
-    assert all(r.cells[6] and r.cells[7] for r in spike)  # allowed range and source
+    for anchor, section in sections.items():
+        key = (section["data-code"], section["data-severity"])
+        listed = [r for r in page.body_rows("codes") if r.group.get("id") == anchor]
+        if key[1] == "error":  # every error, each linking to its record
+            assert len(listed) == found[key]
+            assert all(r.links and r.links[0].startswith("#r") for r in listed)
+        else:  # the first rows of a warning code; the CSV report has all of them
+            assert len(listed) == min(found[key], SAMPLE_ROWS)
+    inputs = checked["inputs"]
+    assert isinstance(inputs, list)
+    names = {str(p) for p in inputs}
+    for r in page.body_rows("codes"):  # every row says where its record is: file:line
+        assert r.cells[0].split("\n")[0].rsplit(":", 1)[0] in names, r.cells[0]
+    record_ids = {i for i in page.ids if i.startswith("r") and i[1:].isdigit()}
+    links = {link.removeprefix("#") for r in page.body_rows("codes") for link in r.links}
+    assert links <= record_ids
 
 
 def test_html_chart_shows_the_most_common_findings(checked: dict[str, object]) -> None:
@@ -180,7 +257,7 @@ def test_html_is_self_contained_and_escapes_what_the_input_echoes(
     assert SCRIPT not in text
     assert IMG not in text
     assert "&lt;script&gt;alert(&#x27;capnote&#x27;)&lt;/script&gt;" in text
-    cells = [c for r in page.body_rows("problems") for c in r.cells]
+    cells = [c for r in page.body_rows("errors") for c in r.cells]
     assert SCRIPT in cells  # the location of the unknown key, read back as text
     assert any(IMG in c for c in cells)
     assert text.endswith("</html>\n")
@@ -288,7 +365,8 @@ def test_a_clean_batch_gets_a_report_that_says_so(tmp_path: Path) -> None:
     page = ReportPage((tmp_path / "r.html").read_text())
     assert page.counts["records"] == 1
     assert page.counts["failed"] == 0
-    assert page.body_rows("problems") == []
+    assert page.body_rows("errors") == []
+    assert "No record has an error." in (tmp_path / "r.html").read_text()
     assert "No findings." in (tmp_path / "r.html").read_text()
 
 
@@ -325,7 +403,7 @@ def _default_sigint() -> None:
     signal.signal(signal.SIGINT, signal.SIG_DFL)
 
 
-def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
+def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> tuple[Path, int]:
     """Start a check with a report, feed it 3,000 lines on standard input and send sig once
     findings are printing.
 
@@ -336,7 +414,7 @@ def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
     target = tmp_path / f"report.{fmt}"
     target.write_text("the last good report")
     with subprocess.Popen(
-        [*CAPNOTE, "check", "-", "--now", NOW, "--report", str(target)],
+        [*CAPNOTE, "check", "-", "--now", NOW, "--report", str(target), "--print-findings"],
         cwd=ROOT,
         stdin=subprocess.PIPE,
         stdout=subprocess.PIPE,
@@ -365,12 +443,12 @@ def _stop_midway(tmp_path: Path, fmt: str, sig: signal.Signals) -> Path:
             with contextlib.suppress(BrokenPipeError):
                 proc.stdin.close()
     assert proc.returncode != 0
-    return target
+    return target, proc.returncode
 
 
 @pytest.mark.parametrize("fmt", ["html", "csv"])
 def test_a_killed_check_leaves_the_last_report_whole(tmp_path: Path, fmt: str) -> None:
-    target = _stop_midway(tmp_path, fmt, signal.SIGKILL)
+    target, _code = _stop_midway(tmp_path, fmt, signal.SIGKILL)
     assert target.read_text() == "the last good report"
     # Nothing half-written under a visible name (a hidden .part may stay after SIGKILL).
     assert sorted(p.name for p in tmp_path.iterdir() if not p.name.startswith(".")) == [
@@ -380,8 +458,15 @@ def test_a_killed_check_leaves_the_last_report_whole(tmp_path: Path, fmt: str) -
 
 
 @pytest.mark.parametrize("fmt", ["html", "csv"])
-def test_an_interrupted_check_cleans_up_after_itself(tmp_path: Path, fmt: str) -> None:
-    target = _stop_midway(tmp_path, fmt, signal.SIGINT)
+@pytest.mark.parametrize(("sig", "code"), [(signal.SIGINT, 130), (signal.SIGTERM, 143)])
+def test_an_interrupted_check_cleans_up_after_itself(
+    tmp_path: Path, fmt: str, sig: signal.Signals, code: int
+) -> None:
+    # Ctrl-C and SIGTERM (what a service manager or `kill` sends) alike: no hidden .part file
+    # and no temporary rows left, the last report untouched, and the shell's exit code for
+    # a death by that signal (128 + its number), never 1 ("errors found").
+    target, returned = _stop_midway(tmp_path, fmt, sig)
+    assert returned == code
     assert target.read_text() == "the last good report"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["dump.ndjson", target.name]
 

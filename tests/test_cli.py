@@ -35,8 +35,9 @@ def capnote(*args: str, env: dict[str, str] | None = None) -> subprocess.Complet
 def test_check_demo_notes_passes_with_a_summary() -> None:
     run = capnote("check", *map(str, VALID), "--now", NOW)
     assert run.returncode == 0, run.stdout + run.stderr
-    assert f"{len(VALID)} file(s): {len(VALID)} without errors, 0 with errors" in run.stdout
-    assert "local protocol and the treating clinician decide" in run.stdout
+    # Standard output is a pipe here, so the summary and the caution go to standard error.
+    assert f"{len(VALID)} file(s): {len(VALID)} without errors, 0 with errors" in run.stderr
+    assert "local protocol and the treating clinician decide" in run.stderr
     assert "Review visit: Tue 29 Dec 2026" in run.stdout
 
 

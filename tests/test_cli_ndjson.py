@@ -81,8 +81,8 @@ def test_text_reports_only_lines_with_findings_as_file_and_line(tmp_path: Path) 
         line.startswith(f"{path}:6: error") and "Bundle.entry[0].resource.status" in line
         for line in out
     )
-    assert "5 record(s) in 1 file(s): 2 without errors, 3 with errors" in run.stdout
-    assert "treating clinician decide" in run.stdout
+    assert "5 record(s) in 1 file(s): 2 without errors, 3 with errors" in run.stderr
+    assert "treating clinician decide" in run.stderr
     assert "Traceback" not in run.stdout + run.stderr
 
 
@@ -93,7 +93,7 @@ def test_warnings_alone_exit_0(tmp_path: Path) -> None:
     assert run.returncode == 0, run.stdout + run.stderr
     assert (
         "2 record(s) in 1 file(s): 2 without errors, 0 with errors; 0 error(s), 1 warning(s)"
-        in (run.stdout)
+        in (run.stderr)
     )
 
 
@@ -128,7 +128,7 @@ def test_json_files_beside_ndjson_keep_their_report(tmp_path: Path) -> None:
     run = capnote("check", str(single), str(path), "--now", NOW)
     assert run.returncode == 0, run.stdout + run.stderr
     assert f"{single} (note): ok" in run.stdout
-    assert "4 record(s) in 2 file(s): 4 without errors, 0 with errors" in run.stdout
+    assert "4 record(s) in 2 file(s): 4 without errors, 0 with errors" in run.stderr
     mixed = capnote("check", "--format", "json", str(single), str(path), "--now", NOW)
     assert mixed.returncode == 2
     assert "Traceback" not in mixed.stderr
@@ -142,7 +142,7 @@ def test_twenty_thousand_lines_are_counted_and_located(tmp_path: Path) -> None:
     assert (
         f"20000 record(s) in 1 file(s): {20_000 - errors} without errors, {errors} with errors; "
         f"{errors} error(s), {warnings} warning(s), 0 information"
-    ) in run.stdout
+    ) in run.stderr
     finding_lines = [line for line in run.stdout.splitlines() if line.startswith(f"{path}:")]
     assert len(finding_lines) == errors + warnings
     assert finding_lines[-1].startswith(f"{path}:20000: error")

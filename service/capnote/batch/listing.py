@@ -10,7 +10,7 @@ from typing import Any, Protocol, TextIO
 
 import orjson
 
-from capnote.batch.checking import RecordResult, Tally
+from capnote.batch.checking import EMPTY, RecordResult, Tally
 from capnote.fhir.outcome import outcome
 from capnote.plain_text import CAUTION, derived_lines, due_line, finding_line
 
@@ -25,17 +25,42 @@ class Listing(Protocol):
         """Print what comes after the last result."""
 
 
+def summary_lines(tally: Tally, files: int, streamed: bool) -> str:
+    """The closing line (records when anything was streamed, else files) and the caution."""
+    line = tally.summary(files) if streamed else tally.file_summary()
+    return f"{line}\n{CAUTION}\n"
+
+
+class SummaryListing:
+    """The summary alone (--quiet, or a check with a report): nothing per record."""
+
+    def __init__(self, summary_to: TextIO) -> None:
+        self.summary_to = summary_to
+
+    def add(self, result: RecordResult) -> None:
+        """Nothing: the report or the summary says it."""
+
+    def close(self, tally: Tally, files: int, streamed: bool) -> None:
+        """The summary line and the caution."""
+        self.summary_to.write(summary_lines(tally, files, streamed))
+
+
 class TextListing:
     """A block per whole file (findings, derived values, follow-up), and a line per finding
-    of a streamed record, located as file:line; clean lines print nothing."""
+    of a streamed record, located as file:line; clean lines print nothing. The summary goes
+    to summary_to: standard error when standard output is not a terminal, so the counts stay
+    in sight when the findings go to a file or a pager."""
 
-    def __init__(self, out: TextIO) -> None:
+    def __init__(self, out: TextIO, summary_to: TextIO | None = None) -> None:
         self.write = out.write
+        self.summary_to = summary_to if summary_to is not None else out
 
     def add(self, result: RecordResult) -> None:
         """Print one result."""
         name = result.source.shown
-        if not result.source.streamed:
+        if result.kind == EMPTY:
+            self.write(f"{name}: empty, no records\n")
+        elif not result.source.streamed:
             self._block(result)
         elif result.line is None:  # a streamed file that could not be opened
             for f in result.findings:
@@ -57,8 +82,7 @@ class TextListing:
 
     def close(self, tally: Tally, files: int, streamed: bool) -> None:
         """The summary line (records when anything was streamed, else files) and the caution."""
-        line = tally.summary(files) if streamed else tally.file_summary()
-        self.write(f"{line}\n{CAUTION}\n")
+        self.summary_to.write(summary_lines(tally, files, streamed))
 
 
 class NdjsonListing:
@@ -68,7 +92,9 @@ class NdjsonListing:
         self.write = out.write
 
     def add(self, result: RecordResult) -> None:
-        """Print one record's object."""
+        """Print one record's object (an empty file has none: the summary names it)."""
+        if result.kind == EMPTY:
+            return
         record = {
             "file": result.source.name,
             "line": result.line,
@@ -89,6 +115,8 @@ class BundleListing:
 
     def add(self, result: RecordResult) -> None:
         """Keep the file's OperationOutcome for the Bundle."""
+        if result.kind == EMPTY:
+            return
         url = result.source.path.resolve().as_uri()
         self.entries.append({"fullUrl": url, "resource": outcome(result.findings)})
 

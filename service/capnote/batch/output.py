@@ -14,6 +14,7 @@ from types import TracebackType
 from typing import BinaryIO, Protocol, Self, TextIO
 
 from capnote.batch.checking import RecordResult, Tally
+from capnote.batch.inputs import Skipped
 from capnote.errors import UsageError
 from capnote.findings import Finding
 
@@ -100,6 +101,7 @@ class RunInfo:
     as_at: datetime
     policy: str
     version: str
+    skipped: tuple[Skipped, ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -110,13 +112,14 @@ class Row:
     line: int | None
     kind: str
     finding: Finding
+    identifier: str | None = None
 
 
 def rows(result: RecordResult) -> Iterator[Row]:
     """The rows of one result, in the order its findings came."""
     name = result.source.name
     for f in result.findings:
-        yield Row(name, result.line, result.kind, f)
+        yield Row(name, result.line, result.kind, f, result.identifier)
 
 
 class ReportWriter(Protocol):

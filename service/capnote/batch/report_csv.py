@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import unicodedata
 from pathlib import Path
 
 from capnote.batch.checking import RecordResult
@@ -12,6 +13,7 @@ COLUMNS = (
     "file",
     "line",
     "kind",
+    "record",
     "location",
     "severity",
     "code",
@@ -21,28 +23,40 @@ COLUMNS = (
 )
 # OWASP, "CSV Injection": spreadsheet programs run a cell that starts with =, +, -, @, tab or
 # carriage return as a formula; a leading apostrophe makes them show it as text instead.
-# Findings echo what the input held, so every text cell is guarded.
+# Findings echo what the input held, so every text cell is guarded. Spreadsheets also skip
+# leading spaces before a formula and read the full-width forms (U+FF1D and its kin) as the
+# ASCII ones, so the first character after any spaces is compared in its NFKC form.
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+BOM = "\ufeff"
 
 
 def cell(text: str | None) -> str:
     """A text cell that a spreadsheet shows as text, never runs as a formula."""
     if not text:
         return ""
-    return "'" + text if text.startswith(FORMULA_STARTS) else text
+    if text.startswith(FORMULA_STARTS):
+        return "'" + text
+    rest = text.lstrip()
+    if rest and unicodedata.normalize("NFKC", rest[0]).startswith(FORMULA_STARTS):
+        return "'" + text
+    return text
 
 
 class CsvReport:
     """Rows go straight into the temporary file; commit renames it into place.
 
     RFC 4180 layout (comma, double quotes, CRLF) in UTF-8. The line is empty for a whole
-    JSON file: a "-" there would be taken for the start of a formula.
+    JSON file: a "-" there would be taken for the start of a formula. With bom, the file
+    starts with a UTF-8 byte order mark, which some spreadsheet programs need to read UTF-8.
     """
 
-    def __init__(self, target: Path) -> None:
+    def __init__(self, target: Path, bom: bool = False) -> None:
         self.target = target
         self._file = AtomicFile(target)
-        self._writer = csv.writer(self._file.text(), lineterminator="\r\n")
+        text = self._file.text()
+        if bom:
+            text.write(BOM)
+        self._writer = csv.writer(text, lineterminator="\r\n")
         self._writer.writerow(COLUMNS)
 
     def add(self, result: RecordResult) -> None:
@@ -54,6 +68,7 @@ class CsvReport:
                     cell(row.file),
                     "" if row.line is None else row.line,
                     row.kind,
+                    cell(row.identifier),
                     cell(f.location),
                     f.severity.value,
                     cell(f.code),

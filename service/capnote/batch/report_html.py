@@ -1,39 +1,57 @@
-"""The HTML report: one self-contained page (inline CSS and SVG, no scripts, nothing fetched).
+"""The HTML report: one self-contained page, records with errors first.
 
-Rows are written to an unnamed temporary file beside the target while results pass, and only
-counters per (code, severity) stay in memory; at commit the header, the summary table and the
-chart (which need the final counts) are written, then the rows are copied after them.
+The page, top to bottom: the run and its counts; every record with an error, grouped by
+file, each finding with its location, rule and allowed range; a table per file; the findings
+by code and rule (each code linking to its rows) and a chart; then a section per code with
+its rows: every error, and the first rows of each warning or information code, which can
+run to hundreds of thousands (the CSV report lists every one). So the page stays a few MB
+and opens in a second however large the batch.
+
+Nothing is held per record: the records with errors stream into one unnamed temporary file
+and each error code's rows into one of their own (beside the target, never /tmp, which may be
+small or in memory); only counters, and a few sample rows per code, stay in memory. At commit
+the header and the tables, which need the final counts, are written, and the rows copied
+after them.
 """
 
 from __future__ import annotations
 
 import shutil
 import tempfile
-from collections import Counter
-from html import escape
 from pathlib import Path
+from typing import TextIO
 
-from capnote.batch.checking import RecordResult
-from capnote.batch.output import AtomicFile, RunInfo, rows
-from capnote.batch.report_style import CHUNK_ROWS, COLGROUP, COLUMNS, STYLE
+from capnote.batch.checking import EMPTY, FILE, RecordResult
+from capnote.batch.output import AtomicFile, Row, RunInfo, rows
+from capnote.batch.report_parts import (
+    CODE_HEADINGS,
+    EMPTY_NOTE,
+    ERROR_HEADINGS,
+    FILE_NOTES,
+    OTHER_RULES,
+    RULES_PER_CODE,
+    SHOWN_INPUTS,
+    TABLE_END,
+    CodeCounts,
+    FileCounts,
+    Key,
+    chart,
+    code_heading,
+    code_row,
+    e,
+    error_row,
+    files_table,
+    n,
+    ranked,
+    summary_table,
+    table_start,
+)
+from capnote.batch.report_style import CHUNK_ROWS, STYLE
 from capnote.findings import Severity
 from capnote.plain_text import CAUTION
 
-TOP_FINDINGS = 12
-_ORDER = {Severity.ERROR: 0, Severity.WARNING: 1, Severity.INFORMATION: 2}
-_SHOWN_INPUTS = 20  # a long command line is cut in the header; every file is in the rows
-
-
-def _e(text: object) -> str:
-    """Text made safe for HTML content and attribute values (findings echo the input)."""
-    return escape(str(text), quote=True)
-
-
-def _n(count: int) -> str:
-    return f'<span data-value="{count}">{count:,}</span>'
-
-
-Key = tuple[str, Severity]
+# Rows of each warning or information code shown in full; the rest are counted.
+SAMPLE_ROWS = 20
 
 
 class HtmlReport:
@@ -42,73 +60,194 @@ class HtmlReport:
     def __init__(self, target: Path) -> None:
         self.target = target
         self._file = AtomicFile(target)
+        self._temps: list[TextIO] = []
         try:
-            # Unnamed (deleted on close, and by the kernel if the process dies), in the
-            # target's folder rather than /tmp, which may be small or in memory. It stays open
-            # across add() calls, so no with-block: commit() and discard() close it.
-            self._rows = tempfile.TemporaryFile(  # noqa: SIM115
-                "w+", encoding="utf-8", newline="", dir=target.parent, prefix=".capnote-rows-"
-            )
+            self._errors = self._temp()
         except BaseException:
             self._file.discard()
             raise
-        self.findings: Counter[Key] = Counter()
-        self.records_with: Counter[Key] = Counter()
-        # One rule text per code: bounded by the number of codes, not by the input.
-        self.rules: dict[str, str] = {}
-        self.written = 0
+        self.codes: dict[Key, CodeCounts] = {}
+        self.files: dict[str, FileCounts] = {}
+        self._error_rows: dict[Key, TextIO] = {}
+        self._samples: dict[Key, list[str]] = {}
+        self.failed = 0  # records with errors listed so far: their anchors are r1, r2, ...
+        self._file_open: str | None = None  # the file whose group of records is open
+        self._chunk = 0  # rows in the open chunk
+
+    def _temp(self) -> TextIO:
+        # Unnamed (deleted on close, and by the kernel if the process dies). It stays open
+        # across add() calls, so no with-block: commit() and discard() close it.
+        handle = tempfile.TemporaryFile(  # noqa: SIM115
+            "w+", encoding="utf-8", newline="", dir=self.target.parent, prefix=".capnote-rows-"
+        )
+        self._temps.append(handle)
+        return handle
 
     def add(self, result: RecordResult) -> None:
-        """Count the result's findings and write a table row for each."""
-        seen: set[Key] = set()
-        write = self._rows.write
-        for row in rows(result):
-            f = row.finding
-            key = (f.code, f.severity)
-            self.findings[key] += 1
-            if key not in seen:
-                seen.add(key)
-                self.records_with[key] += 1
-            self.rules.setdefault(f.code, f.rule)
-            if self.written % CHUNK_ROWS == 0:
-                write(_chunk_end() if self.written else "")
-                write(_chunk_start())
-            self.written += 1
-            line = "-" if row.line is None else str(row.line)
+        """Count the result and write its rows where they belong."""
+        name = result.source.name
+        counts = self.files.get(name)
+        if counts is None:
+            counts = self.files[name] = FileCounts("NDJSON" if result.source.streamed else "JSON")
+        if result.kind == EMPTY:
+            counts.note = EMPTY_NOTE
+            return
+        if result.kind == FILE and result.line is None and result.findings:
+            counts.note = FILE_NOTES.get(result.findings[0].code, "")
+        record_rows = list(rows(result))
+        counts.records += 1
+        seen: set[tuple[Key, tuple[str, str]]] = set()
+        for row in record_rows:
+            self._count(row, counts, seen)
+        errors = [r for r in record_rows if r.finding.severity is Severity.ERROR]
+        if not errors:
+            for row in record_rows:
+                self._sample(row)
+            return
+        counts.failed += 1
+        self.failed += 1
+        anchor = f"r{self.failed}"
+        self._write_record(name, record_rows, anchor)
+        for row in record_rows:
+            if row.finding.severity is Severity.ERROR:
+                self._code_file(row).write(code_row(row, anchor))
+            else:
+                self._sample(row, anchor)
+
+    def _count(self, row: Row, counts: FileCounts, seen: set[tuple[Key, tuple[str, str]]]) -> None:
+        f = row.finding
+        key = (f.code, f.severity)
+        c = self.codes.get(key)
+        if c is None:
+            c = self.codes[key] = CodeCounts()
+        rule = (f.rule, f.allowed or "")
+        if rule not in c.rules and len(c.rules) >= RULES_PER_CODE:
+            rule = OTHER_RULES
+        c.findings += 1
+        c.rules[rule] += 1
+        if f.source and rule not in c.sources:
+            c.sources[rule] = f.source
+        if (key, ("", "")) not in seen:
+            seen.add((key, ("", "")))
+            c.records += 1
+        if (key, rule) not in seen:
+            seen.add((key, rule))
+            c.rule_records[rule] += 1
+        if f.severity is Severity.ERROR:
+            counts.errors += 1
+        elif f.severity is Severity.WARNING:
+            counts.warnings += 1
+        else:
+            counts.information += 1
+
+    def _sample(self, row: Row, anchor: str | None = None) -> None:
+        key = (row.finding.code, row.finding.severity)
+        shown = self._samples.setdefault(key, [])
+        if len(shown) < SAMPLE_ROWS:
+            shown.append(code_row(row, anchor))
+
+    def _code_file(self, row: Row) -> TextIO:
+        key = (row.finding.code, row.finding.severity)
+        out = self._error_rows.get(key)
+        if out is None:
+            out = self._error_rows[key] = self._temp()
+        return out
+
+    def _write_record(self, name: str, record_rows: list[Row], anchor: str) -> None:
+        """A record's findings, errors first; a new file opens a new group, and a chunk ends
+        only between records, so a record's rows stay together."""
+        write = self._errors.write
+        if name != self._file_open:
+            if self._file_open is not None:
+                write(TABLE_END + "</section>\n")
+            self._file_open = name
             write(
-                f'<tr class="{f.severity.value}"><td>{_e(row.file)}</td><td class="n">{line}</td>'
-                f"<td><code>{_e(f.location or '(payload)')}</code></td>"
-                f'<td class="sev">{f.severity.value}</td><td><code>{_e(f.code)}</code></td>'
-                f"<td>{_e(f.message)}</td><td>{_e(f.allowed or '')}</td>"
-                f"<td>{_e(f.source or '')}</td></tr>\n"
+                f'<section class="file" data-file="{e(name)}"><h3>{e(name)}</h3>\n'
+                + table_start("errors", ERROR_HEADINGS)
             )
+            self._chunk = 0
+        elif self._chunk >= CHUNK_ROWS:
+            write(TABLE_END + table_start("errors", ERROR_HEADINGS))
+            self._chunk = 0
+        ordered = sorted(record_rows, key=lambda r: r.finding.severity is not Severity.ERROR)
+        write('<tbody class="record">')
+        for i, row in enumerate(ordered):
+            write(error_row(row, i == 0, anchor, len(ordered)))
+        write("</tbody>\n")
+        self._chunk += len(ordered)
 
     def commit(self, run: RunInfo) -> None:
-        """Write the header, summary and chart, copy the rows after them, and rename."""
+        """Write the header and tables, copy the rows after them, and rename."""
         out = self._file.text()
-        out.write(self._head(run))
-        if self.written:
-            self._rows.write(_chunk_end())
-            self._rows.seek(0)
-            shutil.copyfileobj(self._rows, out, 1 << 20)
+        ordered = ranked(self.codes)
+        out.write(self._head(run, ordered))
+        out.write(
+            '<section id="errors" aria-labelledby="errors-h">'
+            f'<h2 id="errors-h">Records with errors ({self.failed:,})</h2>\n'
+        )
+        if self.failed:
+            self._errors.write(TABLE_END + "</section>\n")
+            self._errors.seek(0)
+            shutil.copyfileobj(self._errors, out, 1 << 20)
         else:
+            out.write("<p>No record has an error.</p>\n")
+        out.write("</section>\n")
+        out.write(
+            '<section id="files" aria-labelledby="files-h"><h2 id="files-h">Files</h2>\n'
+            + files_table(self.files, run.skipped)
+            + "</section>\n"
+        )
+        out.write(
+            '<section id="summary" aria-labelledby="summary-h"><h2 id="summary-h">By code '
+            "and rule</h2>\n" + summary_table(ordered, run.tally.records) + "</section>\n"
+            '<section id="chart" aria-labelledby="chart-h"><h2 id="chart-h">Most common '
+            "findings</h2>\n" + chart(self.codes) + "</section>\n"
+        )
+        out.write(
+            '<section id="codes" aria-labelledby="codes-h"><h2 id="codes-h">Findings by code</h2>\n'
+        )
+        for index, (key, c) in enumerate(ordered):
+            self._code_section(out, index, key, c)
+        if not ordered:
             out.write("<p>No findings.</p>\n")
-        out.write(_TAIL.format(caution=_e(CAUTION)))
+        out.write(_TAIL.format(caution=e(CAUTION)))
         self._file.commit()
-        self._rows.close()
+        self._close()
+
+    def _code_section(self, out: TextIO, index: int, key: Key, c: CodeCounts) -> None:
+        rows_file = self._error_rows.get(key)
+        shown = c.findings if rows_file is not None else len(self._samples.get(key, []))
+        out.write(code_heading(index, key, c, shown))
+        start = table_start("code-rows", CODE_HEADINGS) + "<tbody>\n"
+        end = "</tbody>" + TABLE_END
+        out.write(start)
+        if rows_file is not None:
+            rows_file.seek(0)
+            for count, line in enumerate(rows_file):
+                if count and count % CHUNK_ROWS == 0:
+                    out.write(end + start)
+                out.write(line)
+        else:
+            out.writelines(self._samples.get(key, []))
+        out.write(end + "</section>\n")
 
     def discard(self) -> None:
-        """Drop both temporary files."""
-        self._rows.close()
+        """Drop every temporary file."""
+        self._close()
         self._file.discard()
 
-    def _head(self, run: RunInfo) -> str:
+    def _close(self) -> None:
+        for handle in self._temps:
+            handle.close()
+        self._temps.clear()
+
+    def _head(self, run: RunInfo, ordered: list[tuple[Key, CodeCounts]]) -> str:
         t = run.tally
-        shown = ", ".join(_e(name) for name in run.inputs[:_SHOWN_INPUTS])
-        if len(run.inputs) > _SHOWN_INPUTS:
-            shown += f" and {len(run.inputs) - _SHOWN_INPUTS:,} more"
+        shown = ", ".join(e(name) for name in run.inputs[:SHOWN_INPUTS])
+        if len(run.inputs) > SHOWN_INPUTS:
+            shown += f" and {len(run.inputs) - SHOWN_INPUTS:,} more"
         counts = "".join(
-            f'<tr><th scope="row">{label}</th><td class="n" id="count-{key}">{_n(value)}</td></tr>'
+            f'<tr><th scope="row">{label}</th><td class="n" id="count-{key}">{n(value)}</td></tr>'
             for key, label, value in (
                 ("records", "Records checked", t.records),
                 ("passed", "Records without errors", t.passed),
@@ -116,93 +255,22 @@ class HtmlReport:
                 ("errors", "Errors", t.errors),
                 ("warnings", "Warnings", t.warnings),
                 ("information", "Information", t.information),
+                ("skipped", "Files skipped in folders", len(run.skipped)),
+                ("empty", "Empty files", len(t.empty)),
             )
         )
         return _HEAD.format(
             style=STYLE,
-            title=_e(f"capnote check report: {t.records:,} records, {t.failed:,} with errors"),
-            caution=_e(CAUTION),
+            title=e(f"capnote check report: {t.records:,} records, {t.failed:,} with errors"),
+            caution=e(CAUTION),
             inputs=shown,
             files=f"{run.files:,}",
-            started=_e(run.started.isoformat(timespec="seconds")),
-            as_at=_e(run.as_at.isoformat(timespec="seconds")),
-            policy=_e(run.policy),
-            version=_e(run.version),
+            started=e(run.started.isoformat(timespec="seconds")),
+            as_at=e(run.as_at.isoformat(timespec="seconds")),
+            policy=e(run.policy),
+            version=e(run.version),
             counts=counts,
-            summary=self._summary(t.records),
-            chart=self._chart(),
-            total=f"{self.written:,}",
         )
-
-    def _ranked(self) -> list[tuple[Key, int]]:
-        return sorted(self.findings.items(), key=lambda kv: (-kv[1], _ORDER[kv[0][1]], kv[0][0]))
-
-    def _summary(self, records: int) -> str:
-        if not self.findings:
-            return "<p>No findings.</p>"
-        body = []
-        ordered = sorted(self.findings.items(), key=lambda kv: (_ORDER[kv[0][1]], -kv[1], kv[0][0]))
-        for (code, severity), count in ordered:
-            affected = self.records_with[(code, severity)]
-            share = f"{100 * affected / records:.1f}%" if records else "-"
-            body.append(
-                f'<tr class="{severity.value}" data-code="{_e(code)}" '
-                f'data-severity="{severity.value}"><td class="sev">{severity.value}</td>'
-                f'<td><code>{_e(code)}</code></td><td class="n">{_n(count)}</td>'
-                f'<td class="n">{_n(affected)}</td><td class="n">{share}</td>'
-                f"<td>{_e(self.rules.get(code, ''))}</td></tr>"
-            )
-        return (
-            '<table class="summary" id="by-code"><caption>Findings by severity and code; a '
-            "record can have a code more than once.</caption><thead><tr>"
-            '<th scope="col">Severity</th><th scope="col">Code</th>'
-            '<th scope="col" class="n">Findings</th><th scope="col" class="n">Records</th>'
-            '<th scope="col" class="n">Share of records</th><th scope="col">Rule</th></tr>'
-            "</thead><tbody>" + "\n".join(body) + "</tbody></table>"
-        )
-
-    def _chart(self) -> str:
-        top = self._ranked()[:TOP_FINDINGS]
-        if not top:
-            return "<p>No findings to chart.</p>"
-        label_w, bar_w, row_h, bar_h, pad = 330, 330, 28, 18, 8
-        width, height = label_w + bar_w + 90, len(top) * row_h + 2 * pad
-        most = top[0][1]
-        parts = [
-            f'<svg xmlns="http://www.w3.org/2000/svg" class="chart" viewBox="0 0 {width} '
-            f'{height}" width="{width}" height="{height}" role="img" '
-            'aria-labelledby="chart-title chart-desc">'
-            '<title id="chart-title">Most common findings</title>'
-            f'<desc id="chart-desc">The {len(top)} most common findings by count: '
-            + _e("; ".join(f"{code} ({sev.value}) {n:,}" for (code, sev), n in top))
-            + "</desc>"
-        ]
-        for i, ((code, severity), count) in enumerate(top):
-            y = pad + i * row_h
-            w = max(1.0, bar_w * count / most)
-            label = _e(f"{code} ({severity.value})")
-            parts.append(
-                f'<g class="bar {severity.value}" data-code="{_e(code)}">'
-                f'<text x="{label_w - 8}" y="{y + bar_h - 4}" text-anchor="end">{label}</text>'
-                f'<rect x="{label_w}" y="{y}" width="{w:.1f}" height="{bar_h}">'
-                f"<title>{label}: {count:,}</title></rect>"
-                f'<text x="{label_w + w + 6:.1f}" y="{y + bar_h - 4}">{count:,}</text></g>'
-            )
-        parts.append("</svg>")
-        return "".join(parts)
-
-
-def _chunk_start() -> str:
-    # Rows come in tables of CHUNK_ROWS so that the browser lays out only the chunks in view
-    # (content-visibility); a fixed layout and one colgroup keep the columns aligned.
-    head = "".join(f'<th scope="col">{label}</th>' for label in COLUMNS)
-    return (
-        f'<div class="chunk"><table class="rows">{COLGROUP}<thead><tr>{head}</tr></thead><tbody>\n'
-    )
-
-
-def _chunk_end() -> str:
-    return "</tbody></table></div>\n"
 
 
 _HEAD = """<!DOCTYPE html>
@@ -221,26 +289,18 @@ _HEAD = """<!DOCTYPE html>
 <p class="caution" role="note">{caution}</p>
 <dl class="run">
 <dt>Checked</dt><dd id="inputs">{inputs}</dd>
-<dt>Files read</dt><dd id="files">{files}</dd>
+<dt>Files read</dt><dd id="files-read">{files}</dd>
 <dt>Run at</dt><dd>{started}</dd>
 <dt>Rules applied as at</dt><dd>{as_at}</dd>
 <dt>Policy</dt><dd>{policy}</dd>
 <dt>capnote</dt><dd>{version}</dd>
 </dl>
 <table class="counts" id="counts"><caption>Counts</caption><tbody>{counts}</tbody></table>
-<nav aria-label="Sections"><a href="#summary">By code and severity</a>
-<a href="#chart">Most common</a> <a href="#problems">Every finding</a></nav>
+<nav aria-label="Sections"><a href="#errors">Records with errors</a> <a href="#files">Files</a>
+<a href="#summary">By code and rule</a> <a href="#chart">Most common</a>
+<a href="#codes">Findings by code</a></nav>
 </header>
 <main>
-<section id="summary" aria-labelledby="summary-h"><h2 id="summary-h">By code and severity</h2>
-{summary}
-</section>
-<section id="chart" aria-labelledby="chart-h"><h2 id="chart-h">Most common findings</h2>
-{chart}
-</section>
-<section id="problems" aria-labelledby="problems-h">
-<h2 id="problems-h">Every finding ({total})</h2>
-<p class="hint">Line "-" is a whole JSON file; the location is a path into the record.</p>
 """
 
 _TAIL = """</section>

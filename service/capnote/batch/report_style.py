@@ -1,6 +1,8 @@
 """The HTML report's look: its style sheet and the columns of the table of findings.
 
 Kept apart from report_html so that the page's logic reads without 100 lines of CSS.
+Column widths hang on the header cells of each table (its first row), which a fixed table
+layout reads alone, so every chunk lines up without a colgroup in each.
 Colours are dark enough for WCAG AA contrast on white, and severity is always written out
 as a word too, never shown by colour alone.
 """
@@ -10,20 +12,6 @@ from __future__ import annotations
 # Rows per table chunk: small enough that a chunk lays out quickly, large enough that the
 # repeated column headings do not crowd the page.
 CHUNK_ROWS = 200
-
-# (heading, width): one colgroup for every chunk, so the columns line up down the page.
-_COLUMNS = (
-    ("File", "13%"),
-    ("Line", "5%"),
-    ("Location", "14%"),
-    ("Severity", "7%"),
-    ("Code", "11%"),
-    ("Message", "21%"),
-    ("Allowed", "11%"),
-    ("Source", "18%"),
-)
-COLUMNS = tuple(heading for heading, _width in _COLUMNS)
-COLGROUP = "<colgroup>" + "".join(f'<col style="width:{w}">' for _h, w in _COLUMNS) + "</colgroup>"
 
 STYLE = """
 :root { color-scheme: light; --error: #a3001b; --warning: #7a4a00; --information: #1d4f8c;
@@ -47,24 +35,42 @@ th, td { text-align: left; vertical-align: top; padding: .25rem .5rem;
 thead th { background: var(--soft); }
 .n { text-align: right; font-variant-numeric: tabular-nums; }
 table.counts { margin-top: 1rem; }
-table.counts td { font-size: 1.2rem; font-weight: 600; min-width: 7rem; }
+table.counts tbody { display: flex; flex-wrap: wrap; gap: .5rem; }
+table.counts tr { display: flex; flex-direction: column-reverse; min-width: 7.5rem;
+  border: 1px solid var(--rule); border-radius: 4px; padding: .3rem .7rem; }
+table.counts th, table.counts td { border: 0; padding: 0; text-align: left; }
+table.counts th { font-weight: normal; color: #333; }
+table.counts td { font-size: 1.3rem; font-weight: 600; }
 table.summary { width: 100%; }
 .sev { font-weight: 600; }
 tr.error .sev { color: var(--error); }
 tr.warning .sev { color: var(--warning); }
 tr.information .sev { color: var(--information); }
-tr.error td:first-child { box-shadow: inset 3px 0 var(--error); }
-tr.warning td:first-child { box-shadow: inset 3px 0 var(--warning); }
-tr.information td:first-child { box-shadow: inset 3px 0 var(--information); }
+tr.error > :first-child { box-shadow: inset 3px 0 var(--error); }
+tr.warning > :first-child { box-shadow: inset 3px 0 var(--warning); }
+tr.information > :first-child { box-shadow: inset 3px 0 var(--information); }
 svg.chart { max-width: 100%; height: auto; }
 svg.chart text { font: 13px system-ui, "Segoe UI", Roboto, Arial, sans-serif; fill: #1a1a1a; }
 svg.chart .error rect { fill: var(--error); }
 svg.chart .warning rect { fill: var(--warning); }
 svg.chart .information rect { fill: var(--information); }
 .hint { color: #444; }
+a { color: #0b4f9c; }
+table.files { margin-bottom: 1rem; }
+table.files th[scope="row"] { font-weight: normal; overflow-wrap: anywhere; }
+section.file h3 { font-size: 1rem; margin: 1.2rem 0 .3rem; overflow-wrap: anywhere; }
+section.code h3 { font-size: 1rem; margin: 1.4rem 0 .2rem; }
 .rows { width: 100%; table-layout: fixed; font-size: 13px; }
-.rows td { overflow-wrap: anywhere; }
+.rows td, .rows th { overflow-wrap: anywhere; }
+.rows tbody th { font-weight: normal; background: var(--soft); }
 .rows thead th { position: sticky; top: 0; z-index: 1; }
+.rows small { color: #444; }
+.errors th:nth-child(1) { width: 12%; } .errors th:nth-child(2) { width: 8.5%; }
+.errors th:nth-child(3) { width: 15%; } .errors th:nth-child(4) { width: 11%; }
+.errors th:nth-child(5) { width: 24%; } .errors th:nth-child(6) { width: 18.5%; }
+.code-rows th:nth-child(1) { width: 16%; } .code-rows th:nth-child(2) { width: 17%; }
+.code-rows th:nth-child(3) { width: 33%; } .code-rows th:nth-child(4) { width: 12%; }
+tbody.record { border-top: 2px solid #999; }
 .chunk { content-visibility: auto; contain-intrinsic-size: auto 7000px; }
 footer { margin-top: 2rem; }
 @media print {

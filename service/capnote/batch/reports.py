@@ -30,6 +30,7 @@ def report_format(target: Path, given: str | None = None) -> str:
     return found
 
 
-def open_report(target: Path, fmt: str) -> ReportWriter:
-    """A writer for the report; its temporary file already exists beside the target."""
-    return HtmlReport(target) if fmt == "html" else CsvReport(target)
+def open_report(target: Path, fmt: str, bom: bool = False) -> ReportWriter:
+    """A writer for the report; its temporary file already exists beside the target. bom
+    asks a CSV report for a UTF-8 byte order mark (an HTML page says its charset)."""
+    return HtmlReport(target) if fmt == "html" else CsvReport(target, bom)

@@ -5,18 +5,20 @@
     options    what several commands share
 
 Exit codes: 0 no record has an error; 1 some record has an error; 2 usage or configuration
-error; 3 an unexpected failure (a generic message with an incident id, never a traceback).
+error; 3 an unexpected failure (a generic message with an incident id, never a traceback);
+as a shell reports a death by signal: 130 stopped by Ctrl-C, 141 standard output closed
+early (a broken pipe), 143 stopped by SIGTERM.
 """
 
 from __future__ import annotations
 
 import logging
-import os
 import sys
 
 import typer
 
 from capnote.cli import analyst, operator
+from capnote.cli.progress import BROKEN_PIPE, Stopped, silence_stdout
 from capnote.errors import CapnoteError
 from capnote.fhir.outcome import incident_outcome
 
@@ -45,12 +47,19 @@ def main() -> None:
     except CapnoteError as exc:
         typer.echo(f"capnote: {exc.message}", err=True)
         sys.exit(2)
+    except Stopped as stop:
+        # The command's finally blocks have dropped its temporary files on the way here.
+        typer.echo(
+            f"capnote: stopped by {stop.name}; unfinished reports and output files were removed",
+            err=True,
+        )
+        sys.exit(stop.code)
     except BrokenPipeError:
-        # The reader went away (`capnote check big.ndjson | head`): not a failure to report.
+        # The reader went away (`capnote emit big.ndjson | head`): not "errors found" (1).
         # Pointing stdout at /dev/null keeps the interpreter's final flush from raising again.
-        devnull = os.open(os.devnull, os.O_WRONLY)
-        os.dup2(devnull, sys.stdout.fileno())
-        sys.exit(1)
+        silence_stdout()
+        typer.echo("capnote: standard output was closed before the end (broken pipe)", err=True)
+        sys.exit(BROKEN_PIPE)
     except Exception:
         incident, _ = incident_outcome()
         # Debug level: the terminal gets the incident id only; operators who turn logging on

@@ -10,6 +10,7 @@ from pydantic_core import ErrorDetails
 
 from capnote.findings import Finding, Severity, show_value
 from capnote.note import Note
+from capnote.rules.wording import message, primitive
 
 RULE = "the note contract (schemas/note.schema.json)"
 
@@ -92,18 +93,28 @@ def _allowed(error: ErrorDetails) -> str | None:
         return " and ".join(bounds)
     if "pattern" in ctx:
         return "printable text (identifiers and URIs without spaces)"
+    shape = primitive(error)
+    if shape is not None:
+        return shape[1]
     return _ALLOWED.get(kind)
 
 
 def finding_from_error(
-    error: ErrorDetails, *, root: str = "", code: str | None = None, rule: str = RULE
+    error: ErrorDetails,
+    *,
+    root: str = "",
+    code: str | None = None,
+    rule: str = RULE,
+    expected: str | None = None,
 ) -> Finding:
     """One pydantic error as a finding; the message never repeats identifying values.
 
     The one mapping for every model capnote validates with: the note contract (the
-    defaults), a FHIR resource (``root`` is its type, ``rule`` the structure rule) and the
-    request's parameters. ``code`` replaces the per-kind finding code where a caller's
-    findings share one.
+    defaults), a FHIR resource (``root`` is its type, ``rule`` the structure rule,
+    ``expected`` the FHIR type the place holds, such as Reference) and the request's
+    parameters. ``code`` replaces the per-kind finding code where a caller's findings share
+    one. The message says what was expected and what was found (capnote.rules.wording),
+    never pydantic's own phrase.
     """
     kind = error["type"]
     path = json_path(error["loc"])
@@ -124,8 +135,16 @@ def finding_from_error(
             "value",
             "no control characters; identifiers and URIs have no spaces",
         )
+    elif (shape := primitive(error)) is not None:
+        kind_code, issue_type, what = "wrong-format", "value", f"the value must be {shape[0]}"
     else:
-        kind_code, issue_type, what = "invalid-value", "invalid", error["msg"]
+        kind_code, issue_type, what = "invalid-value", "invalid", "the value must be valid here"
+    if expected is not None and kind in ("json_invalid", "model_type", "dict_type"):
+        what = f"this part must be a {expected} object"
+        kind_code, issue_type = "wrong-type", "structure"
+    elif kind == "model_validation_format" and (error.get("ctx") or {}).get("model_class"):
+        what = f"this part must be a {error.get('ctx', {})['model_class']} object"
+        kind_code, issue_type = "wrong-type", "structure"
     where = location or "the payload"
     value = (
         None
@@ -136,7 +155,7 @@ def finding_from_error(
         severity=Severity.ERROR,
         code=code or kind_code,
         location=location,
-        message=f"{where}: {error['msg']}",
+        message=message(error, where, expected_object=expected),
         rule=f"{what} ({rule})",
         value=value,
         allowed=_allowed(error),
