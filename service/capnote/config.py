@@ -43,6 +43,10 @@ class Settings(BaseSettings):
     # How each emitted Bundle is checked before it leaves: "bindings" (required code
     # bindings; the default) or "r4b" (also the whole Bundle through the R4B models).
     output_check: OutputCheck = OutputCheck.BINDINGS
+    # The patient identifier system whose values are the site's Patient ids, so that a FHIR
+    # search patient=Patient/<id> means that identifier (capnote keeps no Patient resources
+    # and names the patient by identifier); unset, such a search is refused with a hint.
+    patient_id_system: str | None = None
 
     def receiver(self) -> Receiver | None:
         """The forwarding target, when one is configured."""

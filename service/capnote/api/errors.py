@@ -75,6 +75,8 @@ def _allowed_methods(request: Request) -> str:
         match, _ = route.matches({**request.scope, "method": "GET"})
         if match != Match.NONE:
             methods |= set(getattr(route, "methods", None) or ())
+    if "GET" in methods:  # capnote.api.head answers HEAD wherever GET is served
+        methods.add("HEAD")
     return ", ".join(sorted(methods))
 
 

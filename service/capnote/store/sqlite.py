@@ -251,10 +251,26 @@ class SqliteStore(Store):
                     "resource_type": i.resource_type,
                     "status": i.status,
                     "date": None if i.date is None else _moment(i.date),
+                    "date_end": None if i.date_end is None else _moment(i.date_end),
+                    "sort_at": _moment(i.sort_at),
                 }
                 for i in new.index
             ]
             steps.append((sql["add_index"], rows))
+            tokens = [
+                {
+                    "note_key": row.note_key,
+                    "version": row.version,
+                    "role": i.role,
+                    "param": param,
+                    "system": system,
+                    "code": code,
+                }
+                for i in new.index
+                for param, system, code in i.tokens
+            ]
+            if tokens:
+                steps.append((sql["add_search_tokens"], tokens))
         audit = new.audit
         audit_params = {
             "at": _moment(audit.at),

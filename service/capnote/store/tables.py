@@ -53,9 +53,9 @@ class NoteVersion(SQLModel, table=True):
 
 
 class FhirIndex(SQLModel, table=True):
-    """What the FHIR searches filter on, for the searchable resources of each note version
-    (Procedure and ServiceRequest); the resources themselves are read from the version's
-    Bundle. Rows of one note sit together under the primary key."""
+    """What the FHIR searches filter on, for the resources of each note version; the
+    resources themselves are read from the version's Bundle. Rows of one note sit together
+    under the primary key."""
 
     __tablename__ = "fhir_index"
     __table_args__ = (
@@ -68,6 +68,16 @@ class FhirIndex(SQLModel, table=True):
             sqlite_where=text("latest"),
             postgresql_where=text("latest"),
         ),
+        # The order results are paged in (keyset paging walks it).
+        Index(
+            "ix_fhir_index_order",
+            "resource_type",
+            "sort_at",
+            "note_key",
+            "role",
+            sqlite_where=text("latest"),
+            postgresql_where=text("latest"),
+        ),
         {"sqlite_with_rowid": False},
     )
 
@@ -77,7 +87,29 @@ class FhirIndex(SQLModel, table=True):
     resource_type: str = Field(max_length=40)
     latest: bool = Field(default=True)
     status: str = Field(max_length=20)
+    # The range of the resource's search date (equal ends for a moment; None for none) ...
     date: datetime | None = None
+    date_end: datetime | None = None
+    # ... and its start, or the first moment of year 1 when it has none: every row sorts.
+    sort_at: datetime
+
+
+class FhirToken(SQLModel, table=True):
+    """The token values of each indexed resource (identifiers, codings of its code): a
+    resource has several, so they are rows of their own beside its fhir_index row."""
+
+    __tablename__ = "fhir_token"
+    __table_args__ = (
+        Index("ix_fhir_token_value", "param", "code"),
+        {"sqlite_with_rowid": False},
+    )
+
+    note_key: str = Field(max_length=36, primary_key=True)
+    version: int = Field(primary_key=True)
+    role: str = Field(max_length=40, primary_key=True)
+    param: str = Field(max_length=20, primary_key=True)
+    system: str = Field(max_length=255, primary_key=True)
+    code: str = Field(max_length=255, primary_key=True)
 
 
 class ApiToken(SQLModel, table=True):
