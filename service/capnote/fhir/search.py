@@ -7,7 +7,7 @@ server does not support is refused unless the client sent ``Prefer: handling=len
 comma separates values that are ORed, a repeated parameter ANDs (2.1.1.1.4); ``\\,``
 ``\\|`` ``\\$`` and ``\\\\`` escape (2.1.1.1.5); date prefixes eq ne gt lt ge le sa eb ap
 compare the range a value's precision implies with the resource's range (2.1.1.5.5,
-2.1.1.5.9); tokens are ``code``, ``system|code``, ``|code`` and ``system|`` (2.1.1.5.13);
+2.1.1.5.9); tokens are ``code``, ``system|code`` and ``|code`` (2.1.1.5.13; ``system|`` is refused);
 ``_count``, ``_sort``, ``_total`` and ``_summary=count`` shape the result (3.1.1.5).
 
 This module knows nothing of SQL or HTTP: the store turns Criteria into a statement, the
@@ -89,10 +89,10 @@ class DateTest:
 
 @dataclass(frozen=True, slots=True)
 class Token:
-    """One token value: system None means any system, "" no system; code None any code."""
+    """One token value: system None means any system, "" no system."""
 
     system: str | None
-    code: str | None
+    code: str
 
 
 @dataclass(frozen=True, slots=True)
@@ -226,12 +226,18 @@ def parse_date(raw: str, name: str, now: datetime) -> DateTest:
     return DateTest(prefix, low, top)
 
 
-def _token(raw: str) -> Token:
+def _token(raw: str, name: str) -> Token:
+    """code, system|code or |code. "system|" (any code of a system) is refused: the token
+    rows are found by code, and a search by system alone would read them all."""
     parts = split_escaped(raw, "|")
     if len(parts) == 1:
         return Token(None, unescape(parts[0]))
     system, code = unescape(parts[0]), unescape("|".join(parts[1:]))
-    return Token(system, code or None)
+    if not code:
+        raise _error(
+            name, f"{name} needs a code: system| alone is not supported", "code, system|code, |code"
+        )
+    return Token(system, code)
 
 
 def _patient_ref(raw: str, name: str, system: str | None) -> tuple[str, str] | None:
@@ -258,7 +264,7 @@ def _patient_ref(raw: str, name: str, system: str | None) -> tuple[str, str] | N
 
 
 def _identifier(raw: str, name: str) -> tuple[str, str]:
-    token = _token(raw)
+    token = _token(raw, name)
     if not token.system or not token.code:
         raise _error(name, f"{name} must be system|value", "system|value, both non-empty")
     return token.system, token.code
@@ -337,10 +343,10 @@ def _one(
         ids = [parse_id(unescape(v)) for v in values]
         found.ids.append([i for i in ids if i is not None])
     elif name in ("identifier", "code"):
-        found.tokens.append((name, [_token(v) for v in values]))
+        found.tokens.append((name, [_token(v, name) for v in values]))
     elif name in ("status", "status:not"):
         codes = []
-        for token in (_token(v) for v in values):
+        for token in (_token(v, name) for v in values):
             # A status has one system; a value naming another matches nothing.
             if token.code is not None and token.system in (None, STATUS_SYSTEM[kind]):
                 codes.append(token.code)

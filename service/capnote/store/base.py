@@ -491,16 +491,12 @@ def search_shape(found: Criteria) -> tuple[SearchShape, dict[str, Any]]:
             | {f"{j}r": r for j, (_k, r) in enumerate(ids)},
         )
     for param, tokens in found.tokens:
-        forms = tuple(
-            ("any-system" if t.system is None else "system") + ("" if t.code else "-any-code")
-            for t in tokens
-        )
+        forms = tuple("any-system" if t.system is None else "system" for t in tokens)
         values: dict[str, Any] = {"param": param}
         for j, t in enumerate(tokens):
+            values[f"{j}c"] = t.code
             if t.system is not None:
                 values[f"{j}s"] = t.system
-            if t.code is not None:
-                values[f"{j}c"] = t.code
         clause(("token", forms), values)
     for negated, codes in found.statuses:
         clause(("status", negated, len(codes)), {f"{j}": c for j, c in enumerate(codes)})
@@ -564,12 +560,10 @@ def _condition(i: int, spec: tuple[object, ...]) -> Any:
         forms: tuple[str, ...] = spec[1]  # type: ignore[assignment]
         matches = []
         for j, form in enumerate(forms):
-            parts = []
-            if form.startswith("system"):
-                parts.append(_TOKEN_ROWS.c.system == p(f"{j}s"))
-            if not form.endswith("-any-code"):
-                parts.append(_TOKEN_ROWS.c.code == p(f"{j}c"))
-            matches.append(and_(true(), *parts))
+            code = _TOKEN_ROWS.c.code == p(f"{j}c")
+            matches.append(
+                and_(code, _TOKEN_ROWS.c.system == p(f"{j}s")) if form == "system" else code
+            )
         return exists().where(
             _TOKEN_ROWS.c.note_key == _INDEX.c.note_key,
             _TOKEN_ROWS.c.version == _INDEX.c.version,

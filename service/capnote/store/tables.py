@@ -68,16 +68,6 @@ class FhirIndex(SQLModel, table=True):
             sqlite_where=text("latest"),
             postgresql_where=text("latest"),
         ),
-        # The order results are paged in (keyset paging walks it).
-        Index(
-            "ix_fhir_index_order",
-            "resource_type",
-            "sort_at",
-            "note_key",
-            "role",
-            sqlite_where=text("latest"),
-            postgresql_where=text("latest"),
-        ),
         {"sqlite_with_rowid": False},
     )
 
@@ -96,20 +86,21 @@ class FhirIndex(SQLModel, table=True):
 
 class FhirToken(SQLModel, table=True):
     """The token values of each indexed resource (identifiers, codings of its code): a
-    resource has several, so they are rows of their own beside its fhir_index row."""
+    resource has several, so they are rows of their own beside its fhir_index row.
+
+    Keyed by value first and then by resource, so that one tree answers both lookups a
+    search makes (which resources have this value; has this resource this value) and
+    each row is written to one tree only (a second index cost more than the row)."""
 
     __tablename__ = "fhir_token"
-    __table_args__ = (
-        Index("ix_fhir_token_value", "param", "code"),
-        {"sqlite_with_rowid": False},
-    )
+    __table_args__ = ({"sqlite_with_rowid": False},)
 
+    param: str = Field(max_length=20, primary_key=True)
+    code: str = Field(max_length=255, primary_key=True)
     note_key: str = Field(max_length=36, primary_key=True)
     version: int = Field(primary_key=True)
     role: str = Field(max_length=40, primary_key=True)
-    param: str = Field(max_length=20, primary_key=True)
     system: str = Field(max_length=255, primary_key=True)
-    code: str = Field(max_length=255, primary_key=True)
 
 
 class ApiToken(SQLModel, table=True):
