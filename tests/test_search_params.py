@@ -150,3 +150,24 @@ def test_a_cursor_round_trips_and_a_forged_one_is_refused() -> None:
             patient_id_system=None,
             now=NOW,
         )
+
+
+@pytest.mark.parametrize("value", ["ap0001", "ap9999", "ap0001-01-01T00:00:00Z"])
+def test_approximately_at_the_ends_of_time_stays_in_range(value: str) -> None:
+    test = parse_date(value, "date", NOW)
+    assert test.low <= test.high
+
+
+def test_a_search_is_bounded() -> None:
+    with pytest.raises(SearchError):
+        parse_search(
+            "Procedure",
+            [("_id", ",".join(["x"] * 51))],
+            lenient=False,
+            patient_id_system=None,
+            now=NOW,
+        )
+    with pytest.raises(SearchError):
+        parse_search(
+            "Procedure", [("date", "2026")] * 31, lenient=False, patient_id_system=None, now=NOW
+        )

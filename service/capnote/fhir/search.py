@@ -46,6 +46,10 @@ STATUS_SYSTEM = {
 EYE_TYPES = ("Procedure", "Observation")
 EYES = ("right", "left")
 MAX_COUNT = 200
+# Bounds on one search: each distinct shape is a statement compiled and kept, so the
+# number of parameters and of ORed values is limited (far above what a client needs).
+MAX_PARAMS = 30
+MAX_VALUES = 50
 DEFAULT_COUNT = 50
 # Parameters whose values identify a patient or a record: left out of the links of a POST
 # search, whose client sent them in the body to keep them out of URLs.
@@ -222,7 +226,9 @@ def parse_date(raw: str, name: str, now: datetime) -> DateTest:
         # "approximately": the range widened by a tenth of its distance from now (R4 leaves
         # the amount to the server; 10% is what the specification suggests as an example).
         gap = abs(now - low) / 10
-        low, top = max(low - gap, datetime.min.replace(tzinfo=UTC)), top + gap
+        earliest, latest = datetime.min.replace(tzinfo=UTC), datetime.max.replace(tzinfo=UTC)
+        low = low - gap if low - earliest > gap else earliest
+        top = top + gap if latest - top > gap else latest
     return DateTest(prefix, low, top)
 
 
@@ -305,6 +311,8 @@ def parse_search(
     found = Criteria(kind)
     allowed = supported(kind)
     date_name = DATE_PARAM[kind]
+    if len(pairs) > MAX_PARAMS:
+        raise _error("", f"a search takes at most {MAX_PARAMS} parameters", f"<= {MAX_PARAMS}")
     for name, raw in pairs:
         if name not in allowed:
             if lenient:
@@ -331,6 +339,8 @@ def _one(
 ) -> bool:
     """Apply one parameter to found; False for one that shapes nothing (_format)."""
     values = split_escaped(raw, ",")
+    if len(values) > MAX_VALUES:
+        raise _error(name, f"{name} takes at most {MAX_VALUES} values", f"<= {MAX_VALUES}")
     kind = found.kind
     if name not in ("_count", "_cursor", "_format") and any(v == "" for v in values):
         raise _error(name, f"{name} has an empty value")

@@ -652,6 +652,10 @@ def compiled(dialect: Dialect) -> dict[str, Sql]:
     return {name: compile_one(statement, dialect) for name, statement in STATEMENTS.items()}
 
 
+# How many statements of varying shape a store keeps compiled (searches, listings).
+_VARIANTS_KEPT = 512
+
+
 # --- the interface ---------------------------------------------------------------------------
 
 
@@ -672,6 +676,8 @@ class Store(ABC):
         shape (the values are always bound parameters)."""
         sql = self._variants.get(key)
         if sql is None:
+            if len(self._variants) >= _VARIANTS_KEPT:  # searches vary: forget the oldest
+                self._variants.pop(next(iter(self._variants)))
             sql = self._variants[key] = compile_one(build(), self._dialect)
         return sql
 
