@@ -454,6 +454,14 @@ def test_paging_is_stable_while_earlier_notes_are_written(fhir: Fhir) -> None:
     assert len(seen) == len(set(seen)) == 10  # no repeats, no gaps
     assert seen == ten_keys  # in session order, each once
     assert fhir.search("Procedure", {"patient": "P-T3", "_summary": "count"})["total"] == 15
+    # Newest first, page by page: every session once, in descending order.
+    page = fhir.search("Procedure", {"patient": "P-T3", "_count": "4", "_sort": "-date"})
+    starts = []
+    while page is not None:
+        starts += [e["resource"]["performedPeriod"]["start"] for e in matches(page)]
+        page = follow(fhir, page)
+    assert len(starts) == len(set(starts)) == 15
+    assert starts == sorted(starts, reverse=True)
 
 
 def test_post_search_keeps_identifiers_out_of_urls(fhir: Fhir) -> None:
