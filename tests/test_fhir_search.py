@@ -451,6 +451,8 @@ def test_paging_is_stable_while_earlier_notes_are_written(fhir: Fhir) -> None:
     page: dict[str, Any] | None = first
     while (page := follow(fhir, page)) is not None:
         seen += [e["resource"]["id"] for e in matches(page)]
+        # A later page's self link names that page: the cursor it was reached with.
+        assert any(name == "_cursor" for name, _value in self_query(page))
     assert len(seen) == len(set(seen)) == 10  # no repeats, no gaps
     assert seen == ten_keys  # in session order, each once
     assert fhir.search("Procedure", {"patient": "P-T3", "_summary": "count"})["total"] == 15

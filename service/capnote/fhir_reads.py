@@ -141,7 +141,9 @@ class FhirReads:
             if not (asked.posted and name in IDENTIFYING)
         ]
         where = f"{asked.base}/{kind}" + ("/_search" if asked.posted else "")
-        links = [{"relation": "self", "url": _url(where, applied)}]
+        # The self link names this page: what was applied and, past the first, its cursor.
+        here = applied if found.cursor is None else [*applied, ("_cursor", found.cursor.text())]
+        links = [{"relation": "self", "url": _url(where, here)}]
         if more and rows:
             last = rows[-1]
             cursor = Cursor(last.sort_at, last.note_key, last.role)
