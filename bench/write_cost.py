@@ -12,12 +12,13 @@ from __future__ import annotations
 
 import argparse
 import asyncio
-import copy
 import json
+import re
 import tempfile
 import time
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
+from typing import Any
 
 from capnote.assess import Assessor
 from capnote.notes import NoteService, Principal
@@ -26,6 +27,7 @@ from capnote.store.database import migrate, open_store
 
 TEMPLATE = Path(__file__).resolve().parents[1] / "examples" / "notes" / "right-routine.json"
 WARM = 20
+_MOMENT = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}[+-]\d{2}:\d{2}$")
 
 
 def main() -> None:
@@ -35,7 +37,8 @@ def main() -> None:
     base = json.loads(TEMPLATE.read_text())
     bodies = []
     for i in range(args.notes + WARM):
-        note = copy.deepcopy(base)
+        # Sessions arrive in time order, a few minutes apart, as a clinic writes them.
+        note = shifted(base, timedelta(minutes=5 * i) - timedelta(days=30))
         note["note_id"]["value"] = f"LN-W-{i}"
         note["patient"]["value"] = f"P-W-{i}"
         note["eye"] = "right" if i % 2 else "left"
@@ -55,6 +58,17 @@ def main() -> None:
             runner.run(service.store.aclose())
     per_note = cpu / args.notes * 1e3
     print(f"{args.notes} notes: {per_note:.2f} ms CPU per note, {args.notes / wall:.0f}/s wall")
+
+
+def shifted(node: Any, by: timedelta) -> Any:
+    """A copy of a note with every date-time (not the dates) moved by the same amount."""
+    if isinstance(node, dict):
+        return {k: shifted(v, by) for k, v in node.items()}
+    if isinstance(node, list):
+        return [shifted(v, by) for v in node]
+    if isinstance(node, str) and _MOMENT.match(node):
+        return (datetime.fromisoformat(node) + by).isoformat()
+    return node
 
 
 def time_now() -> datetime:
