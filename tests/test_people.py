@@ -121,3 +121,26 @@ def test_an_expired_token_is_refused_and_use_is_recorded(api: Api) -> None:
     [info] = [t for t in on_store(api.url, listed) if t.id == live_id]
     assert info.last_used_at == NOW
     assert info.expires_at == NOW + timedelta(days=1)
+
+
+def test_each_version_s_provenance_stays_readable(api: Api) -> None:
+    key = api.client.post("/notes", content=ROUTINE, headers=api.headers("submitter")).json()["id"]
+    changed = routine()
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    api.client.put(
+        f"/notes/{key}",
+        content=json.dumps({"reason": "re-measured", "note": changed}),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
+    )
+    h = api.headers("auditor")
+    first = api.client.get(f"/fhir/Provenance/{key}-provenance-1", headers=h)
+    second = api.client.get(f"/fhir/Provenance/{key}-provenance-2", headers=h)
+    assert (first.status_code, second.status_code) == (200, 200)
+    assert first.json()["activity"]["coding"][0]["code"] == "CREATE"
+    assert second.json()["activity"]["coding"][0]["code"] == "UPDATE"
+    assert second.json()["reason"] == [{"text": "re-measured"}]
+    # Its targets are served as references you can follow on this API.
+    target = second.json()["target"][0]["reference"]
+    assert api.client.get(f"/fhir/{target}", headers=h).status_code == 200
+    assert r4_problems(second.json()) == []
+    assert api.client.get(f"/fhir/Provenance/{key}-provenance-3", headers=h).status_code == 404

@@ -2,7 +2,7 @@
 ORM's table definitions, tokens, the audit trail and the outbox keep their promises on both
 engines, a SQLite writer that meets a held lock waits without stopping the event loop, WAL
 checkpoints run off the request path, and stored rows from the previous layout are
-converted by migration 0003."""
+converted by migrations 0003 and 0005."""
 
 from __future__ import annotations
 
@@ -27,7 +27,7 @@ from capnote.app import create_app
 from capnote.assess import Assessor
 from capnote.config import Settings
 from capnote.fhir.common import stable_uuid
-from capnote.fhir.readmodel import ROLE_MAX, parse_id, resource_id
+from capnote.fhir.readmodel import ROLE_MAX, parse_id, resource_id, searchables
 from capnote.note import Note
 from capnote.notes import NoteService, Principal, content_hash, note_key
 from capnote.policy import load_policy
@@ -35,7 +35,7 @@ from capnote.store.base import FAILED, PENDING, Store
 from capnote.store.codec import pack_bundle, pack_roles, unpack_bundle, unpack_roles
 from capnote.store.database import MIGRATIONS, make_engine, migrate, open_store, upgrade
 from capnote.store.sqlite import SqliteStore
-from capnote.store.tables import FhirIndex, NoteVersion
+from capnote.store.tables import FhirIndex, FhirToken, NoteVersion
 from tests.conftest import NOW, VALID, on_store, routine, sync_notes
 
 WHO = Principal("store test", "submitter")
@@ -67,10 +67,18 @@ def test_a_written_version_reads_back_through_the_orm(database_url: str) -> None
         assert utc(row.recorded_at) == NOW == latest.recorded_at
         assert utc(row.started_at) == latest.started_at
         assert unpack_bundle(bytes(row.bundle)) == stored.bundle_json
+        # Every resource the read API searches is indexed (each version's Provenance is
+        # read by id, not searched).
+        entries = [
+            e
+            for e in orjson.loads(stored.bundle_json)["entry"]
+            if e["resource"]["resourceType"] != "Provenance"
+        ]
+        assert len(index) == len(entries)
         assert {(i.resource_type, i.latest) for i in index} == {
-            ("Procedure", True),
-            ("ServiceRequest", True),
+            (e["resource"]["resourceType"], True) for e in entries
         }
+        assert {i.resource_type for i in index} >= {"Procedure", "Observation", "ServiceRequest"}
     finally:
         notes.close()
         engine.dispose()
@@ -356,16 +364,28 @@ def test_migration_0003_converts_stored_versions(database_url: str) -> None:
     with Session(engine) as session:
         row = session.exec(select(NoteVersion)).one()
         index = session.exec(select(FhirIndex)).all()
+        tokens = session.exec(select(FhirToken)).all()
     engine.dispose()
     assert orjson.loads(unpack_bundle(bytes(row.bundle))) == old_bundle
     assert tuple(r for _k, r in unpack_roles(row.roles)) == old_roles
     assert row.content_hash == content_hash(note_json)
-    assert sorted(i.role for i in index) == sorted(
-        r
-        for r, e in zip(old_roles, old_bundle["entry"], strict=True)
-        if e["resource"]["resourceType"] in ("Procedure", "ServiceRequest")
-    )
+    # Migration 0005 then indexed every resource, as the running service indexes one: its
+    # frozen copy of the extraction agrees with capnote.fhir.readmodel.
+    expected = searchables(old_bundle, old_roles)
+    assert sorted(i.role for i in index) == sorted(old_roles) == sorted(e.role for e in expected)
     assert all(i.latest for i in index)
+    by_role = {i.role: i for i in index}
+    for e in expected:
+        got = by_role[e.role]
+        assert (got.resource_type, got.status) == (e.resource_type, e.status)
+        assert [None if t is None else utc(t) for t in (got.date, got.date_end)] == [
+            e.date,
+            e.date_end,
+        ]
+        assert utc(got.sort_at) == e.sort_at
+    assert sorted((t.role, t.param, t.system, t.code) for t in tokens) == sorted(
+        (e.role, *t) for e in expected for t in e.tokens
+    )
 
 
 def test_the_sqlite_files_are_private(tmp_path: Path) -> None:

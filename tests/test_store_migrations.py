@@ -21,6 +21,7 @@ def test_upgrade_from_empty_gives_the_models_tables(database_url: str) -> None:
             "alembic_version",
             "note_version",
             "fhir_index",
+            "fhir_token",
             "api_token",
             "audit_entry",
             "outbox_entry",
@@ -28,7 +29,7 @@ def test_upgrade_from_empty_gives_the_models_tables(database_url: str) -> None:
         with engine.connect() as connection:
             assert (
                 connection.execute(text("select version_num from alembic_version")).scalar()
-                == "0004"
+                == "0005"
             )
             diff = compare_metadata(MigrationContext.configure(connection), SQLModel.metadata)
         assert diff == []

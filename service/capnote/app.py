@@ -27,6 +27,7 @@ from capnote.api import (
 from capnote.api.access_audit import AccessAudit
 from capnote.api.body_limit import BodyLimit
 from capnote.api.guard import Guard
+from capnote.api.head import HeadAsGet
 from capnote.api.headers import SecurityHeaders
 from capnote.assess import Assessor
 from capnote.audit_trail import AuditTrail
@@ -95,7 +96,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     # The services routes ask for (capnote.api.deps); nothing else is kept on the app.
     assessor = Assessor(policy, output_check=settings.output_check)
     app.state.notes = NoteService(store, assessor, clock, forward=receiver is not None)
-    app.state.fhir_reads = FhirReads(store)
+    app.state.fhir_reads = FhirReads(store, clock, settings.patient_id_system)
     app.state.audit_trail = AuditTrail(store)
     app.state.access = Access(store, clock)
     app.state.settings = settings
@@ -122,6 +123,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
             expose_headers=["ETag", "Location"],
         )
     app.add_middleware(AccessAudit, store=store, clock=clock)
+    app.add_middleware(HeadAsGet)
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     app.add_middleware(Guard)
     # Outermost, so that the 413 of BodyLimit and the 500 of Guard carry the headers too.

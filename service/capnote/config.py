@@ -42,7 +42,10 @@ class Settings(BaseSettings):
     deliver_in_service: bool = True
     # The hospital's numbering systems (URIs) for patient, visit and staff identifiers: the
     # form records every number under these, so clinicians never type a URI. Unset, the form
-    # says the site has not set them and cannot save a note.
+    # says the site has not set them and cannot save a note. The patient system is also the
+    # one whose values are the site's Patient ids, so that a FHIR search patient=Patient/<id>
+    # means that identifier (capnote keeps no Patient resources); unset, such a search is
+    # refused with a hint.
     patient_id_system: str | None = None
     visit_id_system: str | None = None
     staff_id_system: str | None = None

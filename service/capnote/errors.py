@@ -2,6 +2,7 @@
 
     CapnoteError             (500, exception)   base; never raised bare
     ├── InputError           (422, invalid)     a payload capnote cannot accept; has findings
+    │   └── SearchError      (400, invalid)     a search parameter capnote does not apply
     ├── NotFoundError        (404, not-found)   no such record
     ├── ConflictError        (409, conflict)    same identifier, different content
     ├── PreconditionError    (412, conflict)    If-Match names a version that is not the latest
@@ -50,6 +51,14 @@ class InputError(CapnoteError):
     def __init__(self, message: str, findings: Sequence[Finding]) -> None:
         super().__init__(message)
         self.findings = tuple(findings)
+
+
+class SearchError(InputError):
+    """A FHIR search with a parameter capnote does not support, or a value it cannot take:
+    400, as FHIR R4 search answers a search it cannot run."""
+
+    code = "search-invalid"
+    http_status = 400
 
 
 class NotFoundError(CapnoteError):

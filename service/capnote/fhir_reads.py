@@ -11,25 +11,16 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
+from urllib.parse import urlencode
 
 import orjson
 
-from capnote.errors import NotFoundError
-from capnote.fhir.readmodel import READABLE, StoredBundle, parse_id
+from capnote.errors import NotFoundError, UsageError
+from capnote.fhir.outcome import message_outcome
+from capnote.fhir.readmodel import READABLE, SEARCHABLE, StoredBundle, parse_id
+from capnote.fhir.search import IDENTIFYING, Cursor, parse_search
 from capnote.store.base import Store, VersionRow
 from capnote.store.codec import unpack_bundle, unpack_roles
-
-
-@dataclass(frozen=True, slots=True)
-class SearchPage:
-    """What one searchset page asks for, once the route has read the parameters."""
-
-    patient: tuple[str, str] | None
-    status: str | None
-    after: tuple[str, datetime] | None  # ("ge" | "gt", time)
-    before: tuple[str, datetime] | None  # ("le" | "lt", time)
-    page: int
-    count: int
 
 
 def _kind(kind: str) -> str:
@@ -55,16 +46,36 @@ def _of_row(row: VersionRow) -> StoredBundle:
     return _bundle(row.note_key, row.version, row.recorded_at, row.bundle, row.roles)
 
 
+def _provenance_version(kind: str, role: str) -> int | None:
+    """The note version a Provenance id names (provenance-<n>), or None for other reads."""
+    number = role.removeprefix("provenance-")
+    if kind != "Provenance" or number == role or not (number.isascii() and number.isdigit()):
+        return None
+    return int(number) if len(number) <= 9 else 0
+
+
 class FhirReads:
     """Reads of the resources capnote has emitted, as the FHIR R4 read API serves them."""
 
-    def __init__(self, store: Store) -> None:
+    def __init__(
+        self,
+        store: Store,
+        clock: Callable[[], datetime],
+        patient_id_system: str | None = None,
+    ) -> None:
         self.store = store
+        self.clock = clock
+        # The identifier system whose values are the site's Patient ids (patient=Patient/x).
+        self.patient_id_system = patient_id_system
 
     async def read(self, kind: str, resource_id: str) -> dict[str, Any]:
         """The current version of a resource."""
         key, role = _id(resource_id)
-        row = await self.store.latest(key)
+        version = _provenance_version(kind, role)
+        # A version's Provenance is in that version's Bundle only (it is never updated).
+        row = await (
+            self.store.latest(key) if version is None else self.store.version(key, version)
+        )
         resource = _of_row(row).served(role, _kind(kind)) if row is not None else None
         if resource is None:
             raise NotFoundError(f"no {kind} with this id")
@@ -113,24 +124,26 @@ class FhirReads:
             ],
         }
 
-    async def search(
-        self,
-        kind: str,
-        wanted: SearchPage,
-        base: str,
-        self_url: str,
-        page_url: Callable[[int], str],
-    ) -> dict[str, Any]:
-        """One page of a searchset (page_url gives the URL of another page)."""
-        total, rows = await self.store.fhir_search(
-            kind,
-            patient=wanted.patient,
-            status=wanted.status,
-            after=wanted.after,
-            before=wanted.before,
-            offset=(wanted.page - 1) * wanted.count,
-            limit=wanted.count,
+    async def search(self, kind: str, asked: SearchRequest) -> dict[str, Any]:
+        """One page of a searchset for the parameters asked (see capnote.fhir.search)."""
+        if kind in READABLE and kind not in SEARCHABLE:
+            raise UsageError(
+                f"{kind} is read by id here, not searched (see the CapabilityStatement)"
+            )
+        found = parse_search(
+            _kind(kind),
+            asked.pairs,
+            lenient=asked.lenient,
+            patient_id_system=self.patient_id_system,
+            now=self.clock(),
         )
+        limit = 0 if found.count_only else found.count
+        # One row more than the page shows says whether there is a next page.
+        total, rows = await self.store.fhir_search(
+            found, total=found.total or found.count_only, limit=limit and limit + 1
+        )
+        more = len(rows) > limit
+        rows = rows[:limit]
         resources = []
         for r in rows:
             resource = _bundle(r.note_key, r.version, r.recorded_at, r.bundle, r.roles).served(
@@ -138,20 +151,58 @@ class FhirReads:
             )
             if resource is not None:  # the index and the Bundle are written together: always
                 resources.append(resource)
-        links = [{"relation": "self", "url": self_url}]
-        if wanted.page * wanted.count < total:
-            links.append({"relation": "next", "url": page_url(wanted.page + 1)})
-        return {
-            "resourceType": "Bundle",
-            "type": "searchset",
-            "total": total,
-            "link": links,
-            "entry": [
+        applied = [
+            (name, value)
+            for name, value in found.applied
+            if not (asked.posted and name in IDENTIFYING)
+        ]
+        where = f"{asked.base}/{kind}" + ("/_search" if asked.posted else "")
+        # The self link names this page: what was applied and, past the first, its cursor.
+        here = applied if found.cursor is None else [*applied, ("_cursor", found.cursor.text())]
+        links = [{"relation": "self", "url": _url(where, here)}]
+        if more and rows:
+            last = rows[-1]
+            cursor = Cursor(last.sort_at, last.note_key, last.role)
+            paged = [*(p for p in applied if p[0] != "_count"), ("_count", str(found.count))]
+            links.append(
+                {"relation": "next", "url": _url(where, [*paged, ("_cursor", cursor.text())])}
+            )
+        bundle: dict[str, Any] = {"resourceType": "Bundle", "type": "searchset"}
+        if total is not None:
+            bundle["total"] = total
+        bundle["link"] = links
+        entries: list[dict[str, Any]] = [
+            {
+                "fullUrl": f"{asked.base}/{kind}/{resource['id']}",
+                "resource": resource,
+                "search": {"mode": "match"},
+            }
+            for resource in resources
+        ]
+        if found.ignored:
+            # Prefer: handling=lenient: what was left out is said, not only dropped.
+            note = "ignored search parameters (not supported): " + ", ".join(found.ignored)
+            entries.append(
                 {
-                    "fullUrl": f"{base}/{kind}/{resource['id']}",
-                    "resource": resource,
-                    "search": {"mode": "match"},
+                    "resource": message_outcome("warning", "not-supported", note),
+                    "search": {"mode": "outcome"},
                 }
-                for resource in resources
-            ],
-        }
+            )
+        if entries:
+            bundle["entry"] = entries
+        return bundle
+
+
+@dataclass(frozen=True, slots=True)
+class SearchRequest:
+    """A search as the route read it: the parameters in order, whether the client asked
+    for lenient handling, whether they came in a POST body, and the server's FHIR base."""
+
+    pairs: list[tuple[str, str]]
+    lenient: bool
+    posted: bool
+    base: str
+
+
+def _url(where: str, params: list[tuple[str, str]]) -> str:
+    return f"{where}?{urlencode(params)}" if params else where

@@ -3,6 +3,7 @@ entries as FHIR AuditEvent resources under /fhir/AuditEvent, searchable."""
 
 from __future__ import annotations
 
+from datetime import UTC, datetime
 from typing import Annotated
 
 from fastapi import APIRouter, Depends, Path, Query, Request
@@ -12,10 +13,10 @@ from capnote.api.answers import AuditAnswer
 from capnote.api.auth import AUDIT, allow
 from capnote.api.deps import Audit
 from capnote.api.docs import responses
-from capnote.api.fhir import _date_range as date_range
 from capnote.api.media import FHIR_JSON, fhir_response, json_response
 from capnote.audit_trail import EventQuery
 from capnote.errors import InputError, UsageError
+from capnote.fhir.search import parse_date
 from capnote.findings import refusal
 from capnote.notes import Principal
 
@@ -70,7 +71,7 @@ def _event_query(request: Request) -> EventQuery:
             f"the search parameter {unknown[0]!r} is not supported on AuditEvent; "
             f"supported: {', '.join(SUPPORTED)}"
         )
-    after, before = date_range(params.getlist("date"), "date")
+    after, before = _at_range(params.getlist("date"), datetime.now(UTC))
     agent = params.get("agent")
     if agent is not None and not (agent.isascii() and agent.isdigit() and len(agent) <= 18):
         raise _bad("agent", "agent is the id of the token used (capnote token list)", agent)
@@ -89,6 +90,38 @@ def _event_query(request: Request) -> EventQuery:
         page=_number(params.get("_page"), "_page", 1, 100_000, 1),
         count=min(_number(params.get("_count"), "_count", 1, 10**6, 100), COUNT_MAX),
     )
+
+
+def _at_range(
+    values: list[str], now: datetime
+) -> tuple[tuple[str, datetime] | None, tuple[str, datetime] | None]:
+    """date= values (every R4 prefix but ne, partial dates) as the range an entry's moment
+    must fall in: (after: ("ge" | "gt", t), before: ("le" | "lt", t)); several narrow it."""
+    after: tuple[str, datetime] | None = None
+    before: tuple[str, datetime] | None = None
+    for raw in values:
+        test = parse_date(raw, "date", now)
+        if test.prefix == "ne":
+            raise _bad("date", "the ne prefix is not supported on AuditEvent", raw)
+        low = {
+            "eq": ("ge", test.low),
+            "ap": ("ge", test.low),
+            "ge": ("ge", test.low),
+            "gt": ("gt", test.high),
+            "sa": ("gt", test.high),
+        }.get(test.prefix)
+        high = {
+            "eq": ("le", test.high),
+            "ap": ("le", test.high),
+            "le": ("le", test.high),
+            "lt": ("lt", test.low),
+            "eb": ("lt", test.low),
+        }.get(test.prefix)
+        if low is not None and (after is None or low[1] > after[1]):
+            after = low
+        if high is not None and (before is None or high[1] < before[1]):
+            before = high
+    return after, before
 
 
 def _number(text: str | None, name: str, low: int, high: int, default: int) -> int:

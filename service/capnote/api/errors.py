@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import logging
-from collections.abc import Mapping
+from collections.abc import Iterable, Iterator, Mapping
 from typing import cast
 
 from fastapi import FastAPI, Request
@@ -13,7 +13,7 @@ from pydantic_core import ErrorDetails
 from sqlalchemy.exc import DataError, InterfaceError, OperationalError
 from starlette.exceptions import HTTPException
 from starlette.requests import ClientDisconnect
-from starlette.routing import Match
+from starlette.routing import BaseRoute, Match
 
 from capnote.api.guard import incident
 from capnote.api.media import FHIR_JSON, fhir_response
@@ -68,13 +68,27 @@ async def _validation_error(_request: Request, exc: Exception) -> Response:
     return outcome_response(422, outcome(findings))
 
 
+def _leaves(routes: Iterable[BaseRoute]) -> Iterator[BaseRoute]:
+    """Every route, those of included routers too: FastAPI keeps an included router as one
+    entry of app.routes, whose own routes carry the full path (capnote includes routers
+    without a prefix), so a match against the app's entries alone names no methods."""
+    for route in routes:
+        inner = getattr(route, "original_router", None)
+        if inner is not None:
+            yield from _leaves(inner.routes)
+        else:
+            yield route
+
+
 def _allowed_methods(request: Request) -> str:
     """Every method some route offers at this path (Starlette names only the first route's)."""
     methods: set[str] = set()
-    for route in request.app.routes:
+    for route in _leaves(request.app.routes):
         match, _ = route.matches({**request.scope, "method": "GET"})
         if match != Match.NONE:
             methods |= set(getattr(route, "methods", None) or ())
+    if "GET" in methods:  # capnote.api.head answers HEAD wherever GET is served
+        methods.add("HEAD")
     return ", ".join(sorted(methods))
 
 

@@ -2,25 +2,25 @@
 
 from __future__ import annotations
 
-import re
-from datetime import UTC, date, datetime, time, timedelta
-from typing import Annotated
+from typing import Annotated, Any
+from urllib.parse import parse_qsl
 
-from fastapi import APIRouter, Depends, Path, Query, Request
+from fastapi import APIRouter, Depends, Path, Request
 from fastapi.responses import Response
 
 from capnote.api.auth import READ, allow
 from capnote.api.capability import capability_statement
 from capnote.api.deps import Reads
 from capnote.api.docs import responses
-from capnote.api.media import FHIR_JSON, fhir_response
-from capnote.errors import InputError
-from capnote.fhir_reads import SearchPage
+from capnote.api.formats import json_only
+from capnote.api.media import FHIR_JSON, fhir_response, http_date
+from capnote.api.prefer import lenient
+from capnote.errors import InputError, PayloadError
+from capnote.fhir_reads import SearchRequest
 from capnote.findings import refusal
 from capnote.notes import Principal
 
-router = APIRouter(prefix="/fhir", tags=["fhir"])
-_DATE = re.compile(r"^(eq|ne|gt|lt|ge|le)?(\d{4}-\d{2}-\d{2}(T[0-9:.]+(Z|[+-]\d{2}:\d{2}))?)$")
+router = APIRouter(prefix="/fhir", tags=["fhir"], dependencies=[Depends(json_only)])
 Reader = Annotated[Principal, Depends(allow(*READ))]
 
 
@@ -34,123 +34,53 @@ async def metadata(request: Request) -> Response:
     return fhir_response(capability_statement(str(request.base_url).rstrip("/") + "/fhir"))
 
 
-def _date_range(
-    values: list[str], name: str
-) -> tuple[tuple[str, datetime] | None, tuple[str, datetime] | None]:
-    """FHIR date prefixes to (after, before): ("ge" | "gt", time) and ("le" | "lt", time)."""
-    after: tuple[str, datetime] | None = None
-    before: tuple[str, datetime] | None = None
-    for raw in values:
-        match = _DATE.match(raw)
-        if match is None:
-            raise _problem(name, f"{name} must be [prefix]YYYY-MM-DD or a date-time", raw[:40])
-        prefix, text = match[1] or "eq", match[2]
-        try:
-            if "T" in text:
-                start = datetime.fromisoformat(text.replace("Z", "+00:00"))
-                end = start
-            else:
-                day = date.fromisoformat(text)
-                start = datetime.combine(day, time(), UTC)
-                end = start + timedelta(days=1) - timedelta(microseconds=1)
-        except ValueError as exc:
-            raise _problem(name, f"{name} is not a date that exists", raw[:40]) from exc
-        if prefix in ("eq", "ge", "gt"):
-            after = ("gt", end) if prefix == "gt" else ("ge", start)
-        if prefix in ("eq", "le", "lt"):
-            before = ("lt", start) if prefix == "lt" else ("le", end)
-        if prefix == "ne":
-            raise _problem(name, "the ne prefix is not supported", raw[:40])
-    return after, before
-
-
-def _patient(value: str | None) -> tuple[str, str] | None:
-    if value is None:
-        return None
-    system, sep, ident = value.partition("|")
-    if not sep or not system or not ident:
-        raise _problem("patient:identifier", "patient:identifier must be system|value")
-    return system, ident
-
-
-Page = Annotated[int, Query(alias="_page", ge=1, le=100_000)]
-Count = Annotated[int, Query(alias="_count", ge=1, le=200)]
-PatientIdentifier = Annotated[str | None, Query(alias="patient:identifier")]
+def _version_headers(resource: dict[str, Any]) -> dict[str, str]:
+    """ETag and Last-Modified of a resource version (FHIR R4 http 3.1.0.3: read)."""
+    meta = resource["meta"]
+    return {"ETag": f'W/"{meta["versionId"]}"', "Last-Modified": http_date(meta["lastUpdated"])}
 
 
 def _base(request: Request) -> str:
     return str(request.base_url).rstrip("/") + "/fhir"
 
 
-async def _search(
-    request: Request,
-    reads: Reads,
-    kind: str,
-    patient: str | None,
-    dates: list[str],
-    name: str,
-    status: str | None,
-    page: int,
-    count: int,
-) -> Response:
-    """One searchset for a type: patient, a date parameter with prefixes, status; paged."""
-    after, before = _date_range(dates, name)
-    wanted = SearchPage(_patient(patient), status, after, before, page, count)
-
-    def page_url(number: int) -> str:
-        query = dict(request.query_params) | {"_page": str(number), "_count": str(count)}
-        return str(request.url.replace_query_params(**query))
-
-    bundle = await reads.search(kind, wanted, _base(request), str(request.url), page_url)
-    return fhir_response(bundle)
+_FORM = "application/x-www-form-urlencoded"
 
 
-@router.get("/Procedure", responses=responses(200, 422, media=FHIR_JSON))
-async def search_procedures(
-    request: Request,
-    reads: Reads,
-    _who: Reader,
-    patient_identifier: PatientIdentifier = None,
-    date_: Annotated[list[str] | None, Query(alias="date")] = None,
-    page: Page = 1,
-    count: Count = 50,
-) -> Response:
-    """Procedures by patient identifier and performed date (prefixes ge, le, gt, lt, eq)."""
-    return await _search(
-        request, reads, "Procedure", patient_identifier, date_ or [], "date", None, page, count
+@router.get("/{kind}", responses=responses(200, 400, 404, media=FHIR_JSON))
+async def search(request: Request, reads: Reads, kind: str, _who: Reader) -> Response:
+    """Search a type (GET [type]?...): every parameter is applied or refused with 400 (see
+    the CapabilityStatement for each type's); Prefer: handling=lenient ignores the others."""
+    asked = SearchRequest(
+        list(request.query_params.multi_items()), lenient(request), False, _base(request)
     )
+    return fhir_response(await reads.search(kind, asked))
 
 
-@router.get("/ServiceRequest", responses=responses(200, 422, media=FHIR_JSON))
-async def search_service_requests(
-    request: Request,
-    reads: Reads,
-    _who: Reader,
-    status: Annotated[str | None, Query(pattern="^[a-z-]+$")] = None,
-    occurrence: Annotated[list[str] | None, Query()] = None,
-    patient_identifier: PatientIdentifier = None,
-    page: Page = 1,
-    count: Count = 50,
-) -> Response:
-    """Follow-up requests by status, target date and patient: what is due."""
-    return await _search(
-        request,
-        reads,
-        "ServiceRequest",
-        patient_identifier,
-        occurrence or [],
-        "occurrence",
-        status,
-        page,
-        count,
-    )
+@router.post("/{kind}/_search", responses=responses(200, 400, 404, 415, media=FHIR_JSON))
+async def search_posted(request: Request, reads: Reads, kind: str, _who: Reader) -> Response:
+    """Search a type with the parameters in an application/x-www-form-urlencoded body (and
+    any in the URL), which keeps identifiers out of URLs: the links of the answer leave the
+    identifying parameters out, so a client posts the same body to the next link."""
+    media = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    if media != _FORM:
+        raise PayloadError(
+            f"POST _search takes {_FORM}, not {media or 'no body'}", 415, "not-supported"
+        )
+    try:
+        body = (await request.body()).decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise _problem("", "the form body is not UTF-8") from exc
+    pairs = list(request.query_params.multi_items()) + parse_qsl(body, keep_blank_values=True)
+    asked = SearchRequest(pairs, lenient(request), True, _base(request))
+    return fhir_response(await reads.search(kind, asked))
 
 
 @router.get("/{kind}/{resource_id}", responses=responses(200, 404, media=FHIR_JSON))
 async def read_resource(reads: Reads, kind: str, resource_id: str, _who: Reader) -> Response:
     """The current version of a resource."""
     resource = await reads.read(kind, resource_id)
-    return fhir_response(resource, headers={"ETag": f'W/"{resource["meta"]["versionId"]}"'})
+    return fhir_response(resource, headers=_version_headers(resource))
 
 
 @router.get("/{kind}/{resource_id}/_history", responses=responses(200, 404, media=FHIR_JSON))
@@ -158,7 +88,11 @@ async def history(
     request: Request, reads: Reads, kind: str, resource_id: str, _who: Reader
 ) -> Response:
     """Every version of a resource, newest first."""
-    return fhir_response(await reads.history(kind, resource_id, _base(request)))
+    bundle = await reads.history(kind, resource_id, _base(request))
+    newest = bundle["entry"][0]["resource"]  # newest first; a history has one at least
+    return fhir_response(
+        bundle, headers={"Last-Modified": http_date(newest["meta"]["lastUpdated"])}
+    )
 
 
 @router.get(
@@ -173,4 +107,4 @@ async def version_read(
 ) -> Response:
     """One version of a resource (vread)."""
     resource = await reads.vread(kind, resource_id, version)
-    return fhir_response(resource, headers={"ETag": f'W/"{version}"'})
+    return fhir_response(resource, headers=_version_headers(resource))

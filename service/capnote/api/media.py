@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from datetime import UTC, datetime
+from email.utils import format_datetime
 from typing import Any
 
 import orjson
@@ -15,6 +17,13 @@ from capnote.jsonsafety import check_json
 FHIR_JSON = "application/fhir+json"
 JSON = "application/json"
 _ACCEPTED = (JSON, FHIR_JSON)
+
+
+def http_date(moment: datetime | str) -> str:
+    """A time as an HTTP-date (RFC 9110 5.6.7), for Last-Modified: whole seconds, GMT."""
+    if isinstance(moment, str):
+        moment = datetime.fromisoformat(moment)
+    return format_datetime(moment.astimezone(UTC), usegmt=True)
 
 
 def fhir_response(body: Any, status: int = 200, headers: dict[str, str] | None = None) -> Response:

@@ -21,7 +21,8 @@ from capnote.api.answers import (
 from capnote.api.auth import CHECK, READ, WRITE, allow
 from capnote.api.deps import Notes
 from capnote.api.docs import AMEND_BODY, CHECK_BODY, NOTE_BODY, VOID_BODY, responses
-from capnote.api.media import JSON, json_body, json_response
+from capnote.api.media import JSON, fhir_response, http_date, json_body, json_response
+from capnote.api.prefer import wanted_return
 from capnote.errors import PreconditionRequiredError
 from capnote.findings import refusal
 from capnote.notes import Principal, StoredNote
@@ -30,12 +31,31 @@ router = APIRouter(prefix="/notes", tags=["notes"])
 
 
 def _etag(stored: StoredNote) -> dict[str, str]:
-    return {"ETag": f'W/"{stored.version}"', "Location": f"/notes/{stored.key}"}
+    return {
+        "ETag": f'W/"{stored.version}"',
+        "Location": f"/notes/{stored.key}",
+        "Last-Modified": http_date(stored.recorded_at),
+    }
 
 
 def _answer(stored: StoredNote, status: int = 200) -> Response:
-    """A stored version as the answer, with its ETag and Location."""
+    """A stored version as the answer, with its ETag, Location and Last-Modified."""
     return Response(stored.json(), status, _etag(stored), media_type=JSON)
+
+
+def _written(request: Request, stored: StoredNote, status: int = 200) -> Response:
+    """The answer to a create or an amend, shaped by Prefer: return= (FHIR R4 http 3.1.0.6):
+    minimal gives no body, OperationOutcome the version's findings as one, representation
+    (and no preference, the default) the whole stored version."""
+    wanted = wanted_return(request)
+    if wanted is None:
+        return _answer(stored, status)
+    headers = {**_etag(stored), "Preference-Applied": f"return={wanted}"}
+    if wanted == "minimal":
+        return Response(None, status, headers)
+    if wanted == "OperationOutcome":
+        return fhir_response(stored.result["outcome"], status, headers)
+    return Response(stored.json(), status, headers, media_type=JSON)
 
 
 def _if_match(value: str | None) -> int:
@@ -73,7 +93,7 @@ async def submit_note(
     # only slow down, and the store's calls never block the loop (capnote.store.base).
     body = await json_body(request)
     created, stored = await notes.submit(body, who)
-    return _answer(stored, 201 if created else 200)
+    return _written(request, stored, 201 if created else 200)
 
 
 @router.post("/check", openapi_extra=CHECK_BODY, responses=responses(200, model=CheckAnswer))
@@ -175,8 +195,9 @@ async def _change(
 ) -> Response:
     """An amend or a void: read the body, call the service, answer."""
     body = await json_body(request)
-    change = notes.amend if action == "amend" else notes.void
-    return _answer(await change(note_id, body, who, _if_match(if_match)))
+    if action == "amend":
+        return _written(request, await notes.amend(note_id, body, who, _if_match(if_match)))
+    return _answer(await notes.void(note_id, body, who, _if_match(if_match)))
 
 
 @router.put(

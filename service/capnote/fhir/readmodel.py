@@ -16,12 +16,12 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from capnote.fhir.common import PROCEDURE_ROLE
 
-# The resource types the read API serves, and those its searches cover.
+# The resource types the read API serves; every one of them is searchable.
 READABLE = (
     "Procedure",
     "Observation",
@@ -30,7 +30,8 @@ READABLE = (
     "MedicationAdministration",
     "Provenance",
 )
-SEARCHABLE = ("Procedure", "ServiceRequest")
+# Each version's Provenance is read (by the id its Bundle entry gives), not searched.
+SEARCHABLE = tuple(kind for kind in READABLE if kind != "Provenance")
 _UUID = r"[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}"
 # FHIR ids are [A-Za-z0-9-.]{1,64}: 36 for the note id, one dash, 27 for the role.
 _ID = re.compile(rf"({_UUID})(?:-([a-z0-9][a-z0-9-]{{0,26}}))?")
@@ -55,14 +56,28 @@ def read_references(note_key: str, entries: tuple[tuple[str, str], ...]) -> tupl
     return tuple(f"{kind}/{resource_id(note_key, role)}" for kind, role in entries)
 
 
+# A time for the resources that carry none, so that every index row sorts (keyset paging
+# needs a total order, and the two engines order NULLs differently).
+NO_DATE = datetime(1, 1, 1, tzinfo=UTC)
+
+
 @dataclass(frozen=True, slots=True)
 class Searchable:
-    """What the searches filter on, for one searchable resource of a version."""
+    """What the searches filter on, for one resource of a version: its status, the range
+    of its search date (start and end; equal for a moment, None when it has none) and its
+    tokens as (parameter, system, code): codings of code and identifiers."""
 
     role: str
     resource_type: str
     status: str
     date: datetime | None
+    date_end: datetime | None = None
+    tokens: tuple[tuple[str, str, str], ...] = ()
+
+    @property
+    def sort_at(self) -> datetime:
+        """The time results are ordered by (the start of the date range)."""
+        return NO_DATE if self.date is None else self.date
 
 
 def searchables(bundle: dict[str, Any], roles: tuple[str, ...]) -> list[Searchable]:
@@ -72,23 +87,70 @@ def searchables(bundle: dict[str, Any], roles: tuple[str, ...]) -> list[Searchab
         resource = entry["resource"]
         kind = resource["resourceType"]
         if kind in SEARCHABLE:
-            out.append(Searchable(role, kind, resource.get("status", ""), search_date(resource)))
+            start, end = search_range(resource)
+            out.append(
+                Searchable(role, kind, resource.get("status", ""), start, end, _tokens(resource))
+            )
     return out
 
 
-def search_date(resource: dict[str, Any]) -> datetime | None:
-    """The moment the 'date' (Procedure) or 'occurrence' (ServiceRequest) search looks at."""
-    text: str | None = None
-    if resource["resourceType"] == "Procedure":
-        text = resource.get("performedPeriod", {}).get("start")
-    elif resource["resourceType"] == "ServiceRequest":
-        events = resource.get("occurrenceTiming", {}).get("event") or [None]
-        text = events[0]
-    if not text:
-        return None
+# Where each type keeps the date its date search parameter looks at, and its code.
+_DATE_ELEMENT = {
+    "Procedure": "performed",
+    "Observation": "effective",
+    "ServiceRequest": "occurrence",
+    "MedicationAdministration": "effective",
+    "MedicationRequest": "authoredOn",
+}
+_CODE_ELEMENT = {
+    "Procedure": "code",
+    "Observation": "code",
+    "ServiceRequest": "code",
+    "MedicationAdministration": "medicationCodeableConcept",
+    "MedicationRequest": "medicationCodeableConcept",
+}
+
+
+def _tokens(resource: dict[str, Any]) -> tuple[tuple[str, str, str], ...]:
+    found: list[tuple[str, str, str]] = []
+    for ident in resource.get("identifier") or ():
+        if ident.get("value"):
+            found.append(("identifier", ident.get("system", ""), ident["value"]))
+    concept = resource.get(_CODE_ELEMENT[resource["resourceType"]]) or {}
+    for coding in concept.get("coding") or ():
+        if coding.get("code"):
+            found.append(("code", coding.get("system", ""), coding["code"]))
+    return tuple(dict.fromkeys(found))  # once each: they are part of a primary key
+
+
+def search_range(resource: dict[str, Any]) -> tuple[datetime | None, datetime | None]:
+    """The range of time a resource's date search parameter looks at (FHIR R4 search,
+    2.1.1.5.9: a date is the range its precision implies; a Period from start to end)."""
+    element = _DATE_ELEMENT[resource["resourceType"]]
+    start: str | None = None
+    end: str | None = None
+    if element == "authoredOn":
+        start = end = resource.get("authoredOn")
+    elif f"{element}DateTime" in resource:
+        start = end = resource[f"{element}DateTime"]
+    elif f"{element}Period" in resource:
+        period = resource[f"{element}Period"]
+        start, end = period.get("start"), period.get("end") or period.get("start")
+    elif f"{element}Timing" in resource:
+        events = resource[f"{element}Timing"].get("event") or [None]
+        start = end = events[0]
+    if not start or not end:
+        return None, None
+    return _moment(start, last=False), _moment(end, last=True)
+
+
+def _moment(text: str, *, last: bool) -> datetime:
+    """A FHIR date or dateTime as a UTC moment: the first (or last) moment of a whole day."""
     moment = datetime.fromisoformat(text)
-    if moment.tzinfo is None:  # a whole-day item: its date, at the start of the day (UTC)
+    if moment.tzinfo is None:  # a whole-day item: that day (UTC), as the date searches read one
         moment = moment.replace(tzinfo=UTC)
+        if last and "T" not in text:
+            moment += timedelta(days=1) - timedelta(microseconds=1)
     return moment.astimezone(UTC)
 
 

@@ -32,12 +32,16 @@ from sqlalchemy import (
     Integer,
     and_,
     bindparam,
+    exists,
+    false,
     func,
     insert,
     literal,
     null,
     or_,
     select,
+    true,
+    tuple_,
     update,
 )
 from sqlalchemy.engine import Dialect
@@ -45,7 +49,15 @@ from sqlalchemy.sql import ClauseElement
 
 from capnote.derive import PriorSession
 from capnote.fhir.readmodel import Searchable
-from capnote.store.tables import ApiToken, AuditEntry, FhirIndex, NoteVersion, OutboxEntry
+from capnote.fhir.search import Criteria
+from capnote.store.tables import (
+    ApiToken,
+    AuditEntry,
+    FhirIndex,
+    FhirToken,
+    NoteVersion,
+    OutboxEntry,
+)
 from capnote.tokens import hash_token, new_secret
 
 _NOTE = NoteVersion.__table__  # type: ignore[attr-defined]
@@ -53,6 +65,19 @@ _INDEX = FhirIndex.__table__  # type: ignore[attr-defined]
 _AUDIT = AuditEntry.__table__  # type: ignore[attr-defined]
 _OUTBOX = OutboxEntry.__table__  # type: ignore[attr-defined]
 _TOKEN = ApiToken.__table__  # type: ignore[attr-defined]
+_TOKEN_ROWS = FhirToken.__table__  # type: ignore[attr-defined]
+# The columns a version's search rows are written with (both drivers).
+INDEX_COLUMNS = (
+    "note_key",
+    "role",
+    "version",
+    "resource_type",
+    "status",
+    "date",
+    "date_end",
+    "sort_at",
+)
+TOKEN_ROW_COLUMNS = ("note_key", "version", "role", "param", "system", "code")
 
 
 class DuplicateVersionError(Exception):
@@ -186,6 +211,7 @@ class Found:
     recorded_at: datetime
     bundle: bytes  # compressed, as stored
     roles: str
+    sort_at: datetime  # where the search's order put it (a next page starts after it)
 
 
 R = TypeVar("R", TokenInfo, AuditRecord, OutboxRow)
@@ -265,13 +291,10 @@ STATEMENTS: dict[str, ClauseElement] = {
     .values(latest=False),
     "add_index": insert(_INDEX)
     .inline()
-    .values(
-        {
-            name: bindparam(name)
-            for name in ("note_key", "role", "version", "resource_type", "status", "date")
-        }
-        | {"latest": True}
-    ),
+    .values({name: bindparam(name) for name in INDEX_COLUMNS} | {"latest": True}),
+    "add_search_tokens": insert(_TOKEN_ROWS)
+    .inline()
+    .values({name: bindparam(name) for name in TOKEN_ROW_COLUMNS}),
     "add_audit": insert(_AUDIT)
     .inline()
     .values(
@@ -522,30 +545,153 @@ def _listing(eye: bool, start: bool, end: bool, count: bool) -> ClauseElement:
     )
 
 
-def _search(
-    patient: bool, status: bool, after: str | None, before: str | None, count: bool
-) -> ClauseElement:
-    """Current resources of one type, by patient, status and a date range (after: "ge" or
-    "gt"; before: "le" or "lt"), with the stored version each is read from."""
+# A search's shape: one spec per clause (its kind and how many values it ORs, never the
+# values), so that one compiled statement serves every search of the same shape.
+SearchShape = tuple[tuple[object, ...], ...]
+
+
+def search_shape(found: Criteria) -> tuple[SearchShape, dict[str, Any]]:
+    """The shape of a search and the values it binds (named after their place in it)."""
+    shape: list[tuple[object, ...]] = []
+    params: dict[str, Any] = {"kind": found.kind}
+
+    def clause(spec: tuple[object, ...], values: dict[str, Any]) -> None:
+        i = len(shape)
+        shape.append(spec)
+        params.update({f"c{i}_{name}": value for name, value in values.items()})
+
+    for patients in found.patients:
+        clause(
+            ("patient", len(patients)),
+            {f"{j}s": s for j, (s, _v) in enumerate(patients)}
+            | {f"{j}v": v for j, (_s, v) in enumerate(patients)},
+        )
+    for ids in found.ids:
+        clause(
+            ("id", len(ids)),
+            {f"{j}k": k for j, (k, _r) in enumerate(ids)}
+            | {f"{j}r": r for j, (_k, r) in enumerate(ids)},
+        )
+    for param, tokens in found.tokens:
+        forms = tuple("any-system" if t.system is None else "system" for t in tokens)
+        values: dict[str, Any] = {"param": param}
+        for j, t in enumerate(tokens):
+            values[f"{j}c"] = t.code
+            if t.system is not None:
+                values[f"{j}s"] = t.system
+        clause(("token", forms), values)
+    for negated, codes in found.statuses:
+        clause(("status", negated, len(codes)), {f"{j}": c for j, c in enumerate(codes)})
+    for eyes in found.eyes:
+        clause(("eye", len(eyes)), {f"{j}": e for j, e in enumerate(eyes)})
+    for column, tests in (("date", found.dates), ("updated", found.updated)):
+        for alternatives in tests:
+            clause(
+                (column, tuple(t.prefix for t in alternatives)),
+                {f"{j}lo": t.low for j, t in enumerate(alternatives)}
+                | {f"{j}hi": t.high for j, t in enumerate(alternatives)},
+            )
+    if found.cursor is not None:
+        params["after_at"] = found.cursor.sort_at
+        params["after_key"] = found.cursor.note_key
+        params["after_role"] = found.cursor.role
+    return tuple(shape), params
+
+
+def _date_test(prefix: str, start: Any, end: Any, low: Any, high: Any) -> Any:
+    """FHIR R4 date comparison (search 2.1.1.5.5) of a resource's range [start, end] with
+    a search value's range [low, high]."""
+    inside = and_(start >= low, end <= high)
+    tests: dict[str, Any] = {
+        "eq": inside,
+        "ne": or_(start < low, end > high),
+        "gt": end > high,
+        "lt": start < low,
+        "ge": or_(end > high, inside),
+        "le": or_(start < low, inside),
+        "sa": start > high,
+        "eb": end < low,
+        "ap": and_(start <= high, end >= low),
+    }
+    return tests[prefix]
+
+
+def _condition(i: int, spec: tuple[object, ...]) -> Any:
+    """The SQL of clause i of a search shape."""
+    name = spec[0]
+
+    def p(suffix: str) -> Any:
+        return bindparam(f"c{i}_{suffix}")
+
+    if name == "patient":
+        n = int(spec[1])  # type: ignore[call-overload]
+        return or_(
+            false(),
+            *(
+                and_(_NOTE.c.patient_system == p(f"{j}s"), _NOTE.c.patient_value == p(f"{j}v"))
+                for j in range(n)
+            ),
+        )
+    if name == "id":
+        n = int(spec[1])  # type: ignore[call-overload]
+        return or_(
+            false(),
+            *(and_(_INDEX.c.note_key == p(f"{j}k"), _INDEX.c.role == p(f"{j}r")) for j in range(n)),
+        )
+    if name == "token":
+        forms: tuple[str, ...] = spec[1]  # type: ignore[assignment]
+        matches = []
+        for j, form in enumerate(forms):
+            code = _TOKEN_ROWS.c.code == p(f"{j}c")
+            matches.append(
+                and_(code, _TOKEN_ROWS.c.system == p(f"{j}s")) if form == "system" else code
+            )
+        return exists().where(
+            _TOKEN_ROWS.c.note_key == _INDEX.c.note_key,
+            _TOKEN_ROWS.c.version == _INDEX.c.version,
+            _TOKEN_ROWS.c.role == _INDEX.c.role,
+            _TOKEN_ROWS.c.param == p("param"),
+            or_(false(), *matches),
+        )
+    if name == "status":
+        negated, n = bool(spec[1]), int(spec[2])  # type: ignore[call-overload]
+        if n == 0:
+            return true() if negated else false()
+        codes = [p(f"{j}") for j in range(n)]
+        return _INDEX.c.status.not_in(codes) if negated else _INDEX.c.status.in_(codes)
+    if name == "eye":
+        n = int(spec[1])  # type: ignore[call-overload]
+        return _NOTE.c.eye.in_([p(f"{j}") for j in range(n)])
+    prefixes: tuple[str, ...] = spec[1]  # type: ignore[assignment]
+    if name == "date":
+        start, end = _INDEX.c.date, _INDEX.c.date_end
+    else:  # "updated": when the version was recorded, a moment
+        start = end = _NOTE.c.recorded_at
+    return or_(
+        false(),
+        *(
+            and_(start.is_not(None), _date_test(prefix, start, end, p(f"{j}lo"), p(f"{j}hi")))
+            for j, prefix in enumerate(prefixes)
+        ),
+    )
+
+
+def _search(shape: SearchShape, descending: bool, cursor: bool, count: bool) -> ClauseElement:
+    """Current resources of one type that meet every clause of the shape, in the order of
+    their date (then note and role, so the order is total), after the cursor's row when
+    there is one: keyset paging, so rows written meanwhile before the cursor shift nothing."""
     conditions = [_INDEX.c.resource_type == bindparam("kind"), _INDEX.c.latest.is_(True)]
-    if patient:
-        conditions += [
-            _NOTE.c.patient_system == bindparam("patient_system"),
-            _NOTE.c.patient_value == bindparam("patient_value"),
-        ]
-    if status:
-        conditions.append(_INDEX.c.status == bindparam("status"))
-    if after is not None:
-        low: Any = bindparam("after")
-        conditions.append(_INDEX.c.date >= low if after == "ge" else _INDEX.c.date > low)
-    if before is not None:
-        high: Any = bindparam("before")
-        conditions.append(_INDEX.c.date <= high if before == "le" else _INDEX.c.date < high)
+    conditions += [_condition(i, spec) for i, spec in enumerate(shape)]
     joined = _INDEX.join(
         _NOTE, and_(_NOTE.c.note_key == _INDEX.c.note_key, _NOTE.c.version == _INDEX.c.version)
     )
     if count:
         return select(func.count()).select_from(joined).where(*conditions)
+    key = tuple_(_INDEX.c.sort_at, _INDEX.c.note_key, _INDEX.c.role)
+    if cursor:
+        after = tuple_(bindparam("after_at"), bindparam("after_key"), bindparam("after_role"))
+        conditions.append(key < after if descending else key > after)
+    order = [_INDEX.c.sort_at, _INDEX.c.note_key, _INDEX.c.role]
     return (
         select(
             _INDEX.c.role,
@@ -554,11 +700,11 @@ def _search(
             _NOTE.c.recorded_at,
             _NOTE.c.bundle,
             _NOTE.c.roles,
+            _INDEX.c.sort_at,
         )
         .select_from(joined)
         .where(*conditions)
-        .order_by(_INDEX.c.date, _INDEX.c.note_key, _INDEX.c.role)
-        .offset(bindparam("offset", type_=Integer))
+        .order_by(*(c.desc() for c in order) if descending else order)
         .limit(bindparam("limit", type_=Integer))
     )
 
@@ -588,6 +734,10 @@ def compiled(dialect: Dialect) -> dict[str, Sql]:
     return {name: compile_one(statement, dialect) for name, statement in STATEMENTS.items()}
 
 
+# How many statements of varying shape a store keeps compiled (searches, listings).
+_VARIANTS_KEPT = 512
+
+
 # --- the interface ---------------------------------------------------------------------------
 
 
@@ -608,6 +758,8 @@ class Store(ABC):
         shape (the values are always bound parameters)."""
         sql = self._variants.get(key)
         if sql is None:
+            if len(self._variants) >= _VARIANTS_KEPT:  # searches vary: forget the oldest
+                self._variants.pop(next(iter(self._variants)))
             sql = self._variants[key] = compile_one(build(), self._dialect)
         return sql
 
@@ -724,44 +876,33 @@ class Store(ABC):
         return [version_row(r) for r in await self._fetch(statement, params)]
 
     async def fhir_search(
-        self,
-        kind: str,
-        *,
-        patient: tuple[str, str] | None = None,
-        status: str | None = None,
-        after: tuple[str, datetime] | None = None,
-        before: tuple[str, datetime] | None = None,
-        offset: int = 0,
-        limit: int = 50,
-    ) -> tuple[int, list[Found]]:
-        """Current resources of a searchable type by patient, status and a date range
-        (after: ("ge" | "gt", time); before: ("le" | "lt", time)), with the stored version
-        each is read from, and how many match in all.
+        self, found: Criteria, *, total: bool, limit: int
+    ) -> tuple[int | None, list[Found]]:
+        """Current resources of a type that meet the criteria (see capnote.fhir.search),
+        one page of them after the criteria's cursor, with the stored version each is read
+        from; and how many match in all, when total is asked for (None otherwise).
 
         The patient is the one of the version the resource belongs to, so a note amended
         onto another patient is found under the new one only."""
-        shape = (
-            patient is not None,
-            status is not None,
-            None if after is None else after[0],
-            None if before is None else before[0],
+        shape, values = search_shape(found)
+        params = {k: self._time(v) if isinstance(v, datetime) else v for k, v in values.items()}
+        cursor = found.cursor is not None
+        counted: int | None = None
+        if total:
+            sql = self._variant(("count", shape), lambda: _search(shape, False, False, True))
+            keyset = ("after_at", "after_key", "after_role")
+            [(n,)] = await self._fetch(sql, {k: v for k, v in params.items() if k not in keyset})
+            counted = int(n)
+        if limit == 0:
+            return counted, []
+        listed = self._variant(
+            ("search", shape, found.descending, cursor),
+            lambda: _search(shape, found.descending, cursor, False),
         )
-        params: dict[str, Any] = {"kind": kind}
-        if patient is not None:
-            params["patient_system"], params["patient_value"] = patient
-        if status is not None:
-            params["status"] = status
-        if after is not None:
-            params["after"] = self._time(after[1])
-        if before is not None:
-            params["before"] = self._time(before[1])
-        counted = self._variant(("search", *shape, True), lambda: _search(*shape, count=True))
-        listed = self._variant(("search", *shape, False), lambda: _search(*shape, count=False))
-        [(total,)] = await self._fetch(counted, params)
-        rows = await self._fetch(listed, {**params, "offset": offset, "limit": limit})
-        return int(total), [
-            Found(role, key, version, read_moment(at), bytes(bundle), roles)
-            for role, key, version, at, bundle, roles in rows
+        rows = await self._fetch(listed, {**params, "limit": limit})
+        return counted, [
+            Found(role, key, version, read_moment(at), bytes(bundle), roles, read_moment(sort))
+            for role, key, version, at, bundle, roles, sort in rows
         ]
 
     # -- tokens ------------------------------------------------------------------------------

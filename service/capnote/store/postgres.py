@@ -71,10 +71,17 @@ def _write_statement(retire: bool, forward: bool) -> str:
         if retire
         else "",
         "i AS (INSERT INTO fhir_index (note_key, role, version, resource_type, latest, status,"
-        " date) SELECT %(note_key)s, x.role, %(version)s, x.kind, true, x.status, x.date"
+        " date, date_end, sort_at) SELECT %(note_key)s, x.role, %(version)s, x.kind, true,"
+        " x.status, x.date, x.date_end, x.sort_at"
         " FROM unnest(%(index_roles)s::varchar[], %(index_kinds)s::varchar[],"
-        " %(index_statuses)s::varchar[], %(index_dates)s::timestamptz[])"
-        " AS x(role, kind, status, date))",
+        " %(index_statuses)s::varchar[], %(index_dates)s::timestamptz[],"
+        " %(index_ends)s::timestamptz[], %(index_sorts)s::timestamptz[])"
+        " AS x(role, kind, status, date, date_end, sort_at))",
+        "t AS (INSERT INTO fhir_token (note_key, version, role, param, system, code)"
+        " SELECT %(note_key)s, %(version)s, x.role, x.param, x.system, x.code"
+        " FROM unnest(%(token_roles)s::varchar[], %(token_params)s::varchar[],"
+        " %(token_systems)s::varchar[], %(token_codes)s::varchar[])"
+        " AS x(role, param, system, code))",
         "a AS (INSERT INTO audit_entry (at, actor, role, action, note_key, version, remote,"
         " outcome, token_id, detail) VALUES (%(audit_at)s, %(audit_actor)s, %(audit_role)s,"
         " %(audit_action)s, %(note_key)s, %(version)s, %(audit_remote)s, 'ok',"
@@ -197,6 +204,15 @@ def _write_params(new: NewVersion) -> dict[str, Any]:
     params["index_kinds"] = [i.resource_type for i in new.index]
     params["index_statuses"] = [i.status for i in new.index]
     params["index_dates"] = [None if i.date is None else i.date.astimezone(UTC) for i in new.index]
+    params["index_ends"] = [
+        None if i.date_end is None else i.date_end.astimezone(UTC) for i in new.index
+    ]
+    params["index_sorts"] = [i.sort_at.astimezone(UTC) for i in new.index]
+    tokens = [(i.role, *t) for i in new.index for t in i.tokens]
+    params["token_roles"] = [t[0] for t in tokens]
+    params["token_params"] = [t[1] for t in tokens]
+    params["token_systems"] = [t[2] for t in tokens]
+    params["token_codes"] = [t[3] for t in tokens]
     params["audit_at"] = audit.at.astimezone(UTC)
     params["audit_actor"] = audit.actor
     params["audit_role"] = audit.role

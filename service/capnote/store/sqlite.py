@@ -245,6 +245,17 @@ class SqliteStore(Store):
         if row.version > 1:
             steps.append((sql["retire"], {"key": row.note_key}))
         if new.index:
+            # A note's resources share a handful of times: each is formatted once.
+            times: dict[datetime, str] = {}
+
+            def text(moment: datetime | None) -> str | None:
+                if moment is None:
+                    return None
+                done = times.get(moment)
+                if done is None:
+                    done = times[moment] = _moment(moment)
+                return done
+
             rows = [
                 {
                     "note_key": row.note_key,
@@ -252,11 +263,27 @@ class SqliteStore(Store):
                     "version": row.version,
                     "resource_type": i.resource_type,
                     "status": i.status,
-                    "date": None if i.date is None else _moment(i.date),
+                    "date": text(i.date),
+                    "date_end": text(i.date_end),
+                    "sort_at": text(i.sort_at),
                 }
                 for i in new.index
             ]
             steps.append((sql["add_index"], rows))
+            tokens = [
+                {
+                    "note_key": row.note_key,
+                    "version": row.version,
+                    "role": i.role,
+                    "param": param,
+                    "system": system,
+                    "code": code,
+                }
+                for i in new.index
+                for param, system, code in i.tokens
+            ]
+            if tokens:
+                steps.append((sql["add_search_tokens"], tokens))
         steps.append(
             (sql["add_audit"], audit_params(new.audit, row.note_key, row.version, _moment))
         )

@@ -59,9 +59,9 @@ class NoteVersion(SQLModel, table=True):
 
 
 class FhirIndex(SQLModel, table=True):
-    """What the FHIR searches filter on, for the searchable resources of each note version
-    (Procedure and ServiceRequest); the resources themselves are read from the version's
-    Bundle. Rows of one note sit together under the primary key."""
+    """What the FHIR searches filter on, for the resources of each note version; the
+    resources themselves are read from the version's Bundle. Rows of one note sit together
+    under the primary key."""
 
     __tablename__ = "fhir_index"
     __table_args__ = (
@@ -83,7 +83,30 @@ class FhirIndex(SQLModel, table=True):
     resource_type: str = Field(max_length=40)
     latest: bool = Field(default=True)
     status: str = Field(max_length=20)
+    # The range of the resource's search date (equal ends for a moment; None for none) ...
     date: datetime | None = None
+    date_end: datetime | None = None
+    # ... and its start, or the first moment of year 1 when it has none: every row sorts.
+    sort_at: datetime
+
+
+class FhirToken(SQLModel, table=True):
+    """The token values of each indexed resource (identifiers, codings of its code): a
+    resource has several, so they are rows of their own beside its fhir_index row.
+
+    Keyed by value first and then by resource, so that one tree answers both lookups a
+    search makes (which resources have this value; has this resource this value) and
+    each row is written to one tree only (a second index cost more than the row)."""
+
+    __tablename__ = "fhir_token"
+    __table_args__ = ({"sqlite_with_rowid": False},)
+
+    param: str = Field(max_length=20, primary_key=True)
+    code: str = Field(max_length=255, primary_key=True)
+    note_key: str = Field(max_length=36, primary_key=True)
+    version: int = Field(primary_key=True)
+    role: str = Field(max_length=40, primary_key=True)
+    system: str = Field(max_length=255, primary_key=True)
 
 
 class ApiToken(SQLModel, table=True):
