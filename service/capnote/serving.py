@@ -16,11 +16,14 @@ import multiprocessing
 import signal
 import socket
 import threading
+from collections.abc import Sequence
 from types import FrameType
 
 import uvicorn
 from uvicorn.config import STARTUP_FAILURE
 from uvicorn.supervisors import Multiprocess
+
+from capnote.connection_limits import BoundedHttpToolsProtocol, ConnectionLimits
 
 log = logging.getLogger("uvicorn.error")
 
@@ -35,6 +38,9 @@ class TcpConfig(uvicorn.Config):
     TCP_NODELAY, and each keep-alive answer waits about 40 ms for the client's delayed ACK
     (measured: 18 requests/s on one connection instead of 40-74).
     """
+
+    # Read by capnote.connection_limits.BoundedHttpToolsProtocol in every connection.
+    connection_limits = ConnectionLimits()
 
     def bind_socket(self) -> socket.socket:
         """The socket uvicorn binds, re-wrapped with its real protocol number."""
@@ -115,8 +121,16 @@ class Workers:
         return self.config.host, self.config.port
 
 
-def run(factory: str, host: str, port: int, workers: int) -> None:
-    """Serve the app factory until terminated."""
+def run(
+    factory: str,
+    host: str,
+    port: int,
+    workers: int,
+    limits: ConnectionLimits | None = None,
+    idle_timeout_s: float = 5.0,
+    trusted_proxies: Sequence[str] = ("127.0.0.1",),
+) -> None:
+    """Serve the app factory until terminated, each connection held to limits."""
     config = TcpConfig(
         factory,
         factory=True,
@@ -125,11 +139,19 @@ def run(factory: str, host: str, port: int, workers: int) -> None:
         workers=workers,
         log_level="info",
         access_log=False,
-        # Both are dependencies: httptools parses HTTP in C, uvloop runs the loop in C (where
-        # it is available); "auto" would quietly fall back to h11 and asyncio without them.
-        http="httptools",
+        # httptools parses HTTP in C (the bounded protocol is uvicorn's with the head's
+        # size, field count and time limited); uvloop runs the loop in C where it is
+        # available. "auto" would quietly fall back to h11 and asyncio without them.
+        http=BoundedHttpToolsProtocol,
         loop="uvloop" if _UVLOOP else "asyncio",
+        # A keep-alive connection with no new request is closed after this (uvicorn's
+        # timer, armed after each answer; the head timer covers a fresh connection).
+        timeout_keep_alive=idle_timeout_s,  # type: ignore[arg-type]
+        # X-Forwarded-For and -Proto are believed only from these peers (the TLS proxy).
+        proxy_headers=True,
+        forwarded_allow_ips=list(trusted_proxies),
     )
+    config.connection_limits = limits or ConnectionLimits()
     if config.workers == 1:
         uvicorn.Server(config).run()
     elif hasattr(socket, "SO_REUSEPORT"):

@@ -176,6 +176,7 @@ def serve(
 ) -> None:
     """Run the REST service (SQLite file capnote.sqlite3 here unless CAPNOTE_DATABASE_URL)."""
     from capnote import serving
+    from capnote.connection_limits import ConnectionLimits
 
     settings = Settings()
     # Migrated once, here, so that workers never race to migrate.
@@ -186,7 +187,21 @@ def serve(
     # The service has no /docs page (its script would come from a CDN, which the service's
     # CSP and many hospital networks refuse); the OpenAPI document is served as JSON.
     typer.echo(f"capnote serving on http://{host}:{port} (OpenAPI document at /openapi.json)")
-    serving.run("capnote.app:app_from_environment", host, port, workers)
+    limits = ConnectionLimits(
+        max_head_bytes=settings.max_head_bytes,
+        max_headers=settings.max_headers,
+        head_timeout_s=settings.head_timeout_s,
+        max_connections=settings.max_connections,
+    )
+    serving.run(
+        "capnote.app:app_from_environment",
+        host,
+        port,
+        workers,
+        limits,
+        idle_timeout_s=settings.idle_timeout_s,
+        trusted_proxies=settings.trusted_proxies,
+    )
 
 
 def _load_demo(settings: Settings) -> None:

@@ -1,0 +1,200 @@
+"""Connection and header limits on a real `capnote serve` process over 127.0.0.1 (issue 16,
+section 1): the head's size and field count (431, and the server's memory does not follow
+a header), the time for a head to arrive, the idle keep-alive timeout, and the bound on
+connections per process. RFC 9110 section 15.5.9 (408), RFC 6585 section 5 (431) and
+RFC 9110 section 15.6.4 (503 with Retry-After) name the answers."""
+
+from __future__ import annotations
+
+import re
+import socket
+import time
+from collections.abc import Iterator
+from concurrent.futures import ThreadPoolExecutor
+from pathlib import Path
+
+import httpx
+import orjson
+import pytest
+
+from tests.test_http_server import server
+
+LIMITS = {
+    "CAPNOTE_MAX_HEAD_BYTES": "16384",
+    "CAPNOTE_MAX_HEADERS": "40",
+    "CAPNOTE_HEAD_TIMEOUT_S": "1.5",
+    "CAPNOTE_IDLE_TIMEOUT_S": "1",
+    "CAPNOTE_MAX_CONNECTIONS": "30",
+}
+
+
+@pytest.fixture(scope="module")
+def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[str, int, int]]:
+    """One server for the module: (host, port, pid)."""
+    work = tmp_path_factory.mktemp("limits")
+    url = f"sqlite:///{work / 'limits.sqlite3'}"
+    with server(url, work, env=LIMITS) as base:
+        port = int(base.rsplit(":", 1)[1])
+        log = (work / f"server-{port}.log").read_text()
+        pid = int(re.search(r"Started server process \[(\d+)\]", log).group(1))  # type: ignore[union-attr]
+        yield "127.0.0.1", port, pid
+
+
+def connect(served: tuple[str, int, int]) -> socket.socket:
+    sock = socket.create_connection(served[:2], timeout=10)
+    return sock
+
+
+def answer(sock: socket.socket) -> tuple[int, dict[str, str], bytes]:
+    """Read one whole answer (the server closes the connection after each refusal)."""
+    data = b""
+    while b"\r\n\r\n" not in data:
+        chunk = sock.recv(65536)
+        if not chunk:
+            break
+        data += chunk
+    head, _, body = data.partition(b"\r\n\r\n")
+    lines = head.decode("latin-1").split("\r\n")
+    status = int(lines[0].split()[1])
+    headers = dict(line.lower().split(": ", 1) for line in lines[1:])
+    length = int(headers.get("content-length", "0"))
+    while len(body) < length:
+        chunk = sock.recv(65536)
+        if not chunk:
+            break
+        body += chunk
+    return status, headers, body
+
+
+def closed(sock: socket.socket, within: float) -> float:
+    """Seconds until the server closed the connection (fails if it does not, in time)."""
+    start = time.monotonic()
+    sock.settimeout(within)
+    while True:
+        try:
+            if not sock.recv(65536):
+                return time.monotonic() - start
+        except ConnectionResetError:
+            return time.monotonic() - start
+
+
+def rss_kib(pid: int) -> int:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1])
+    raise AssertionError("no VmRSS")
+
+
+def test_a_head_under_the_limits_is_served(served: tuple[str, int, int]) -> None:
+    host, port, _ = served
+    headers = {f"x-field-{i}": "v" * 200 for i in range(30)}  # 30 fields, about 7 KiB
+    got = httpx.get(f"http://{host}:{port}/healthz", headers=headers)
+    assert got.status_code == 200
+
+
+def test_an_oversized_header_is_refused_431_and_memory_does_not_follow(
+    served: tuple[str, int, int],
+) -> None:
+    """Six connections each try to send a 50 MiB header (the tester's attack): each is
+    answered 431 and closed after the first reads, and the server's resident size grows by
+    far less than one header."""
+    before = rss_kib(served[2])
+
+    def attack(_: int) -> tuple[int, int]:
+        with connect(served) as sock:
+            return _attack(sock)
+
+    def _attack(sock: socket.socket) -> tuple[int, int]:
+        sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: x\r\nX-Big: ")
+        sent = 0
+        chunk = b"a" * 65536
+        try:
+            while sent < 50 * 1024 * 1024:
+                sock.sendall(chunk)
+                sent += len(chunk)
+        except (BrokenPipeError, ConnectionResetError):
+            pass
+        try:
+            status, headers, body = answer(sock)
+        except (ConnectionResetError, IndexError):
+            status = 0  # the connection was reset before the answer could be read
+        else:
+            assert headers["connection"] == "close"
+            assert headers["x-content-type-options"] == "nosniff"
+            issue = orjson.loads(body)["issue"][0]
+            assert issue["details"]["coding"][0]["code"] == "request-head-too-large"
+            assert "16384 bytes" in issue["diagnostics"]
+        return status, sent
+
+    with ThreadPoolExecutor(6) as pool:
+        results = list(pool.map(attack, range(6)))
+    for status, sent in results:
+        assert status in (431, 0)
+        assert sent < 50 * 1024 * 1024  # the server stopped reading long before the end
+    assert any(status == 431 for status, _ in results)
+    grown = rss_kib(served[2]) - before
+    assert grown < 20 * 1024, f"the server grew by {grown} KiB"
+
+
+def test_too_many_header_fields_are_refused_431(served: tuple[str, int, int]) -> None:
+    with connect(served) as sock:
+        fields = b"".join(b"X-%d: 1\r\n" % i for i in range(41))
+        sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: x\r\n" + fields + b"\r\n")
+        status, _headers, body = answer(sock)
+    assert status == 431
+    assert "more than 40 header fields" in orjson.loads(body)["issue"][0]["diagnostics"]
+
+
+def test_silent_trickling_and_idle_connections_are_closed(served: tuple[str, int, int]) -> None:
+    """A connection that sends nothing, one that sends its head a byte at a time, and one
+    left idle after an answer: all closed by the server, each at its limit."""
+
+    def silent() -> float:
+        with connect(served) as sock:
+            return closed(sock, within=10)
+
+    def trickle() -> tuple[int, float]:
+        with connect(served) as sock:
+            start = time.monotonic()
+            try:
+                for byte in b"GET /healthz HTTP/1.1\r\nHost: x\r\n":
+                    sock.sendall(bytes([byte]))
+                    time.sleep(0.25)
+            except (BrokenPipeError, ConnectionResetError):
+                pass
+            status, _headers, _body = answer(sock)
+            return status, time.monotonic() - start
+
+    def idle() -> float:
+        with connect(served) as sock:
+            sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: x\r\n\r\n")
+            assert answer(sock)[0] == 200
+            return closed(sock, within=10)
+
+    with ThreadPoolExecutor(3) as pool:
+        quiet, slow, after = pool.submit(silent), pool.submit(trickle), pool.submit(idle)
+        assert 1.2 < quiet.result() < 4  # the head timer: 1.5 s
+        status, took = slow.result()
+        assert status == 408
+        assert took < 4
+        assert 0.7 < after.result() < 4  # the idle timer: 1 s
+
+
+def test_connections_beyond_the_bound_are_answered_503_with_retry_after(
+    served: tuple[str, int, int],
+) -> None:
+    held = [connect(served) for _ in range(30)]
+    try:
+        time.sleep(0.2)
+        with connect(served) as extra:
+            status, headers, body = answer(extra)
+        assert status == 503
+        assert headers["retry-after"] == "1"
+        assert orjson.loads(body)["issue"][0]["details"]["coding"][0]["code"] == (
+            "too-many-connections"
+        )
+    finally:
+        for sock in held:
+            sock.close()
+    time.sleep(0.3)  # the server has seen the closes: it serves again
+    assert httpx.get(f"http://{served[0]}:{served[1]}/healthz").status_code == 200
