@@ -108,8 +108,6 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
         if self._in_head:
             # Counted before the parser sees it: the parser keeps an unfinished header whole.
             self._head_bytes += len(data)
-            if self._head_timer is None:
-                self._arm_head_timer()
         try:
             self.parser.feed_data(data)
         except httptools.HttpParserCallbackError as exc:
@@ -129,8 +127,13 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
             else:
                 self._unsupported_upgrade_warning()
             return
-        if self._in_head and self._head_bytes > self.limits.max_head_bytes:
-            self._refuse(431, self._too_large(), "request-head-too-large")
+        if self._in_head and self._head_bytes:
+            if self._head_bytes > self.limits.max_head_bytes:
+                self._refuse(431, self._too_large(), "request-head-too-large")
+            elif self._head_timer is None:
+                # A head left unfinished by this read (most arrive whole in one): its time
+                # runs from here.
+                self._arm_head_timer()
 
     def _too_large(self) -> str:
         return (
@@ -150,7 +153,7 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
 
     def on_url(self, url: bytes) -> None:
         self._count(len(url))
-        super().on_url(url)
+        self.url += url
 
     def on_header(self, name: bytes, value: bytes) -> None:
         self._fields += 1
@@ -160,7 +163,12 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
                 f"allowed: at most {self.limits.max_headers}"
             )
         self._count(len(name) + len(value) + 4)
-        super().on_header(name, value)
+        # uvicorn's own on_header, written out: this runs for every field of every request.
+        name = name.lower()
+        value = value.rstrip(b" \t")  # RFC 9110 section 5.5: no trailing whitespace
+        if name == b"expect" and value.lower() == b"100-continue":
+            self.expect_100_continue = True
+        self.headers.append((name, value))
 
     def _count(self, size: int) -> None:
         self._field_bytes += size

@@ -10,6 +10,7 @@ while the others idle (measured: one worker at 83 % of a core, the other at 20 %
 
 from __future__ import annotations
 
+import asyncio
 import importlib.util
 import logging
 import multiprocessing
@@ -128,9 +129,11 @@ def run(
     workers: int,
     limits: ConnectionLimits | None = None,
     idle_timeout_s: float = 5.0,
-    trusted_proxies: Sequence[str] = ("127.0.0.1",),
+    trusted_proxies: Sequence[str] = ("127.0.0.1", "::1"),
+    protocol: type[asyncio.Protocol] | str = BoundedHttpToolsProtocol,
 ) -> None:
-    """Serve the app factory until terminated, each connection held to limits."""
+    """Serve the app factory until terminated, each connection held to limits (protocol:
+    uvicorn's own "httptools" only for bench/protocol_cost.py's comparison)."""
     config = TcpConfig(
         factory,
         factory=True,
@@ -142,7 +145,7 @@ def run(
         # httptools parses HTTP in C (the bounded protocol is uvicorn's with the head's
         # size, field count and time limited); uvloop runs the loop in C where it is
         # available. "auto" would quietly fall back to h11 and asyncio without them.
-        http=BoundedHttpToolsProtocol,
+        http=protocol,
         loop="uvloop" if _UVLOOP else "asyncio",
         # A keep-alive connection with no new request is closed after this (uvicorn's
         # timer, armed after each answer; the head timer covers a fresh connection).
