@@ -136,6 +136,23 @@ def test_an_oversized_header_is_refused_431_and_memory_does_not_follow(
     assert grown < 20 * 1024, f"the server grew by {grown} KiB"
 
 
+def test_a_head_in_one_read_is_measured_and_a_body_beside_it_is_not(
+    served: tuple[str, int, int],
+) -> None:
+    """A 20 KiB header sent in one write is over the 16 KiB limit; a small head followed
+    in the same write by a 200 KiB body is not (the body is not part of the head)."""
+    with connect(served) as sock:
+        sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: x\r\nX-Big: " + b"a" * 20_000 + b"\r\n\r\n")
+        assert answer(sock)[0] == 431
+    body = b"{" + b" " * 200_000 + b"}"
+    with connect(served) as sock:
+        sock.sendall(
+            b"POST /notes/check HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+            b"Content-Length: %d\r\n\r\n" % len(body) + body
+        )
+        assert answer(sock)[0] == 401  # past the connection's limits: the token is missing
+
+
 def test_too_many_header_fields_are_refused_431(served: tuple[str, int, int]) -> None:
     with connect(served) as sock:
         fields = b"".join(b"X-%d: 1\r\n" % i for i in range(41))

@@ -81,8 +81,6 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
         self.limits: ConnectionLimits = getattr(config, "connection_limits", ConnectionLimits())
         self._in_head = True
         self._head_bytes = 0
-        self._fields = 0
-        self._field_bytes = 0
         self._head_timer: asyncio.TimerHandle | None = None
 
     def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
@@ -145,24 +143,14 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
         """uvicorn's 400 for a head the parser refuses, as an OperationOutcome."""
         self._refuse(400, f"{msg} (the request line or a header is not HTTP/1.1)", "bad-http")
 
-    # Parser callbacks: a head that completes within one read is counted here.
-    def on_message_begin(self) -> None:
-        super().on_message_begin()
-        self._fields = 0
-        self._field_bytes = 0
-
-    def on_url(self, url: bytes) -> None:
-        self._count(len(url))
-        self.url += url
-
+    # Parser callbacks: a few comparisons per request; the head's exact size is summed only
+    # when the read that finished it was large.
     def on_header(self, name: bytes, value: bytes) -> None:
-        self._fields += 1
-        if self._fields > self.limits.max_headers:
+        if len(self.headers) >= self.limits.max_headers:
             raise _HeadLimitError(
                 f"the request has more than {self.limits.max_headers} header fields; "
                 f"allowed: at most {self.limits.max_headers}"
             )
-        self._count(len(name) + len(value) + 4)
         # uvicorn's own on_header, written out: this runs for every field of every request.
         name = name.lower()
         value = value.rstrip(b" \t")  # RFC 9110 section 5.5: no trailing whitespace
@@ -170,15 +158,20 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
             self.expect_100_continue = True
         self.headers.append((name, value))
 
-    def _count(self, size: int) -> None:
-        self._field_bytes += size
-        if self._field_bytes > self.limits.max_head_bytes:
-            raise _HeadLimitError(self._too_large())
-
     def on_headers_complete(self) -> None:
         self._in_head = False
         self._cancel_head_timer()
+        # _head_bytes counts whole reads, so it may hold some of the body as well: over the
+        # limit, the head itself is measured.
+        if self._head_bytes > self.limits.max_head_bytes and self._head_size() > (
+            self.limits.max_head_bytes
+        ):
+            raise _HeadLimitError(self._too_large())
         super().on_headers_complete()
+
+    def _head_size(self) -> int:
+        """The request line and header fields as sent, give or take their whitespace."""
+        return len(self.url) + 16 + sum(len(n) + len(v) + 4 for n, v in self.headers)
 
     def on_message_complete(self) -> None:
         super().on_message_complete()

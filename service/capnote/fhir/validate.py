@@ -16,7 +16,7 @@ from fhir.resources.R4B.resource import Resource
 from pydantic import ValidationError
 
 from capnote.fhir.bindings import binding_problems
-from capnote.findings import Finding, Severity, show_value
+from capnote.findings import Finding, Severity, bounded, show_value
 from capnote.rules.contract import finding_from_error
 
 SAME_IN_R4 = frozenset(
@@ -166,4 +166,4 @@ def validate_resource(data: object) -> list[Finding]:
                 issue_type="informational",
             )
         )
-    return found
+    return bounded(found)
