@@ -13,6 +13,7 @@ from pydantic import Field, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from capnote.fhir.bundle import OutputCheck
+from capnote.logs import LogFormat, LogLevel
 from capnote.policy import Policy, load_policy
 
 if TYPE_CHECKING:
@@ -42,6 +43,9 @@ class Settings(BaseSettings):
     # Peers whose X-Forwarded-For and X-Forwarded-Proto are believed (addresses or networks):
     # the TLS proxy in front. Anyone else's forwarded headers are ignored.
     trusted_proxies: list[str] = ["127.0.0.1", "::1"]
+    # Log lines: how much, and as text or JSON lines (also --log-level, --log-format).
+    log_level: LogLevel = "info"
+    log_format: LogFormat = "text"
     # `capnote serve` migrates once before starting workers and turns this off for them.
     migrate_on_start: bool = True
     # Forwarding to the hospital's FHIR server (off while forward_url is unset).

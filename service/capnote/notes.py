@@ -21,7 +21,13 @@ import orjson
 
 from capnote.assess import Assessment, Assessor
 from capnote.derive import PriorSession, recounted, total_energy_mj
-from capnote.errors import ConflictError, InputError, NotFoundError, PreconditionError
+from capnote.errors import (
+    ConflictError,
+    InputError,
+    NotFoundError,
+    PreconditionError,
+    UnavailableError,
+)
 from capnote.fhir.common import Emitted, Version, stable_uuid
 from capnote.fhir.readmodel import read_references, searchables
 from capnote.findings import Finding, has_errors
@@ -466,8 +472,11 @@ class NoteService:
         }
 
     async def ready(self) -> None:
-        """UnavailableError when the store does not answer."""
+        """UnavailableError when the store does not answer, or answers but takes no writes
+        (a read-only file or folder, a PostgreSQL standby): notes could not be stored."""
         await self.store.ping()
+        if not await self.store.writable():
+            raise UnavailableError("the database accepts no writes (read-only)")
 
 
 def receiver_answer(entry_error: str | None) -> object:

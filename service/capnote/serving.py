@@ -25,6 +25,7 @@ from uvicorn.config import STARTUP_FAILURE
 from uvicorn.supervisors import Multiprocess
 
 from capnote.connection_limits import BoundedHttpToolsProtocol, ConnectionLimits
+from capnote.logs import LogFormat, LogLevel, logging_config
 
 log = logging.getLogger("uvicorn.error")
 
@@ -131,6 +132,8 @@ def run(
     idle_timeout_s: float = 5.0,
     trusted_proxies: Sequence[str] = ("127.0.0.1", "::1"),
     protocol: type[asyncio.Protocol] | str = BoundedHttpToolsProtocol,
+    log_level: LogLevel = "info",
+    log_format: LogFormat = "text",
 ) -> None:
     """Serve the app factory until terminated, each connection held to limits (protocol:
     uvicorn's own "httptools" only for bench/protocol_cost.py's comparison)."""
@@ -140,7 +143,8 @@ def run(
         host=host,
         port=port,
         workers=workers,
-        log_level="info",
+        log_level=log_level,
+        log_config=logging_config(log_level, log_format),
         access_log=False,
         # httptools parses HTTP in C (the bounded protocol is uvicorn's with the head's
         # size, field count and time limited); uvloop runs the loop in C where it is

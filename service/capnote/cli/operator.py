@@ -201,6 +201,8 @@ def serve(
         limits,
         idle_timeout_s=settings.idle_timeout_s,
         trusted_proxies=settings.trusted_proxies,
+        log_level=settings.log_level,
+        log_format=settings.log_format,
     )
 
 
