@@ -50,8 +50,11 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as tmp:
         work = Path(tmp)
         env = {"CAPNOTE_DATABASE_URL": f"sqlite:///{work / 'ceiling.sqlite3'}"}
+        sides = [("uvicorn httptools", ["--unbounded"]), ("bounded", [])]
         for round_no in range(args.rounds):
-            for name, extra in (("uvicorn httptools", ["--unbounded"]), ("bounded", [])):
+            # Each side goes first in every other round: a machine slowing within a round
+            # then weighs on both alike.
+            for name, extra in sides if round_no % 2 == 0 else sides[::-1]:
                 argv = [PYTHON, str(ROOT / "bench" / "serve_app.py"), "bench.ceiling_app:create"]
                 with served([*argv, *extra], env, work, 1, name.split()[0]) as port:
                     for conns in CONNECTIONS:
