@@ -17,30 +17,33 @@ import httpx
 import orjson
 import pytest
 
-from tests.test_http_server import server
+from tests.test_http_server import run_cli, server
 
+Served = tuple[str, int, int, str]
 LIMITS = {
     "CAPNOTE_MAX_HEAD_BYTES": "16384",
     "CAPNOTE_MAX_HEADERS": "40",
     "CAPNOTE_HEAD_TIMEOUT_S": "1.5",
+    "CAPNOTE_BODY_TIMEOUT_S": "2",
     "CAPNOTE_IDLE_TIMEOUT_S": "1",
     "CAPNOTE_MAX_CONNECTIONS": "30",
 }
 
 
 @pytest.fixture(scope="module")
-def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[str, int, int]]:
-    """One server for the module: (host, port, pid)."""
+def served(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Served]:
+    """One server for the module: (host, port, pid, an analyst's token)."""
     work = tmp_path_factory.mktemp("limits")
     url = f"sqlite:///{work / 'limits.sqlite3'}"
+    token = run_cli(url, "token", "new", "--role", "analyst", "--label", "limits").split()[-1]
     with server(url, work, env=LIMITS) as base:
         port = int(base.rsplit(":", 1)[1])
         log = (work / f"server-{port}.log").read_text()
         pid = int(re.search(r"Started server process \[(\d+)\]", log).group(1))  # type: ignore[union-attr]
-        yield "127.0.0.1", port, pid
+        yield "127.0.0.1", port, pid, token
 
 
-def connect(served: tuple[str, int, int]) -> socket.socket:
+def connect(served: Served) -> socket.socket:
     sock = socket.create_connection(served[:2], timeout=10)
     return sock
 
@@ -85,15 +88,15 @@ def rss_kib(pid: int) -> int:
     raise AssertionError("no VmRSS")
 
 
-def test_a_head_under_the_limits_is_served(served: tuple[str, int, int]) -> None:
-    host, port, _ = served
+def test_a_head_under_the_limits_is_served(served: Served) -> None:
+    host, port, *_ = served
     headers = {f"x-field-{i}": "v" * 200 for i in range(30)}  # 30 fields, about 7 KiB
     got = httpx.get(f"http://{host}:{port}/healthz", headers=headers)
     assert got.status_code == 200
 
 
 def test_an_oversized_header_is_refused_431_and_memory_does_not_follow(
-    served: tuple[str, int, int],
+    served: Served,
 ) -> None:
     """Six connections each try to send a 50 MiB header (the tester's attack): each is
     answered 431 and closed after the first reads, and the server's resident size grows by
@@ -137,7 +140,7 @@ def test_an_oversized_header_is_refused_431_and_memory_does_not_follow(
 
 
 def test_a_head_in_one_read_is_measured_and_a_body_beside_it_is_not(
-    served: tuple[str, int, int],
+    served: Served,
 ) -> None:
     """A 20 KiB header sent in one write is over the 16 KiB limit; a small head followed
     in the same write by a 200 KiB body is not (the body is not part of the head)."""
@@ -153,7 +156,7 @@ def test_a_head_in_one_read_is_measured_and_a_body_beside_it_is_not(
         assert answer(sock)[0] == 401  # past the connection's limits: the token is missing
 
 
-def test_too_many_header_fields_are_refused_431(served: tuple[str, int, int]) -> None:
+def test_too_many_header_fields_are_refused_431(served: Served) -> None:
     with connect(served) as sock:
         fields = b"".join(b"X-%d: 1\r\n" % i for i in range(41))
         sock.sendall(b"GET /healthz HTTP/1.1\r\nHost: x\r\n" + fields + b"\r\n")
@@ -162,7 +165,7 @@ def test_too_many_header_fields_are_refused_431(served: tuple[str, int, int]) ->
     assert "more than 40 header fields" in orjson.loads(body)["issue"][0]["diagnostics"]
 
 
-def test_silent_trickling_and_idle_connections_are_closed(served: tuple[str, int, int]) -> None:
+def test_silent_trickling_and_idle_connections_are_closed(served: Served) -> None:
     """A connection that sends nothing, one that sends its head a byte at a time, and one
     left idle after an answer: all closed by the server, each at its limit."""
 
@@ -197,8 +200,53 @@ def test_silent_trickling_and_idle_connections_are_closed(served: tuple[str, int
         assert 0.7 < after.result() < 4  # the idle timer: 1 s
 
 
+def test_a_trickled_body_is_answered_408_and_a_slow_whole_one_is_served(
+    served: Served,
+) -> None:
+    """A body sent a byte every 0.25 s is cut at the body timer (2 s here); a body that
+    comes in two parts within it is read whole (200: checked, an empty object with its
+    findings)."""
+    auth = b"Authorization: Bearer %s\r\n" % served[3].encode()
+
+    def trickle() -> tuple[int, float]:
+        with connect(served) as sock:
+            start = time.monotonic()
+            sock.sendall(
+                b"POST /notes/check HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+                + auth
+                + b"Content-Length: 100\r\n\r\n{"
+            )
+            try:
+                for _ in range(40):
+                    sock.sendall(b" ")
+                    time.sleep(0.25)
+            except (BrokenPipeError, ConnectionResetError):
+                pass
+            status, _headers, body = answer(sock)
+            assert b"request-body-timeout" in body
+            return status, time.monotonic() - start
+
+    def in_two_parts() -> int:
+        with connect(served) as sock:
+            sock.sendall(
+                b"POST /notes/check HTTP/1.1\r\nHost: x\r\nContent-Type: application/json\r\n"
+                + auth
+                + b"Content-Length: 2\r\n\r\n{"
+            )
+            time.sleep(0.5)
+            sock.sendall(b"}")
+            return answer(sock)[0]
+
+    with ThreadPoolExecutor(2) as pool:
+        slow, parts = pool.submit(trickle), pool.submit(in_two_parts)
+        status, took = slow.result()
+        assert status == 408
+        assert 1.7 < took < 5
+        assert parts.result() == 200
+
+
 def test_connections_beyond_the_bound_are_answered_503_with_retry_after(
-    served: tuple[str, int, int],
+    served: Served,
 ) -> None:
     held = [connect(served) for _ in range(30)]
     try:

@@ -33,11 +33,12 @@ class Settings(BaseSettings):
     max_body_bytes: int = 1_048_576
     cors_origins: list[str] = []
     # Each connection, per process (capnote.connection_limits): the request line and headers
-    # together, their number, the time for a head to arrive, how long an idle keep-alive
-    # connection stays, and how many connections one process holds.
+    # together, their number, the time for a head and for a body to arrive, how long an idle
+    # keep-alive connection stays, and how many connections one process holds.
     max_head_bytes: Annotated[int, Field(ge=1_024, le=1_048_576)] = 32_768
     max_headers: Annotated[int, Field(ge=8, le=1_000)] = 100
     head_timeout_s: Annotated[float, Field(gt=0, le=300)] = 10.0
+    body_timeout_s: Annotated[float, Field(gt=0, le=3_600)] = 30.0
     idle_timeout_s: Annotated[float, Field(gt=0, le=3_600)] = 5.0
     max_connections: Annotated[int, Field(ge=1, le=100_000)] = 1_000
     # Peers whose X-Forwarded-For and X-Forwarded-Proto are believed (addresses or networks):

@@ -13,6 +13,9 @@ is a few additions per read and per header) and adds:
 - a time limit for the head, armed when a connection opens and when a new request's first
   bytes arrive: a connection that sends nothing, or trickles its head, is closed (408 when
   part of a head came);
+- a time limit for a body, armed when a head has arrived and its body has not (most come
+  whole in the head's read): a client that trickles a body is answered 408 and closed;
+  the time does not run out while capnote itself holds the body back (flow control);
 - connections per process: over the limit, a new one is answered 503 with Retry-After and
   closed before anything is read.
 
@@ -45,6 +48,7 @@ class ConnectionLimits:
     max_head_bytes: int = 32_768
     max_headers: int = 100
     head_timeout_s: float = 10.0
+    body_timeout_s: float = 30.0
     max_connections: int = 1_000
 
 
@@ -82,6 +86,7 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
         self._in_head = True
         self._head_bytes = 0
         self._head_timer: asyncio.TimerHandle | None = None
+        self._body_timer: asyncio.TimerHandle | None = None
 
     def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
         super().connection_made(transport)
@@ -99,6 +104,7 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
 
     def connection_lost(self, exc: Exception | None) -> None:
         self._cancel_head_timer()
+        self._cancel_body_timer()
         super().connection_lost(exc)
 
     def data_received(self, data: bytes) -> None:
@@ -125,7 +131,13 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
             else:
                 self._unsupported_upgrade_warning()
             return
-        if self._in_head and self._head_bytes:
+        if not self._in_head:
+            if self._body_timer is None and self.cycle is not None and self.cycle.more_body:
+                # A body left unfinished by the head's read: its time runs from here.
+                self._body_timer = self.loop.call_later(
+                    self.limits.body_timeout_s, self._body_timed_out
+                )
+        elif self._head_bytes:
             if self._head_bytes > self.limits.max_head_bytes:
                 self._refuse(431, self._too_large(), "request-head-too-large")
             elif self._head_timer is None:
@@ -174,6 +186,7 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
         return len(self.url) + 16 + sum(len(n) + len(v) + 4 for n, v in self.headers)
 
     def on_message_complete(self) -> None:
+        self._cancel_body_timer()
         super().on_message_complete()
         # What follows on this connection is the next request's head.
         self._in_head = True
@@ -206,6 +219,31 @@ class BoundedHttpToolsProtocol(HttpToolsProtocol):
             f"the request's head did not arrive within {self.limits.head_timeout_s:g} s; "
             f"allowed: at most {self.limits.head_timeout_s:g} s",
             "request-head-timeout",
+        )
+
+    # The body's timer.
+    def _cancel_body_timer(self) -> None:
+        if self._body_timer is not None:
+            self._body_timer.cancel()
+            self._body_timer = None
+
+    def _body_timed_out(self) -> None:
+        self._body_timer = None
+        if self.transport.is_closing():
+            return
+        if self.flow.read_paused:  # capnote is not reading: not the client's delay
+            self._body_timer = self.loop.call_later(
+                self.limits.body_timeout_s, self._body_timed_out
+            )
+            return
+        if self.cycle is not None and self.cycle.response_started:
+            self.transport.close()
+            return
+        self._refuse(
+            408,
+            f"the request's body did not arrive within {self.limits.body_timeout_s:g} s; "
+            f"allowed: at most {self.limits.body_timeout_s:g} s",
+            "request-body-timeout",
         )
 
     def _refuse(self, status: int, diagnostics: str, code: str, extra: bytes = b"") -> None:

@@ -191,6 +191,7 @@ def serve(
         max_head_bytes=settings.max_head_bytes,
         max_headers=settings.max_headers,
         head_timeout_s=settings.head_timeout_s,
+        body_timeout_s=settings.body_timeout_s,
         max_connections=settings.max_connections,
     )
     serving.run(
