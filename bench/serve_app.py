@@ -21,8 +21,14 @@ def main() -> None:
     parser.add_argument("--host", default="127.0.0.1")
     parser.add_argument("--port", type=int, default=8000)
     parser.add_argument("--workers", type=int, default=1)
+    # uvicorn's own httptools protocol, without capnote's connection limits: only
+    # bench/protocol_cost.py uses it, to measure what the limits cost.
+    parser.add_argument("--unbounded", action="store_true")
     args = parser.parse_args()
-    serving.run(args.factory, args.host, args.port, args.workers)
+    if args.unbounded:
+        serving.run(args.factory, args.host, args.port, args.workers, protocol="httptools")
+    else:
+        serving.run(args.factory, args.host, args.port, args.workers)
 
 
 if __name__ == "__main__":

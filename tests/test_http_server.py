@@ -46,12 +46,19 @@ def run_cli(database_url: str, *args: str) -> str:
 
 
 @contextmanager
-def server(database_url: str, workdir: Path, workers: int = 1) -> Iterator[str]:
-    """A `capnote serve` process; yields its base URL once /healthz answers."""
+def server(
+    database_url: str,
+    workdir: Path,
+    workers: int = 1,
+    env: dict[str, str] | None = None,
+    host: str = "127.0.0.1",
+) -> Iterator[str]:
+    """A `capnote serve` process (more settings in env); yields its base URL once /healthz
+    answers."""
     port = free_port()
     log = (workdir / f"server-{port}.log").open("w")
     process = subprocess.Popen(
-        [*CAPNOTE, "serve", "--host", "127.0.0.1", "--port", str(port), "--workers", str(workers)],
+        [*CAPNOTE, "serve", "--host", host, "--port", str(port), "--workers", str(workers)],
         cwd=workdir,
         stdout=log,
         stderr=subprocess.STDOUT,
@@ -59,9 +66,10 @@ def server(database_url: str, workdir: Path, workers: int = 1) -> Iterator[str]:
             **os.environ,
             "CAPNOTE_DATABASE_URL": database_url,
             "PYTHONPATH": str(ROOT / "service"),
+            **(env or {}),
         },
     )
-    base = f"http://127.0.0.1:{port}"
+    base = f"http://{host}:{port}"
     try:
         deadline = time.monotonic() + 60
         while True:

@@ -5,12 +5,15 @@ Nothing else in capnote reads the environment; entry points build Settings and p
 
 from __future__ import annotations
 
+import ipaddress
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Annotated
 
+from pydantic import Field, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from capnote.fhir.bundle import OutputCheck
+from capnote.logs import LogFormat, LogLevel
 from capnote.policy import Policy, load_policy
 
 if TYPE_CHECKING:
@@ -29,6 +32,21 @@ class Settings(BaseSettings):
     database_url: str = "sqlite:///capnote.sqlite3"
     max_body_bytes: int = 1_048_576
     cors_origins: list[str] = []
+    # Each connection, per process (capnote.connection_limits): the request line and headers
+    # together, their number, the time for a head and for a body to arrive, how long an idle
+    # keep-alive connection stays, and how many connections one process holds.
+    max_head_bytes: Annotated[int, Field(ge=1_024, le=1_048_576)] = 32_768
+    max_headers: Annotated[int, Field(ge=8, le=1_000)] = 100
+    head_timeout_s: Annotated[float, Field(gt=0, le=300)] = 10.0
+    body_timeout_s: Annotated[float, Field(gt=0, le=3_600)] = 30.0
+    idle_timeout_s: Annotated[float, Field(gt=0, le=3_600)] = 5.0
+    max_connections: Annotated[int, Field(ge=1, le=100_000)] = 1_000
+    # Peers whose X-Forwarded-For and X-Forwarded-Proto are believed (addresses or networks):
+    # the TLS proxy in front. Anyone else's forwarded headers are ignored.
+    trusted_proxies: list[str] = ["127.0.0.1", "::1"]
+    # Log lines: how much, and as text or JSON lines (also --log-level, --log-format).
+    log_level: LogLevel = "info"
+    log_format: LogFormat = "text"
     # `capnote serve` migrates once before starting workers and turns this off for them.
     migrate_on_start: bool = True
     # Forwarding to the hospital's FHIR server (off while forward_url is unset).
@@ -52,6 +70,14 @@ class Settings(BaseSettings):
     # How each emitted Bundle is checked before it leaves: "bindings" (required code
     # bindings; the default) or "r4b" (also the whole Bundle through the R4B models).
     output_check: OutputCheck = OutputCheck.BINDINGS
+
+    @field_validator("trusted_proxies")
+    @classmethod
+    def _addresses(cls, value: list[str]) -> list[str]:
+        for entry in value:
+            # uvicorn would take a malformed address as a literal that never matches.
+            ipaddress.ip_network(entry, strict=False)
+        return value
 
     def receiver(self) -> Receiver | None:
         """The forwarding target, when one is configured."""

@@ -12,6 +12,7 @@
     ├── PayloadError         (413/415, ...)     a body too large or of the wrong media type
     ├── PolicyError          (500, invalid)     the site policy file is unusable
     ├── UsageError           (400, invalid)     a command-line input or output it cannot use
+    ├── ConfigurationError   (500, invalid)     a setting names what capnote cannot use (exit 2)
     ├── EmissionError        (500, exception)   emitted FHIR broke a required binding (a bug)
     └── UnavailableError     (503, transient)   a dependency (database, receiver) is down
 
@@ -135,6 +136,15 @@ class UsageError(CapnoteError):
 
     code = "usage"
     http_status = 400
+    issue_type = "invalid"
+
+
+class ConfigurationError(CapnoteError):
+    """A setting names something capnote cannot use: a database URL of an unsupported kind,
+    a folder that is missing or read-only, a server that cannot be reached (exit 2)."""
+
+    code = "configuration"
+    http_status = 500
     issue_type = "invalid"
 
 

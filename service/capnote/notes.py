@@ -23,7 +23,13 @@ import orjson
 from capnote.assess import Assessment, Assessor
 from capnote.derive import PriorSession, recounted, total_energy_mj
 from capnote.drafts import PARTIAL, KeptDraft, amending_kept, draft_key, identity_of, kept_draft
-from capnote.errors import ConflictError, InputError, NotFoundError, PreconditionError
+from capnote.errors import (
+    ConflictError,
+    InputError,
+    NotFoundError,
+    PreconditionError,
+    UnavailableError,
+)
 from capnote.fhir.common import Emitted, KeyMaker, Version, stable_uuid
 from capnote.fhir.provenance import Actor, provenance_entry
 from capnote.fhir.readmodel import read_references, searchables
@@ -725,8 +731,11 @@ class NoteService:
         }
 
     async def ready(self) -> None:
-        """UnavailableError when the store does not answer."""
+        """UnavailableError when the store does not answer, or answers but takes no writes
+        (a read-only file or folder, a PostgreSQL standby): notes could not be stored."""
         await self.store.ping()
+        if not await self.store.writable():
+            raise UnavailableError("the database accepts no writes (read-only)")
 
 
 WORKLIST_MAX = 200

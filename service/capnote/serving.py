@@ -10,17 +10,22 @@ while the others idle (measured: one worker at 83 % of a core, the other at 20 %
 
 from __future__ import annotations
 
+import asyncio
 import importlib.util
 import logging
 import multiprocessing
 import signal
 import socket
 import threading
+from collections.abc import Sequence
 from types import FrameType
 
 import uvicorn
 from uvicorn.config import STARTUP_FAILURE
 from uvicorn.supervisors import Multiprocess
+
+from capnote.connection_limits import BoundedHttpToolsProtocol, ConnectionLimits
+from capnote.logs import LogFormat, LogLevel, logging_config
 
 log = logging.getLogger("uvicorn.error")
 
@@ -35,6 +40,9 @@ class TcpConfig(uvicorn.Config):
     TCP_NODELAY, and each keep-alive answer waits about 40 ms for the client's delayed ACK
     (measured: 18 requests/s on one connection instead of 40-74).
     """
+
+    # Read by capnote.connection_limits.BoundedHttpToolsProtocol in every connection.
+    connection_limits = ConnectionLimits()
 
     def bind_socket(self) -> socket.socket:
         """The socket uvicorn binds, re-wrapped with its real protocol number."""
@@ -115,21 +123,42 @@ class Workers:
         return self.config.host, self.config.port
 
 
-def run(factory: str, host: str, port: int, workers: int) -> None:
-    """Serve the app factory until terminated."""
+def run(
+    factory: str,
+    host: str,
+    port: int,
+    workers: int,
+    limits: ConnectionLimits | None = None,
+    idle_timeout_s: float = 5.0,
+    trusted_proxies: Sequence[str] = ("127.0.0.1", "::1"),
+    protocol: type[asyncio.Protocol] | str = BoundedHttpToolsProtocol,
+    log_level: LogLevel = "info",
+    log_format: LogFormat = "text",
+) -> None:
+    """Serve the app factory until terminated, each connection held to limits (protocol:
+    uvicorn's own "httptools" only for bench/protocol_cost.py's comparison)."""
     config = TcpConfig(
         factory,
         factory=True,
         host=host,
         port=port,
         workers=workers,
-        log_level="info",
+        log_level=log_level,
+        log_config=logging_config(log_level, log_format),
         access_log=False,
-        # Both are dependencies: httptools parses HTTP in C, uvloop runs the loop in C (where
-        # it is available); "auto" would quietly fall back to h11 and asyncio without them.
-        http="httptools",
+        # httptools parses HTTP in C (the bounded protocol is uvicorn's with the head's
+        # size, field count and time limited); uvloop runs the loop in C where it is
+        # available. "auto" would quietly fall back to h11 and asyncio without them.
+        http=protocol,
         loop="uvloop" if _UVLOOP else "asyncio",
+        # A keep-alive connection with no new request is closed after this (uvicorn's
+        # timer, armed after each answer; the head timer covers a fresh connection).
+        timeout_keep_alive=idle_timeout_s,  # type: ignore[arg-type]
+        # X-Forwarded-For and -Proto are believed only from these peers (the TLS proxy).
+        proxy_headers=True,
+        forwarded_allow_ips=list(trusted_proxies),
     )
+    config.connection_limits = limits or ConnectionLimits()
     if config.workers == 1:
         uvicorn.Server(config).run()
     elif hasattr(socket, "SO_REUSEPORT"):

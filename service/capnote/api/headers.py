@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
-_HEADERS = (
+SECURITY_HEADERS = (
     (b"x-content-type-options", b"nosniff"),
     (b"content-security-policy", b"default-src 'self'; frame-ancestors 'none'"),
     (b"referrer-policy", b"no-referrer"),
@@ -32,7 +32,7 @@ class SecurityHeaders:
             if message["type"] == "http.response.start":
                 headers = list(message.get("headers", ()))
                 present = {name.lower() for name, _value in headers}
-                headers += [(n, v) for n, v in _HEADERS if n not in present]
+                headers += [(n, v) for n, v in SECURITY_HEADERS if n not in present]
                 message = {**message, "headers": headers}
             await send(message)
 

@@ -253,6 +253,7 @@ def serve(
 ) -> None:
     """Run the REST service (SQLite file capnote.sqlite3 here unless CAPNOTE_DATABASE_URL)."""
     from capnote import serving
+    from capnote.connection_limits import ConnectionLimits
 
     settings = Settings()
     # Migrated once, here, so that workers never race to migrate.
@@ -267,7 +268,24 @@ def serve(
     # The service has no /docs page (its script would come from a CDN, which the service's
     # CSP and many hospital networks refuse); the OpenAPI document is served as JSON.
     typer.echo(f"capnote serving on http://{host}:{port} (OpenAPI document at /openapi.json)")
-    serving.run("capnote.app:app_from_environment", host, port, workers)
+    limits = ConnectionLimits(
+        max_head_bytes=settings.max_head_bytes,
+        max_headers=settings.max_headers,
+        head_timeout_s=settings.head_timeout_s,
+        body_timeout_s=settings.body_timeout_s,
+        max_connections=settings.max_connections,
+    )
+    serving.run(
+        "capnote.app:app_from_environment",
+        host,
+        port,
+        workers,
+        limits,
+        idle_timeout_s=settings.idle_timeout_s,
+        trusted_proxies=settings.trusted_proxies,
+        log_level=settings.log_level,
+        log_format=settings.log_format,
+    )
 
 
 DEMO_SYSTEMS = {

@@ -14,7 +14,7 @@ from typing import Any
 from capnote.fhir import core_table, invariants, profiles
 from capnote.fhir.conformance import problem, walk
 from capnote.fhir.profile_check import check_profile
-from capnote.findings import Finding, Severity
+from capnote.findings import Finding, Severity, bounded
 
 CORE_PROFILE = "http://hl7.org/fhir/StructureDefinition/"
 
@@ -26,7 +26,7 @@ def validate_resource(data: object, profile: str | None = None) -> list[Finding]
     found = walker.findings + invariants.evaluate(walker)
     if isinstance(data, dict):
         found += _profiles(data, profile)
-    return found
+    return bounded(found)
 
 
 def _profiles(data: dict[str, Any], profile: str | None) -> list[Finding]:

@@ -13,7 +13,7 @@ from __future__ import annotations
 from collections.abc import Iterable
 from dataclasses import replace
 
-from capnote.findings import Finding, Severity, ordered
+from capnote.findings import Finding, Severity, bounded, ordered
 from capnote.note import Note
 from capnote.rules import clinical, limits
 from capnote.rules.base import Check, Context
@@ -52,7 +52,7 @@ def check_payload(payload: bytes | str, ctx: Context) -> tuple[Note | None, list
     note, findings = parse_note(payload)
     if note is None:
         return None, findings
-    return note, check_note(note, ctx)
+    return note, bounded(check_note(note, ctx))
 
 
 __all__ = ["ALL_CHECKS", "Context", "check_note", "check_payload", "graded"]

@@ -8,21 +8,27 @@ from typing import Any
 from pydantic import ValidationError
 from pydantic_core import ErrorDetails
 
-from capnote.findings import Finding, Severity, show_value
+from capnote.findings import FINDINGS_MAX, Finding, Severity, left_out, show_value
 from capnote.note import Note
 from capnote.rules.wording import message, primitive
 
 RULE = "the note contract (schemas/note.schema.json)"
 
 
+# A key echoed in a location is cut to this many characters: keys are the sender's text.
+KEY_MAX = 64
+
+
 def json_path(loc: Sequence[int | str]) -> str:
-    """A pydantic error location as a FHIRPath-style path: ``laser.series[0].energy_mj``."""
+    """A pydantic error location as a FHIRPath-style path: ``laser.series[0].energy_mj``
+    (a key longer than KEY_MAX characters cut, ending in "...")."""
     path = ""
     for part in loc:
         if isinstance(part, int):
             path += f"[{part}]"
         else:
-            path += f".{part}" if path else part
+            key = part if len(part) <= KEY_MAX else part[: KEY_MAX - 3] + "..."
+            path += f".{key}" if path else key
     return path
 
 
@@ -168,4 +174,9 @@ def parse_note(payload: bytes | str) -> tuple[Note | None, list[Finding]]:
     try:
         return Note.model_validate_json(payload), []
     except ValidationError as exc:
-        return None, [finding_from_error(e) for e in exc.errors(include_url=False)]
+        errors = exc.errors(include_url=False)
+        # Only the findings an answer lists are built (90,000 unknown keys took 2 s more).
+        findings = [finding_from_error(e) for e in errors[:FINDINGS_MAX]]
+        if len(errors) > FINDINGS_MAX:
+            findings.append(left_out(len(errors) - FINDINGS_MAX, Severity.ERROR))
+        return None, findings

@@ -775,6 +775,10 @@ class Store(ABC):
         """UnavailableError when the database does not answer."""
         await self._fetch(self._sql["ping"], {})
 
+    async def writable(self) -> bool:
+        """Whether writes can succeed now, as far as the engine tells without writing."""
+        return True
+
     @abstractmethod
     async def start(self) -> None:
         """Get ready to serve (the service calls this on start; calls work without it)."""

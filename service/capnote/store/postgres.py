@@ -144,8 +144,15 @@ class PostgresStore(Store):
                 return await cursor.fetchall() if cursor.description is not None else []
         except (PoolTimeout, psycopg.OperationalError) as exc:
             raise UnavailableError("the database is not reachable right now") from exc
+        except psycopg.errors.ReadOnlySqlTransaction as exc:
+            raise UnavailableError(_READ_ONLY) from exc
         except psycopg.DataError as exc:  # a NUL byte in a search, say: the caller's error
             raise unstorable() from exc
+
+    async def writable(self) -> bool:
+        """The server takes writes: not a standby, not set to read-only transactions."""
+        rows = await self._rows("SHOW transaction_read_only", {})
+        return bool(rows) and rows[0][0] == "off"
 
     async def start(self) -> None:
         """Open the pool in the service's loop."""
@@ -190,8 +197,14 @@ class PostgresStore(Store):
             raise DuplicateVersionError from exc
         except (PoolTimeout, psycopg.OperationalError) as exc:
             raise UnavailableError("the database is not reachable right now") from exc
+        except psycopg.errors.ReadOnlySqlTransaction as exc:
+            # A standby after a failover, or the server set read-only: nothing was written.
+            raise UnavailableError(_READ_ONLY) from exc
         except psycopg.DataError as exc:
             raise unstorable() from exc
+
+
+_READ_ONLY = "the database accepts no writes right now (read-only); retry later"
 
 
 def _write_params(new: NewVersion) -> dict[str, Any]:

@@ -118,6 +118,13 @@ class SqliteStore(Store):
             await asyncio.sleep(delay * (0.5 + random.random()))  # noqa: S311 (not security)
             delay = min(delay * 2, 0.005)
 
+    async def writable(self) -> bool:
+        """The file and its folder (where SQLite puts the -wal and -shm) can be written."""
+        if self._path == ":memory:" or self._path.startswith("file:"):
+            return True
+        folder = os.path.dirname(os.path.abspath(self._path))
+        return os.access(self._path, os.W_OK) and os.access(folder, os.W_OK)
+
     # -- lifetime -----------------------------------------------------------------------------
 
     async def start(self) -> None:
