@@ -6,7 +6,8 @@ formats of the primitives, the targets a Reference may point at and the required
 bindings. It refuses what the R4B models would coerce (``"15"`` for a decimal, ``"true"``
 or ``1`` for a boolean, a number for a dateTime, a 65-character id), since FHIR JSON
 (R4, json.html) gives each primitive one JSON type. The core invariants are in
-capnote.fhir.invariants. Every finding names the element's FHIRPath in the instance.
+capnote.fhir.invariants. Every finding names the element's FHIRPath in the instance and
+says, in the analyst's words (capnote.fhir.wording), what was expected and what was found.
 """
 
 from __future__ import annotations
@@ -17,11 +18,13 @@ from dataclasses import dataclass, field
 from datetime import date, datetime
 from typing import Any
 
-from capnote.fhir import core_table
+from capnote.fhir import core_table, wording
 from capnote.fhir.core_table import ElementRule
+from capnote.fhir.wording import found as _found
 from capnote.findings import Finding, Severity
 
 _STRUCTURE = "FHIR R4 JSON representation (json.html) and the element definitions of "
+_DATES = frozenset({"date", "dateTime", "instant", "time"})
 _NUMBERS = frozenset({"integer", "unsignedInt", "positiveInt", "decimal"})
 _INT_RANGE = {
     "integer": (-(2**31), 2**31 - 1),
@@ -130,8 +133,8 @@ class Walker:
                 problem(
                     "fhir-json-type",
                     location,
-                    f"{location or 'the body'}: a resource is a JSON object, not "
-                    f"{_json_type(data)}",
+                    f"{location or 'the body'}: expected a resource (an object), found "
+                    f"{_found(data)}",
                     _STRUCTURE + "Resource",
                     "structure",
                 )
@@ -143,7 +146,8 @@ class Walker:
                 problem(
                     "fhir-no-resource-type",
                     _join(location, "resourceType"),
-                    "a FHIR resource is a JSON object with a resourceType",
+                    f"{_join(location, 'resourceType')}: expected the name of a resource "
+                    f"type, found {'none' if kind is None else _found(kind)}",
                     "FHIR R4 JSON representation (json.html#resources)",
                     "structure",
                 )
@@ -154,7 +158,8 @@ class Walker:
                 problem(
                     "fhir-unknown-type",
                     _join(location, "resourceType"),
-                    f"{kind[:64]!r} is not a FHIR R4 resource type",
+                    f"{_join(location, 'resourceType')}: expected a FHIR R4 resource type, "
+                    f"found {kind[:64]!r}, which is not one",
                     f"resourceType names a resource of {core_table.package()}",
                     "not-supported",
                     value=kind[:64],
@@ -181,12 +186,11 @@ class Walker:
                 problem(
                     "fhir-format",
                     location,
-                    f"{location}: an id is 1 to 64 of A-Z a-z 0-9 - . (this one has "
-                    f"{len(value)} characters)",
-                    "FHIR R4 datatypes.html#id: [A-Za-z0-9\\-\\.]{1,64}",
+                    f"{location}: expected {wording.expected('id')}, found {_id_fault(value)}",
+                    f"FHIR R4 datatypes.html#id: an id is {wording.forms('id')}",
                     "value",
                     value=value[:70],
-                    allowed="[A-Za-z0-9\\-\\.]{1,64}",
+                    allowed=wording.forms("id"),
                 )
             )
 
@@ -209,8 +213,8 @@ class Walker:
                     problem(
                         "fhir-too-deep",
                         location,
-                        f"{location}: nested more than {MAX_DEPTH} elements deep; "
-                        "not checked below",
+                        f"{location}: expected at most {MAX_DEPTH} levels of nested "
+                        "elements, found more (not checked below)",
                         f"capnote checks FHIR elements up to {MAX_DEPTH} levels deep",
                         "too-costly",
                         allowed=f"<= {MAX_DEPTH} levels",
@@ -249,7 +253,8 @@ class Walker:
                     problem(
                         "fhir-unknown-element",
                         _join(location, key),
-                        f"{_join(location, key)}: {key[:64]!r} is not an element of {path}",
+                        f"{_join(location, key)}: expected an element of {path}, found "
+                        f"{key[:64]!r}, which is not one",
                         _STRUCTURE + type_name,
                         "structure",
                         value=key[:64],
@@ -267,8 +272,8 @@ class Walker:
                     problem(
                         "fhir-choice",
                         _join(location, found[1]),
-                        f"{location}: {rule.name}[x] has one type at a time, not "
-                        + ", ".join(found),
+                        f"{_join(location, rule.name)}[x]: expected one type at a time, found "
+                        + " and ".join(found),
                         _STRUCTURE + type_name,
                         "structure",
                     )
@@ -279,7 +284,8 @@ class Walker:
                     problem(
                         "fhir-required",
                         _join(location, label),
-                        f"{_join(location, label)} is required ({rule.path} {rule.min}..)",
+                        f"{_join(location, label)}: expected a value ({rule.path} is "
+                        "required), found none",
                         _STRUCTURE + type_name,
                         "required",
                     )
@@ -314,7 +320,8 @@ class Walker:
                 problem(
                     "fhir-unknown-element",
                     _join(location, "_" + name),
-                    f"{_join(location, '_' + name)}: only a primitive element has a '_' partner",
+                    f"{_join(location, '_' + name)}: expected no '_' partner (only a "
+                    f"primitive element has one), found one for {code}",
                     "FHIR R4 json.html#primitive",
                     "structure",
                 )
@@ -328,7 +335,7 @@ class Walker:
                 problem(
                     "fhir-json-type",
                     where,
-                    f"{where}: null is not a value (leave the element out)",
+                    f"{where}: expected a value, found null (leave the element out)",
                     "FHIR R4 json.html: null only stands in arrays with a '_' partner",
                     "structure",
                 )
@@ -342,7 +349,10 @@ class Walker:
                     problem(
                         "fhir-cardinality",
                         where,
-                        f"{where}: {rule.path} repeats, so it is a JSON array",
+                        f"{where}: expected a list, found "
+                        f"{_found(part if isinstance(present, list) else present)} "
+                        f"({rule.path} repeats, so it is a JSON array"
+                        + (f", and so is '_{name}')" if isinstance(present, list) else ")"),
                         _STRUCTURE + type_name,
                         "structure",
                     )
@@ -355,7 +365,8 @@ class Walker:
                     problem(
                         "fhir-invariant",
                         where,
-                        f"{where}: an empty array (leave the element out)",
+                        f"{where}: expected a list of one or more, found an empty list "
+                        "(leave the element out)",
                         "ele-1: " + core_table.invariant("ele-1")[0],
                         "invariant",
                     )
@@ -366,7 +377,8 @@ class Walker:
                     problem(
                         "fhir-structure",
                         where,
-                        f"{where}: '{name}' and '_{name}' differ in length",
+                        f"{where}: expected '_{name}' as long as '{name}' ({len(values)} "
+                        f"items), found {len(parts)}",
                         "FHIR R4 json.html#primitive",
                         "structure",
                     )
@@ -380,7 +392,7 @@ class Walker:
                 problem(
                     "fhir-cardinality",
                     where,
-                    f"{where}: {rule.path} occurs at most once, so it is not an array",
+                    f"{where}: expected one value, found a list ({rule.path} occurs at most once)",
                     _STRUCTURE + type_name,
                     "structure",
                 )
@@ -404,7 +416,7 @@ class Walker:
                     problem(
                         "fhir-json-type",
                         where,
-                        f"{where}: null without a '_' partner",
+                        f"{where}: expected a value, found null without a '_' partner",
                         "FHIR R4 json.html#primitive",
                         "structure",
                     )
@@ -420,7 +432,7 @@ class Walker:
                         problem(
                             "fhir-json-type",
                             where,
-                            f"{where}: the '_' partner of a primitive is a JSON object",
+                            f"{where}: expected an object as the '_' partner, found {_found(part)}",
                             "FHIR R4 json.html#primitive",
                             "structure",
                         )
@@ -431,7 +443,9 @@ class Walker:
                 problem(
                     "fhir-json-type",
                     where,
-                    f"{where}: {code} is a JSON object, not {_json_type(value)}",
+                    f"{where}: expected "
+                    + ("a resource (an object)" if code == "Resource" else f"a {code} object")
+                    + f", found {_found(value)}",
                     _STRUCTURE + code,
                     "structure",
                 )
@@ -457,7 +471,7 @@ class Walker:
                 problem(
                     "fhir-structure",
                     where,
-                    f"{where}: no definition of type {code}",
+                    f"{where}: expected a type defined in R4, found {code}",
                     core_table.package(),
                     "structure",
                 )
@@ -471,25 +485,40 @@ class Walker:
         self, code: str, value: Any, where: str, rule: ElementRule, scope: ResourceScope
     ) -> None:
         shown = _show(code, value)
+        expected = wording.expected(code)
+        seen = _found(value)
+        # Why a value that looks right is refused: "6.3" or "true" in quotes, 2026 without.
+        quoted = isinstance(value, str)
+        hint = ""
         if code == "boolean":
             ok = isinstance(value, bool)
             wanted = "a JSON boolean (true or false)"
+            if quoted:
+                hint = " (FHIR JSON writes boolean as a JSON boolean, without quotes)"
         elif code in _NUMBERS:
             ok = isinstance(value, int | float) and not isinstance(value, bool)
             wanted = "a JSON number"
+            if quoted:
+                hint = f" (FHIR JSON writes {code} as a JSON number, without quotes)"
             if ok and code in _INT_RANGE:
                 low, high = _INT_RANGE[code]
                 ok = isinstance(value, int) and low <= value <= high
                 wanted = f"a JSON whole number from {low} to {high}"
+                expected = f"a whole number from {low} to {high}"
+                seen = repr(value)[:40]  # a number, never free text
+                hint = ""
         else:
             ok = isinstance(value, str)
             wanted = "a JSON string"
+            if code not in ("string", "markdown"):
+                expected += " as a string"
+                hint = f" (FHIR JSON writes {code} as a JSON string, in quotes)"
         if not ok:
             self.add(
                 problem(
                     "fhir-json-type",
                     where,
-                    f"{where}: FHIR {code} is {wanted}, not {_json_type(value)}",
+                    f"{where}: expected {expected}, found {seen}{hint}",
                     f"FHIR R4 json.html#primitive: {code} is {wanted}",
                     "value",
                     value=shown,
@@ -512,7 +541,7 @@ class Walker:
                 problem(
                     "fhir-format",
                     where,
-                    f"{where}: an empty string (leave the element out)",
+                    f"{where}: expected a value, found an empty string (leave the element out)",
                     "FHIR R4 json.html: strings are never empty",
                     "value",
                 )
@@ -526,16 +555,22 @@ class Walker:
         if ok and code in ("date", "dateTime", "instant"):
             ok = _exists(value)
         if not ok:
+            forms = wording.forms(code)
+            if shown is not None:
+                seen = f"{shown!r}"
+            else:  # free text or a date, which may be a patient's: what is wrong, not what
+                fault = wording.date_fault(code, value) if code in _DATES else None
+                seen = "a string" + (f" in which {fault}" if fault else " in another form")
             self.add(
                 problem(
                     "fhir-format",
                     where,
-                    f"{where}: not a valid FHIR {code}"
-                    + (f" ({shown!r})" if shown is not None else ""),
-                    f"FHIR R4 datatypes.html#{code}: {regex.pattern if regex else code}",
+                    f"{where}: expected {wording.expected(code)}, found {seen}",
+                    f"FHIR R4 datatypes.html#{code}"
+                    + (f": a {code} is {forms}" if forms is not None else ""),
                     "value",
                     value=shown,
-                    allowed=regex.pattern if regex else None,
+                    allowed=forms,
                 )
             )
 
@@ -580,9 +615,9 @@ class Walker:
             problem(
                 "fhir-reference-target",
                 _join(where, "reference"),
-                f"{_join(where, 'reference')}: {rule.path} refers to "
-                + ", ".join(targets)
-                + f", not to a {kind}",
+                f"{_join(where, 'reference')}: expected a reference to "
+                + " or ".join(targets)
+                + f" ({rule.path}), found a reference to a {kind}",
                 f"targetProfile of {rule.path} in {core_table.package()}",
                 "invalid",
                 value=kind,
@@ -623,7 +658,8 @@ class Walker:
             problem(
                 "fhir-reference-malformed",
                 where,
-                f"{where}: not a literal reference ({allowed})",
+                f"{where}: expected a literal reference ({allowed}), found a string in "
+                "another form",
                 "FHIR R4 references.html#literal: a relative reference is [Type]/[id] with "
                 "a resource type of R4 and an id of 1 to 64 characters",
                 "value",
@@ -637,7 +673,7 @@ def _not_in(where: str, seen: str, url: str) -> Finding:
         severity=Severity.ERROR,
         code="fhir-code-not-in-value-set",
         location=where,
-        message=f"{where}: {seen[:120]!r} is not in the required value set {url}",
+        message=f"{where}: expected a code of the required value set {url}, found {seen[:120]!r}",
         rule=f"required binding to {url} ({core_table.package()})",
         value=seen[:120],
         issue_type="code-invalid",
@@ -665,6 +701,17 @@ def _show(code: str, value: Any) -> str | None:
         return None if isinstance(value, str) else _json_type(value)
     text = repr(value) if not isinstance(value, str) else value
     return text[:70]
+
+
+def _id_fault(value: str) -> str:
+    """What is wrong with an id, shown (ids are machine-made, R4 resource.html#id)."""
+    if not value:
+        return "an empty string"
+    if len(value) > 64:
+        return f"{len(value)} characters"
+    bad = next((c for c in value if not (c.isascii() and (c.isalnum() or c in "-."))), "")
+    name = {" ": "a space", "\t": "a tab", "\n": "a line break"}.get(bad, repr(bad))
+    return f"{value[:70]!r}, which holds {name}"
 
 
 def _json_type(value: Any) -> str:

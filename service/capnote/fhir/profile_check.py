@@ -13,6 +13,7 @@ import re
 from collections.abc import Iterator
 from typing import Any
 
+from capnote.fhir import wording
 from capnote.fhir.profiles import expansion
 from capnote.findings import Finding, Severity
 
@@ -80,18 +81,26 @@ def _element(resource: dict[str, Any], element: dict[str, Any], url: str) -> Ite
             yield _problem(
                 url,
                 f"{parent}.{name}",
-                f"required by the profile ({path} min {element['min']})",
+                f"expected at least {element['min']} (the profile's {path} min "
+                f"{element['min']}), found {count or 'none'}",
                 "required",
             )
         if element.get("max") == "0" and count:
-            yield _problem(url, f"{parent}.{name}", f"not allowed by the profile ({path} max 0)")
+            yield _problem(
+                url,
+                f"{parent}.{name}",
+                f"expected none (the profile's {path} max 0), found {count}",
+            )
     types = element.get("type")
     for _, where, value in found:
         key = where.rsplit(".", 1)[-1].split("[")[0]
         if types and name.endswith("[x]"):
             codes = [t["code"] for t in types]
             if key[len(name) - 3 :] not in [c[:1].upper() + c[1:] for c in codes]:
-                yield _problem(url, where, f"the profile allows {name} only as {', '.join(codes)}")
+                allowed = " or ".join(codes)
+                yield _problem(
+                    url, where, f"expected {name} as {allowed} (the profile), found {key}"
+                )
         for entry in types or []:
             targets = [t.removeprefix(_CORE) for t in entry.get("targetProfile", [])]
             reference = value.get("reference") if isinstance(value, dict) else None
@@ -100,7 +109,8 @@ def _element(resource: dict[str, Any], element: dict[str, Any], url: str) -> Ite
                 yield _problem(
                     url,
                     where,
-                    f"the profile allows a reference to {', '.join(targets)} only, not {match[1]}",
+                    f"expected a reference to {' or '.join(targets)} (the profile), found a "
+                    f"reference to a {match[1]}",
                 )
         yield from _values(element, value, where, url)
 
@@ -110,27 +120,36 @@ def _values(element: dict[str, Any], value: Any, where: str, url: str) -> Iterat
     if pattern is not None:
         codings = value.get("coding", []) if isinstance(value, dict) else []
         pairs = {(c.get("system"), c.get("code")) for c in codings if isinstance(c, dict)}
+        seen = ", ".join(sorted(f"{s}#{c}" for s, c in pairs)) or "no coding"
         for wanted in pattern.get("coding", []):
             if (wanted["system"], wanted["code"]) not in pairs:
                 yield _problem(
                     url,
                     where,
-                    f"the profile needs the coding {wanted['system']}#{wanted['code']}",
+                    f"expected the coding {wanted['system']}#{wanted['code']} (the profile), "
+                    f"found {seen[:200]}",
                     "code-invalid",
                 )
     for key in ("fixedCode", "fixedUri"):
         if key in element and value != element[key]:
-            yield _problem(url, where, f"the profile fixes the value {element[key]!r}", "value")
+            yield _problem(
+                url,
+                where,
+                f"expected {element[key]!r} (a value the profile fixes), found "
+                + (f"{value[:64]!r}" if isinstance(value, str) else wording.found(value)),
+                "value",
+            )
     binding = element.get("binding")
     if binding is not None and binding.get("strength") == "required":
         members = expansion(str(binding["valueSet"])) or frozenset()
         codings = value.get("coding", []) if isinstance(value, dict) else []
-        if not any(
-            (c.get("system"), c.get("code")) in members for c in codings if isinstance(c, dict)
-        ):
+        held = [(c.get("system"), c.get("code")) for c in codings if isinstance(c, dict)]
+        if not any(pair in members for pair in held):
+            seen = ", ".join(f"{s}#{c}" for s, c in held) or "no coding"
             yield _problem(
                 url,
                 where,
-                f"no coding from the required value set {binding['valueSet']}",
+                f"expected a coding from the required value set {binding['valueSet']}, "
+                f"found {seen[:200]}",
                 "code-invalid",
             )

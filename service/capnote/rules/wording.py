@@ -15,6 +15,8 @@ from typing import Any
 
 from pydantic_core import ErrorDetails
 
+from capnote.fhir.wording import found  # one wording of "what was there" for both
+
 # FHIR R4 primitive types (R4 2.24.0.1 "Primitive Types") as fhir.resources names them in
 # "<Name> value string does not match spec regex", and what each one accepts.
 FHIR_PRIMITIVES: dict[str, tuple[str, str | None]] = {
@@ -73,23 +75,6 @@ _EXPECTED: dict[str, str] = {
     "also without spaces)",
 }
 _BOUNDS = (("ge", ">="), ("gt", ">"), ("le", "<="), ("lt", "<"))
-
-
-def found(value: Any) -> str:
-    """What kind of JSON value was there: a string, a number, an object, a list, true..."""
-    if value is None:
-        return "null"
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, int | float):
-        return "a number"
-    if isinstance(value, str):
-        return "an empty string" if value == "" else "a string"
-    if isinstance(value, dict):
-        return "an object"
-    if isinstance(value, list | tuple):
-        return "an empty list" if not value else "a list"
-    return "another kind of value"
 
 
 def primitive(error: ErrorDetails) -> tuple[str, str | None] | None:
