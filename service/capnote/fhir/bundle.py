@@ -8,6 +8,7 @@ conditional create makes nothing new when the same note arrives again.
 from __future__ import annotations
 
 from enum import StrEnum
+from functools import lru_cache
 from typing import Any
 
 from capnote.derive import Derived
@@ -23,6 +24,7 @@ from capnote.fhir.identity import (
 )
 from capnote.fhir.observations import observations
 from capnote.fhir.procedure import procedure
+from capnote.fhir.profiles import profile_for
 from capnote.fhir.requests import (
     administrations,
     medication_request,
@@ -175,11 +177,17 @@ def emit(
 ) -> Emitted:
     """The transaction Bundle and its entries' roles; raises EmissionError rather than emit
     a bad code."""
-    # No id or meta here: a receiver assigns its own, and a conditional update must not
-    # carry an id that may differ from the matched resource's. The read API adds both.
+    # No id or version here: a receiver assigns its own, and a conditional update must not
+    # carry an id that may differ from the matched resource's. The read API adds both to
+    # meta, which here holds only the profile.
     version = version or Version()
     ctx = VersionContext(note, version)
     items = entries(note, derived, due, version, ctx)
+    for e in items:
+        url = _profile(e.resource)
+        if url is not None:
+            # The profile it conforms to (schemas/fhir-package), so a receiver can check it.
+            e.resource["meta"] = {"profile": [url]}
     if version.previous is not None:
         if ctx.amended:
             restatused(items, version.previous)
@@ -199,6 +207,19 @@ def emit(
     }
     check_output(result, items, check)
     return Emitted(result, tuple(e.role for e in items))
+
+
+def _profile(resource: dict[str, Any]) -> str | None:
+    """profile_for, looked up once per type and code (a Bundle holds about twenty)."""
+    code = resource.get("code")
+    codings = tuple((c.get("system"), c.get("code")) for c in (code or {}).get("coding", ()) if c)
+    return _profile_of(resource["resourceType"], codings)
+
+
+@lru_cache(maxsize=512)
+def _profile_of(kind: str, codings: tuple[tuple[str | None, str | None], ...]) -> str | None:
+    code = {"coding": [{"system": s, "code": c} for s, c in codings]}
+    return profile_for({"resourceType": kind, "code": code})
 
 
 def bundle(

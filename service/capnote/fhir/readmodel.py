@@ -184,7 +184,9 @@ class StoredBundle:
             },
         }
         for name, value in resource.items():
-            if name not in ("resourceType", "id"):  # the read API names it
+            if name == "meta":  # the emitted profile, beside the version the read API adds
+                served["meta"] = {**value, **served["meta"]}
+            elif name not in ("resourceType", "id"):  # the read API names it
                 served[name] = _resolved(value, refs)
         return served
 
