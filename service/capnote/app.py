@@ -29,6 +29,7 @@ from capnote.api.body_limit import BodyLimit
 from capnote.api.guard import Guard
 from capnote.api.head import HeadAsGet
 from capnote.api.headers import SecurityHeaders
+from capnote.api.hosts import PublicHost
 from capnote.assess import Assessor
 from capnote.audit_trail import AuditTrail
 from capnote.config import Settings, effective_policy
@@ -126,6 +127,10 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     app.add_middleware(HeadAsGet)
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     app.add_middleware(Guard)
+    # Before anything reads the Host: links follow the public base URL, never a client's.
+    app.add_middleware(
+        PublicHost, public_base_url=settings.public_base_url, allowed=settings.allowed_hosts
+    )
     # Outermost, so that the 413 of BodyLimit and the 500 of Guard carry the headers too.
     app.add_middleware(SecurityHeaders)
     return app

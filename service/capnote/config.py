@@ -44,6 +44,13 @@ class Settings(BaseSettings):
     # Peers whose X-Forwarded-For and X-Forwarded-Proto are believed (addresses or networks):
     # the TLS proxy in front. Anyone else's forwarded headers are ignored.
     trusted_proxies: list[str] = ["127.0.0.1", "::1"]
+    # The address clients reach capnote at (https://capnote.hospital.example): every link
+    # the API writes (CapabilityStatement, searchset and history links) is built from it,
+    # never from the Host header a client sends. Scheme and host (and port) only.
+    public_base_url: Annotated[str | None, Field(pattern=r"^https?://[^/?#\s]+/?$")] = None
+    # Host header values served (host names, no port); "*" serves any. With a public base
+    # URL set, its host is always served.
+    allowed_hosts: list[str] = ["*"]
     # Log lines: how much, and as text or JSON lines (also --log-level, --log-format).
     log_level: LogLevel = "info"
     log_format: LogFormat = "text"
