@@ -28,16 +28,19 @@ LIBRARY_PHRASES = re.compile(
 
 def _procedure() -> dict[str, Any]:
     bundle = load(EXAMPLES / "bundles" / "right-routine.bundle.json")
-    return dict(bundle["entry"][0]["resource"])
+    # A foreign resource: without the meta.profile capnote's own carry, so only R4 judges.
+    return {k: v for k, v in bundle["entry"][0]["resource"].items() if k != "meta"}
 
 
 def _observation() -> dict[str, Any]:
     bundle = load(EXAMPLES / "bundles" / "right-routine.bundle.json")
-    return next(
+    found = next(
         dict(e["resource"])
         for e in bundle["entry"]
         if e["resource"]["resourceType"] == "Observation" and "valueQuantity" in e["resource"]
     )
+    found.pop("meta", None)  # as for _procedure: a foreign resource
+    return found
 
 
 def _with(resource: dict[str, Any], path: str, value: Any) -> dict[str, Any]:

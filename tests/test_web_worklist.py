@@ -258,11 +258,13 @@ def test_messages_are_in_clinical_words_and_the_api_keeps_the_technical_finding(
         lambda r: r.request.method == "POST" and r.url.endswith("/notes")
     ) as answer:
         page.get_by_role("button", name="Save as draft", exact=True).click()
-    # The API's finding stays precise: the field's path and pydantic's words.
+    # The API's finding stays precise: the field's path, its code and the contract's rule
+    # (in the analyst's words since issue 18, never a library's phrase).
     issues = answer.value.json()["issue"]
     assert [(i["expression"], i["diagnostics"].split(";")[0]) for i in issues] == [
-        (["started_at"], "started_at: Field required")
+        (["started_at"], "started_at: required, but missing")
     ]
+    assert issues[0]["details"]["coding"][0]["code"] == "missing-field"
     beside = page.locator('.finding-inline[data-location="started_at"]')
     expect(beside).to_have_text(re.compile(r"Enter the time the laser started\.$"))
     page.get_by_label("Laser started").press_sequentially("0930")
