@@ -5,12 +5,15 @@ bounded load from this process, with
 - full: the file on a small tmpfs (mounted here, as root) filled to the last byte while
   notes arrive, then freed again.
 
+- full-pg: the same full disk under PostgreSQL, its data directory on the tmpfs.
+
 Afterwards every acknowledged note must be stored exactly once with its content, nothing
 half-written may exist, `PRAGMA integrity_check` must say ok, and every refusal during
 the fault must have been a 503 with Retry-After. Prints a table of figures per run.
 
     python -m tests.reliability.sqlite_faults --notes 600        # the full runs
     python -m tests.reliability.sqlite_faults --notes 150        # CI's short runs (pytest)
+    python -m tests.reliability.sqlite_faults --only full-pg     # PostgreSQL's full disk
 """
 
 from __future__ import annotations
@@ -147,6 +150,53 @@ def run_full(notes: int, concurrency: int) -> tuple[Figures, str]:
         return figures, _integrity(path)
 
 
+def run_full_pg(notes: int, concurrency: int) -> tuple[Figures, str]:
+    """The same full disk under PostgreSQL: its data directory on the small tmpfs.
+
+    PostgreSQL stops a backend (or, for its write-ahead log, the whole server) when a write
+    finds no space; capnote answers 503 with Retry-After meanwhile, and PostgreSQL's own
+    crash recovery brings it back once space is freed. "integrity" is whether every table
+    could be read back in full afterwards."""
+    from tests.pg_cluster import PgCluster
+
+    work = Path(tempfile.mkdtemp(prefix="capnote-pg-full-"))
+    with small_tmpfs("200m") as disk:
+        os.chmod(disk, 0o777)  # the cluster's files belong to the postgres user
+        cluster = PgCluster(base_dir=disk, settings={"synchronous_commit": "on"})
+        cluster.start()
+        try:
+            url = cluster.tcp_url
+
+            def faults(_server: Server, figures: Figures, deadline: float) -> None:
+                _wait_for(figures, notes * 0.3, deadline)
+                filler = _fill(disk)
+                figures.faults.append(f"disk full at {len(figures.acknowledged)} acknowledged")
+                time.sleep(3)
+                filler.unlink()
+                figures.faults.append("space freed after 3 s")
+
+            figures = _load(notes, concurrency, url, work, faults)
+            return figures, _pg_readable(url)
+        finally:
+            cluster.stop()
+
+
+def _pg_readable(url: str) -> str:
+    """ok when every capnote table reads back in full (a torn page would raise)."""
+    from sqlalchemy import create_engine, text
+
+    engine = create_engine(url)
+    try:
+        with engine.connect() as connection:
+            for table_name in ("note_version", "fhir_index", "audit_entry", "api_token"):
+                connection.execute(text(f"select * from {table_name}")).all()
+    except Exception as exc:
+        return f"unreadable: {type(exc).__name__}"
+    finally:
+        engine.dispose()
+    return "ok"
+
+
 def failed(figures: Figures, integrity: str, faults: int) -> bool:
     """Whether the run broke a promise."""
     return bool(
@@ -168,7 +218,7 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--notes", type=int, default=600)
     parser.add_argument("--concurrency", type=int, default=8)
-    parser.add_argument("--only", choices=("kill", "full"))
+    parser.add_argument("--only", choices=("kill", "full", "full-pg"))
     args = parser.parse_args()
     bad = False
     if args.only in (None, "kill"):
@@ -185,6 +235,15 @@ def main() -> int:
             print("## full disk\n")
             print(table(figures))
             print(f"PRAGMA integrity_check: {integrity}\n")
+            bad |= failed(figures, integrity, 2) or figures.answers_503 == 0
+    if args.only == "full-pg":
+        if os.geteuid() != 0:
+            print("## full disk on PostgreSQL: skipped, mounting a tmpfs needs root")
+        else:
+            figures, integrity = run_full_pg(args.notes, args.concurrency)
+            print("## full disk on PostgreSQL\n")
+            print(table(figures))
+            print(f"tables read back: {integrity}\n")
             bad |= failed(figures, integrity, 2) or figures.answers_503 == 0
     return 1 if bad else 0
 
