@@ -94,13 +94,12 @@ def funnel_svg(unit: Figures, placed: tuple[Placed, ...], measure: str, title: s
     points = [(p, p.clinician.rates[measure]) for p in placed if p.clinician.rates[measure].total]
     if target is None or not points:
         return "<p>No funnel: no denominator.</p>"
-    width, height, left, bottom, top, right = 520, 320, 56, 40, 20, 20
+    width, height, left, bottom, top, right = 640, 320, 56, 40, 20, 150
     n_max = max(max(r.total for _, r in points), 10) * 1.1
-    start_n = max(1, int(n_max / 200))
-    y_max = max(
-        max(r.value or 0 for _, r in points),
-        funnel_limits(target, max(start_n, 5)).high998,
-    )
+    # Tall enough for every point and for the limits from a quarter of the smallest
+    # clinician's denominator on: the funnel's mouth at n = 1 would flatten the rest.
+    near_n = max(5, min(r.total for _, r in points) // 4)
+    y_max = max(max(r.value or 0 for _, r in points), funnel_limits(target, near_n).high998)
     y_max = min(1.0, y_max * 1.1 + 0.01)
 
     def x(n: float) -> float:
@@ -109,11 +108,13 @@ def funnel_svg(unit: Figures, placed: tuple[Placed, ...], measure: str, title: s
     def y(p: float) -> float:
         return height - bottom - (height - bottom - top) * p / y_max
 
-    steps = [start_n + (n_max - start_n) * i / 60 for i in range(61)]
+    steps = [near_n + (n_max - near_n) * i / 60 for i in range(61)]
     lines = []
     for attr, dash in (("high95", "6 3"), ("low95", "6 3"), ("high998", "2 2"), ("low998", "2 2")):
         limit = [getattr(funnel_limits(target, max(1, round(n))), attr) for n in steps]
-        coords = " ".join(f"{x(n):.1f},{y(min(y_max, v)):.1f}" for n, v in zip(steps, limit, strict=True))
+        coords = " ".join(
+            f"{x(n):.1f},{y(min(y_max, v)):.1f}" for n, v in zip(steps, limit, strict=True)
+        )
         lines.append(
             f'<polyline points="{coords}" fill="none" stroke="#555" stroke-dasharray="{dash}"/>'
         )
@@ -141,6 +142,8 @@ def funnel_svg(unit: Figures, placed: tuple[Placed, ...], measure: str, title: s
         f'stroke="#000"/>{ticks}'
         f'<text x="{(width + left) / 2}" y="{height - 8}" font-size="11" text-anchor="middle">'
         f"sessions with the measure recorded (denominator; axis to {n_max:.0f})</text>"
+        f'<text x="{left + 8}" y="{top + 4}" font-size="10">line: unit rate; dashed: 95% '
+        "limits; dotted: 99.8% limits</text>"
         f'<line x1="{x(0)}" y1="{y(target):.1f}" x2="{x(n_max)}" y2="{y(target):.1f}" '
         f'stroke="#000"/>{"".join(lines)}{"".join(marks)}</svg>'
     )
