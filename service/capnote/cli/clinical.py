@@ -10,14 +10,16 @@ import os
 import tempfile
 from datetime import UTC, datetime, time, timedelta
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import orjson
 import typer
 
 from capnote.cli.operator import _with_store
 from capnote.config import Settings
-from capnote.store.base import Store
+
+if TYPE_CHECKING:  # the store loads only for the commands that need it (not for check)
+    from capnote.store.base import Store
 
 _DATE = ["%Y-%m-%d"]
 
