@@ -22,15 +22,18 @@ import orjson
 import pytest
 from alembic import command
 from alembic.config import Config
+from fastapi.testclient import TestClient
 from scipy.stats import binomtest
 from sqlalchemy import inspect, text
 
+from capnote.app import create_app
 from capnote.audit.demo_year import sessions
 from capnote.audit.render import csv_text, html_page
 from capnote.audit.report import CAUTION, NOT_RECORDED, Report, build
+from capnote.config import Settings
 from capnote.notes import Principal
 from capnote.store.database import MIGRATIONS, make_engine, upgrade
-from tests.conftest import sync_notes
+from tests.conftest import NOW, new_token, sync_notes
 from tests.pg_cluster import PgCluster
 from tests.test_cli import capnote
 
@@ -254,3 +257,50 @@ def test_migration_0006_fills_the_facts_of_stored_rows(loaded: Loaded) -> None:
     finally:
         engine.dispose()
     assert _report(loaded.url) == before
+
+
+def test_the_audit_over_http_is_the_auditors(loaded: Loaded) -> None:
+    app = create_app(Settings(database_url=loaded.url), clock=lambda: NOW)
+    auditor = new_token(loaded.url, "auditor", "test auditor")[0]
+    clinician = new_token(loaded.url, "clinician", "test clinician")[0]
+    query = {"from": "2025-12-01", "to": "2026-11-30"}
+    with TestClient(app) as client:
+        answer = client.get(
+            "/audit/clinical", params=query, headers={"authorization": f"Bearer {auditor}"}
+        )
+        assert answer.status_code == 200
+        assert answer.headers["content-type"].startswith("text/html")
+        assert answer.text == html_page(_report(loaded.url))
+        # The page's one style block is allowed by its hash; no script can run.
+        policy = answer.headers["content-security-policy"]
+        assert "default-src 'none'" in policy
+        assert "style-src 'sha256-" in policy
+        csv_answer = client.get(
+            "/audit/clinical",
+            params={**query, "format": "csv", "site": "HX-LASER"},
+            headers={"authorization": f"Bearer {auditor}"},
+        )
+        assert csv_answer.status_code == 200
+        assert csv_answer.text == csv_text(_report(loaded.url, site="HX-LASER"))
+        # Figures per clinician are for governance: other roles are refused.
+        other = client.get(
+            "/audit/clinical", params=query, headers={"authorization": f"Bearer {clinician}"}
+        )
+        assert other.status_code == 403
+        assert client.get("/audit/clinical", params=query).status_code == 401
+        backwards = client.get(
+            "/audit/clinical",
+            params={"from": "2026-02-01", "to": "2026-01-01"},
+            headers={"authorization": f"Bearer {auditor}"},
+        )
+        assert backwards.status_code == 422
+        [issue] = backwards.json()["issue"]
+        assert issue["expression"] == ["to"]
+        assert "before from" in issue["diagnostics"]
+        impossible = client.get(
+            "/audit/clinical",
+            params={"from": "2026-02-30", "to": "2026-03-01"},
+            headers={"authorization": f"Bearer {auditor}"},
+        )
+        assert impossible.status_code == 422
+        assert "2026-02-30" in impossible.text

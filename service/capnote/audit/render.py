@@ -51,7 +51,7 @@ def _who(f: Figures) -> str:
 
 # --- HTML ----------------------------------------------------------------------------------
 
-_STYLE = """
+STYLE = """
 body{font-family:system-ui,sans-serif;margin:1.5rem;max-width:80rem;color:#1b1b1b}
 .caution{border:2px solid #8a5a00;background:#fff6e0;padding:.6rem 1rem;font-weight:600}
 table{border-collapse:collapse;margin:.5rem 0 1rem}td,th{border:1px solid #999;padding:.2rem .5rem;
@@ -230,7 +230,7 @@ def html_page(report: Report) -> str:
     return (
         '<!doctype html><html lang="en"><head><meta charset="utf-8">'
         "<title>capnote clinical audit</title>"
-        f"<style>{_STYLE}</style></head><body>{''.join(body)}</body></html>"
+        f"<style>{STYLE}</style></head><body>{''.join(body)}</body></html>"
     )
 
 

@@ -9,7 +9,7 @@ reported as such, never as a number.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from datetime import date
+from datetime import UTC, date, datetime, time, timedelta
 
 from capnote.audit.stats import Rate, outside, rate
 from capnote.store.audit_sql import GroupFigures
@@ -172,3 +172,10 @@ def build(
     if everyone is not None and everyone.sessions == 0:
         everyone = None
     return Report(start, end, site, clinician, everyone, tuple(units))
+
+
+def period(first: date, last: date) -> tuple[datetime, datetime]:
+    """The moments [start, end) of the days first to last, both included, in UTC."""
+    return datetime.combine(first, time(), UTC), datetime.combine(
+        last + timedelta(days=1), time(), UTC
+    )

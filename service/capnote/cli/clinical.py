@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import os
 import tempfile
-from datetime import UTC, datetime, time, timedelta
+from datetime import datetime
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
@@ -41,7 +41,7 @@ def audit(
     """Write the clinical audit of the final sessions of a period: local figures set against
     published series (differences in case mix explain much; local governance decides)."""
     from capnote.audit.render import csv_text, html_page
-    from capnote.audit.report import build
+    from capnote.audit.report import build, period
 
     kind = report.suffix.lower()
     if kind not in (".html", ".csv"):
@@ -55,8 +55,7 @@ def audit(
             f"--to {last} is before --from {first}; the period runs from --from to --to",
             param_hint="--to",
         )
-    since = datetime.combine(first, time(), UTC)
-    until = datetime.combine(last + timedelta(days=1), time(), UTC)
+    since, until = period(first, last)
 
     async def work(store: Store) -> str:
         groups = await store.audit_figures(since, until, site)
