@@ -56,7 +56,7 @@ body{font-family:system-ui,sans-serif;margin:1.5rem;max-width:80rem;color:#1b1b1
 .caution{border:2px solid #8a5a00;background:#fff6e0;padding:.6rem 1rem;font-weight:600}
 table{border-collapse:collapse;margin:.5rem 0 1rem}td,th{border:1px solid #999;padding:.2rem .5rem;
 text-align:left;vertical-align:top}.small{background:#eee;font-style:italic}
-.pair{display:flex;gap:1.5rem;flex-wrap:wrap;align-items:flex-start}
+.pair{display:flex;gap:1.5rem;flex-wrap:wrap;align-items:flex-start}.pair table{max-width:38rem}
 """
 
 
