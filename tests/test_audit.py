@@ -304,3 +304,24 @@ def test_the_audit_over_http_is_the_auditors(loaded: Loaded) -> None:
         )
         assert impossible.status_code == 422
         assert "2026-02-30" in impossible.text
+
+
+def test_demo_data_loads_the_invented_year_once(tmp_path: Path) -> None:
+    env = {"CAPNOTE_DATABASE_URL": f"sqlite:///{tmp_path / 'demo.sqlite3'}", "COLUMNS": "300"}
+    first = capnote("demo-data", "--sessions", "40", env=env)
+    assert first.returncode == 0, first.stderr
+    assert "40 invented sessions stored (0 were there already)" in first.stdout
+    again = capnote("demo-data", "--sessions", "40", env=env)
+    assert again.returncode == 0, again.stderr
+    assert "0 invented sessions stored (40 were there already)" in again.stdout
+    out = tmp_path / "audit.csv"
+    run = capnote(
+        "audit", "--from", "2025-12-01", "--to", "2026-11-30", "--report", str(out), env=env
+    )
+    assert run.returncode == 0, run.stderr
+    [sessions_row] = [
+        r
+        for r in csv.DictReader(io.StringIO(out.read_text()))
+        if r["unit"] == "all" and r["measure"] == "sessions"
+    ]
+    assert sessions_row["count"] == "40"
