@@ -49,6 +49,7 @@ ALLOWED: dict[tuple[str, str], set[str] | None] = {
     ("get", "/fhir/CodeSystem/{resource_id}"): None,
     ("get", "/fhir/ValueSet/{resource_id}"): None,
     ("get", "/audit"): {"auditor"},
+    ("get", "/audit/clinical"): {"auditor"},
     ("get", "/fhir/AuditEvent"): {"auditor"},
     ("get", "/fhir/AuditEvent/{event_id}"): {"auditor"},
 }

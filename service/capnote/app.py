@@ -15,6 +15,7 @@ from capnote import __version__
 from capnote.access import Access
 from capnote.api import (
     audit,
+    clinical_audit,
     docs,
     errors,
     fhir,
@@ -110,6 +111,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
         fhir_validate.router,
         fhir_package.router,
         audit.router,
+        clinical_audit.router,
         fhir.router,
         web.router,
     ):

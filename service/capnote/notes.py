@@ -21,6 +21,7 @@ from zoneinfo import ZoneInfo
 import orjson
 
 from capnote.assess import Assessment, Assessor
+from capnote.audit.facts import audit_facts
 from capnote.derive import PriorSession, recounted, total_energy_mj
 from capnote.drafts import PARTIAL, KeptDraft, amending_kept, draft_key, identity_of, kept_draft
 from capnote.errors import (
@@ -332,6 +333,7 @@ class NoteService:
             if signed is None or signed.staff is None
             else "|".join(signed.staff),
             signed_at=None if signed is None else signed.at,
+            **audit_facts(note, result.derived),
         )
         index = tuple(searchables(bundle, roles))
         audit = AuditRow(now, who.label, who.role, change.action, who.remote, who.token_id)

@@ -2,6 +2,7 @@
 
     analyst    check, emit, schema
     operator   serve, db, token, outbox, deliver
+    clinical   audit, demo-data
     options    what several commands share
 
 Exit codes: 0 no record has an error; 1 some record has an error; 2 usage or configuration
@@ -20,7 +21,7 @@ from typing import Annotated
 import typer
 from pydantic import ValidationError
 
-from capnote.cli import analyst, operator
+from capnote.cli import analyst, clinical, operator
 from capnote.cli.progress import BROKEN_PIPE, Stopped, silence_stdout
 from capnote.config import Settings
 from capnote.errors import CapnoteError
@@ -66,6 +67,8 @@ app.add_typer(operator.db_app, name="db")
 app.add_typer(operator.outbox_app, name="outbox")
 app.command()(operator.deliver)
 app.command()(operator.serve)
+app.command()(clinical.audit)
+app.command("demo-data")(clinical.demo_data)
 
 
 def main() -> None:

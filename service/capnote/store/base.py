@@ -26,6 +26,7 @@ from abc import ABC, abstractmethod
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, fields
 from datetime import UTC, datetime, timedelta
+from functools import partial
 from typing import Any, TypeVar
 
 from sqlalchemy import (
@@ -50,6 +51,8 @@ from sqlalchemy.sql import ClauseElement
 from capnote.derive import PriorSession
 from capnote.fhir.readmodel import Searchable
 from capnote.fhir.search import Criteria
+from capnote.store import audit_sql
+from capnote.store.audit_sql import GroupFigures
 from capnote.store.tables import (
     ApiToken,
     AuditEntry,
@@ -123,6 +126,15 @@ class VersionRow:
     signed_by: str | None = None
     signed_by_staff: str | None = None  # system|value
     signed_at: datetime | None = None
+    # The audit's facts (capnote.store.tables.NoteVersion).
+    site: str | None = None
+    site_name: str | None = None
+    performer: str | None = None
+    performer_name: str | None = None
+    spike_grade: str | None = None
+    glaucoma: str | None = None
+    prophylaxis: bool | None = None
+    cataract_days: int | None = None
 
 
 VERSION_COLUMNS = tuple(VersionRow.__slots__)
@@ -830,6 +842,31 @@ class Store(ABC):
         """Add each version, its search rows (retiring the note's previous ones), its audit
         entry and, when forwarding, its outbox entry, all or nothing. DuplicateVersionError
         when another writer stored one of these versions first."""
+
+    # -- the clinical audit (capnote.store.audit_sql) ---------------------------------------
+
+    async def audit_figures(
+        self, start: datetime, end: datetime, site: str | None
+    ) -> list[GroupFigures]:
+        """Aggregates of the final sessions starting in [start, end), optionally at one unit:
+        all units together, each unit, each clinician within a unit (in that order)."""
+        params: dict[str, Any] = {"start": self._time(start), "end": self._time(end)}
+        if site is not None:
+            params["site"] = site
+        one = site is not None
+        out: list[GroupFigures] = []
+        for level in audit_sql.LEVELS:
+            shapes = {
+                "counts": partial(audit_sql.counts, level, one),
+                "energy": partial(audit_sql.quartile_rows, level, "total_energy_mj", one),
+                "cataract": partial(audit_sql.quartile_rows, level, "cataract_days", one),
+            }
+            rows = [
+                await self._fetch(self._variant(("audit", name, level, one), build), params)
+                for name, build in shapes.items()
+            ]
+            out += audit_sql.figures(level, *rows)
+        return out
 
     # -- notes: listings and searches ----------------------------------------------------------
 

@@ -56,6 +56,17 @@ class NoteVersion(SQLModel, table=True):
     signed_by: str | None = Field(default=None, max_length=200)
     signed_by_staff: str | None = Field(default=None, max_length=320)  # system|value
     signed_at: datetime | None = None
+    # What the clinical audit groups and counts by (capnote.audit), copied out of the note
+    # and its derived values so that the audit is SQL aggregation; None before revision 0006
+    # filled them, and for drafts kept as typed.
+    site: str | None = Field(default=None, max_length=255)
+    site_name: str | None = Field(default=None, max_length=200)
+    performer: str | None = Field(default=None, max_length=320)  # system|value
+    performer_name: str | None = Field(default=None, max_length=200)
+    spike_grade: str | None = Field(default=None, max_length=8)  # None: no reading after
+    glaucoma: str | None = Field(default=None, max_length=10)  # None: not recorded
+    prophylaxis: bool | None = None
+    cataract_days: int | None = None
 
 
 class FhirIndex(SQLModel, table=True):

@@ -1,0 +1,181 @@
+"""The audit's figures, from the store's aggregates (capnote.store.audit_sql): every rate
+with its count, denominator and 95% Wilson interval, each clinician placed on the funnel of
+the unit's rate, and the published series the local figures are set against.
+
+What capnote does not record yet (reviews attended, complications found at review) is
+reported as such, never as a number.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import UTC, date, datetime, time, timedelta
+
+from capnote.audit.stats import Rate, outside, rate
+from capnote.store.audit_sql import GroupFigures
+
+CAUTION = (
+    "These are local figures set against published series; differences in case mix "
+    "explain much; local governance decides. capnote documents and counts: it does not "
+    "judge a clinician or a unit."
+)
+NOT_RECORDED = "not yet recorded by capnote (needs review-visit records)"
+
+# The published series, as the reference table gives them (shared clinical-practice table).
+PUBLISHED_ENERGY = (
+    ("Verma and Ahuja, Delhi J Ophthalmol 2020: mean total energy", "58.6 ± 34.6 mJ"),
+    (
+        "Parajuli et al., Clin Ophthalmol 2019;13:945 (doi 10.2147/OPTH.S203677): group ≤ 50 mJ",
+        "26.6 ± 12.9 mJ",
+    ),
+    ("Parajuli et al. 2019: group > 50 mJ", "82.0 ± 32.1 mJ"),
+)
+ENERGY_BANDS_SOURCE = "energy bands 0-40, 40-80, > 80 mJ: Chawla et al., ESCRS 2014 abstract"
+SPIKE_SOURCE = (
+    "rise above the pre-laser IOP: moderate 5-9, severe ≥ 10 mmHg (Chawla et al., ESCRS "
+    "2014; the site's policy may set other thresholds). capnote's reference table holds "
+    "no published incidence to set these rates against."
+)
+PROPHYLAXIS_SOURCE = (
+    "prophylaxis advised at least in glaucoma and glaucoma suspects (Ophthalmology "
+    "Journal, Via Medica); glaucoma not recorded is counted apart, never as no glaucoma"
+)
+REVIEW_ITEMS = (
+    ("reviews attended against booked", None),
+    (
+        "complications found at review",
+        "Steinberg et al., Am J Ophthalmol 1991;112:373: retinal detachment 0.89%, "
+        "cystoid macular oedema 1.23%",
+    ),
+    ("re-treatment", None),
+)
+# Which rates a clinician is placed on the unit's funnel for.
+FUNNELS = (
+    ("iop_rise", "moderate or severe IOP rise"),
+    ("energy_over_80", "total energy above 80 mJ"),
+)
+
+
+@dataclass(frozen=True, slots=True)
+class Figures:
+    """One unit's, one clinician's or everyone's figures."""
+
+    key: str  # unit code, or system|value of the clinician; "" for all units
+    name: str
+    sessions: int
+    eyes: int
+    energy_mean: float | None
+    energy_quartiles: tuple[float, float, float] | None
+    cataract_days: tuple[float, float, float] | None
+    cataract_n: int
+    glaucoma_unrecorded: int
+    rates: dict[str, Rate]
+
+
+@dataclass(frozen=True, slots=True)
+class Placed:
+    """A clinician on the unit's funnel for one rate."""
+
+    clinician: Figures
+    measure: str
+    where: str  # capnote.audit.stats.outside, or "no denominator"
+
+
+@dataclass(frozen=True, slots=True)
+class Unit:
+    """One unit: its figures, its clinicians' and where each falls on its funnels."""
+
+    figures: Figures
+    clinicians: tuple[Figures, ...]
+    funnels: dict[str, tuple[Placed, ...]]
+
+
+@dataclass(frozen=True, slots=True)
+class Report:
+    """The whole audit of a period."""
+
+    start: date
+    end: date  # inclusive
+    site: str | None
+    clinician: str | None
+    everyone: Figures | None
+    units: tuple[Unit, ...]
+
+
+RATE_LABELS = {
+    "energy_over_80": "total energy above 80 mJ",
+    "spike_moderate": "moderate IOP rise (5-9 mmHg)",
+    "spike_severe": "severe IOP rise (≥ 10 mmHg)",
+    "iop_rise": "moderate or severe IOP rise",
+    "glaucoma_prophylaxis": "prophylaxis given in glaucoma or suspect",
+}
+
+
+def _figures(group: GroupFigures) -> Figures:
+    c = group.counts
+
+    def n(name: str) -> int:
+        value = c[name]
+        return 0 if value is None else int(value)
+
+    rises = n("spike_moderate") + n("spike_severe")
+    return Figures(
+        key=group.keys[-1] if group.keys else "",
+        name=(group.names[-1] if group.names else None) or "all units",
+        sessions=n("sessions"),
+        eyes=n("eyes"),
+        energy_mean=None if c["energy_mean"] is None else float(c["energy_mean"]),
+        energy_quartiles=group.energy,
+        cataract_days=group.cataract_days,
+        cataract_n=n("cataract_n"),
+        glaucoma_unrecorded=n("glaucoma_unrecorded"),
+        rates={
+            "energy_over_80": rate(n("energy_over_80"), n("energy_n")),
+            "spike_moderate": rate(n("spike_moderate"), n("spike_n")),
+            "spike_severe": rate(n("spike_severe"), n("spike_n")),
+            "iop_rise": rate(rises, n("spike_n")),
+            "glaucoma_prophylaxis": rate(n("glaucoma_prophylaxis"), n("glaucoma_n")),
+        },
+    )
+
+
+def _place(clinician: Figures, unit: Figures, measure: str) -> Placed:
+    mine, target = clinician.rates[measure], unit.rates[measure].value
+    if not mine.total or target is None:
+        return Placed(clinician, measure, "no denominator")
+    return Placed(clinician, measure, outside(mine.count, mine.total, target))
+
+
+def build(
+    groups: list[GroupFigures],
+    start: date,
+    end: date,
+    site: str | None,
+    clinician: str | None,
+) -> Report:
+    """The report from the store's aggregates. A clinician filter (system|value, or the
+    value alone) keeps only that clinician's rows; the units' figures stay whole, since the
+    funnel sets a clinician against the whole unit."""
+    everyone = next((_figures(g) for g in groups if g.level == "all"), None)
+    units = []
+    for group in (g for g in groups if g.level == "unit"):
+        unit = _figures(group)
+        mine = [
+            _figures(g) for g in groups if g.level == "clinician" and g.keys[0] == group.keys[0]
+        ]
+        if clinician is not None:
+            mine = [f for f in mine if f.key == clinician or f.key.endswith("|" + clinician)]
+            if not mine:
+                continue
+        funnels = {m: tuple(_place(f, unit, m) for f in mine) for m, _ in FUNNELS}
+        units.append(Unit(unit, tuple(mine), funnels))
+    if everyone is not None and everyone.sessions == 0:
+        everyone = None
+    return Report(start, end, site, clinician, everyone, tuple(units))
+
+
+def period(first: date, last: date) -> tuple[datetime, datetime]:
+    """The moments [start, end) of the days first to last, both included, in UTC."""
+    return datetime.combine(first, time(), UTC), datetime.combine(
+        last + timedelta(days=1), time(), UTC
+    )
