@@ -22,6 +22,7 @@ from capnote.fhir.identity import (
     take_home_roles,
     treatment_roles,
 )
+from capnote.fhir.narrative import narrative
 from capnote.fhir.observations import observations
 from capnote.fhir.procedure import procedure
 from capnote.fhir.profiles import profile_for
@@ -32,6 +33,7 @@ from capnote.fhir.requests import (
     service_request,
 )
 from capnote.note import Note
+from capnote.policy.model import RecordPolicy
 from capnote.schedule import DueItem
 
 
@@ -174,16 +176,22 @@ def emit(
     due: list[DueItem],
     version: Version | None = None,
     check: OutputCheck = OutputCheck.BINDINGS,
+    record: RecordPolicy | None = None,
 ) -> Emitted:
-    """The transaction Bundle and its entries' roles; raises EmissionError rather than emit
-    a bad code."""
+    """The transaction Bundle and its entries' roles, coded and linked as the site's record
+    policy says (the shipped default without one); raises EmissionError rather than emit a
+    bad code."""
     # No id or version here: a receiver assigns its own, and a conditional update must not
     # carry an id that may differ from the matched resource's. The read API adds both to
     # meta, which here holds only the profile.
     version = version or Version()
-    ctx = VersionContext(note, version)
+    ctx = VersionContext(note, version, record)
     items = entries(note, derived, due, version, ctx)
     for e in items:
+        if "text" not in e.resource:
+            text = narrative(e.resource)
+            if text is not None:
+                e.resource["text"] = text
         url = _profile(e.resource)
         if url is not None:
             # The profile it conforms to (schemas/fhir-package), so a receiver can check it.

@@ -6,7 +6,7 @@ from html import escape
 from typing import Any
 
 from capnote.derive import Derived
-from capnote.fhir import codes
+from capnote.fhir import codes, regions
 from capnote.fhir.codes import SNOMED, coding, concept, own
 from capnote.fhir.common import (
     PROCEDURE_ROLE,
@@ -102,6 +102,57 @@ def _pathway_notes(note: Note, derived: Derived) -> list[str]:
     return out
 
 
+_TIMING = {
+    "before": "before the laser",
+    "after": "after the laser",
+    "both": "before and after the laser",
+}
+
+
+def _strength(percent: float | None) -> str:
+    return f" {percent:g}%" if percent is not None else ""
+
+
+def _clinical_lines(note: Note) -> list[str]:
+    """Complications, drugs and the detachment warning, in words, for the receiver's reader."""
+    found = note.result.complications
+    named = [c.text or complication_concept(c)["text"] for c in found]
+    lines = [f"Complications: {'; '.join(named) if named else 'none recorded'}."]
+    plan = note.plan
+    drugs = [
+        f"{d.agent}{_strength(d.strength_percent)} {_TIMING[d.timing]}" for d in plan.prophylaxis
+    ]
+    drugs += [
+        f"{t.agent}{_strength(t.strength_percent)} {t.dose:g} {t.dose_unit} {t.route} "
+        "for a raised IOP"
+        for t in note.result.pressure_treatment
+    ]
+    if drugs:
+        lines.append("Drugs given in clinic: " + "; ".join(drugs) + ".")
+    home = [
+        f"{d.agent}{_strength(d.strength_percent)} {d.times_per_day} times a day for "
+        f"{d.days} days"
+        for d in plan.take_home
+    ]
+    if home:
+        lines.append("Drops to take home: " + "; ".join(home) + ".")
+    lines.append(
+        "Retinal detachment warning (flashes, floaters, a shadow or curtain: seek care at "
+        "once): "
+        + ("given to the patient." if plan.rd_warning_given else "NOT recorded as given.")
+    )
+    return lines
+
+
+def _billing_notes(ctx: VersionContext) -> list[str]:
+    """The site's CPT global period, where the region codes CPT and the site states one (the
+    sources disagree, so capnote never states one itself: clinical-practice.md)."""
+    days = ctx.record.cpt_global_period_days
+    if ctx.record.region != "united-states" or days is None:
+        return []
+    return [f"CPT 66821 global period: {days} days (site policy)."]
+
+
 def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, str]:
     """A short XHTML summary; clinical content only, no identifiers."""
     opening = note.result.opening
@@ -120,6 +171,7 @@ def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, st
         f"(spike grade {derived.iop.spike_grade}).",
     ]
     lines += _pathway_notes(note, derived)
+    lines += _clinical_lines(note)
     lines += [f"{item.title}: {item.target.date().isoformat()}." for item in due]
     lines.append(
         "Thresholds are literature defaults; local protocol and the treating clinician decide."
@@ -148,7 +200,8 @@ def procedure(ctx: VersionContext, derived: Derived, due: list[DueItem]) -> Entr
         # Observations preliminary instead.
         "status": ctx.status("completed"),
         "code": concept(
-            coding(SNOMED, codes.DISCISSION_SECONDARY_MEMBRANE),
+            coding(SNOMED, codes.DISCISSION_SECONDARY_MEMBRANE, codes.DISCISSION_DISPLAY),
+            *regions.procedure_codings(ctx.record.region),
             own("yag-posterior-capsulotomy"),
             text="Nd:YAG laser posterior capsulotomy",
         ),
@@ -163,7 +216,7 @@ def procedure(ctx: VersionContext, derived: Derived, due: list[DueItem]) -> Entr
     resource["location"] = location
     resource["reasonCode"] = [
         concept(
-            coding(codes.ICD10CM, codes.PCO_ICD10[note.eye]),
+            *regions.diagnosis_codings(ctx.record.region, note.eye),
             own("posterior-capsule-opacification"),
             text="Posterior capsule opacification",
         )
@@ -185,7 +238,7 @@ def procedure(ctx: VersionContext, derived: Derived, due: list[DueItem]) -> Entr
             concept(text=f"{item.title}: {item.target.date().isoformat()}") for item in due
         ]
     resource["usedCode"] = used
-    notes = _session_notes(note) + _pathway_notes(note, derived)
+    notes = _session_notes(note) + _pathway_notes(note, derived) + _billing_notes(ctx)
     if notes:
         resource["note"] = [{"text": text} for text in notes]
     key = ctx.keys.key(PROCEDURE_ROLE)
