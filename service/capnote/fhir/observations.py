@@ -25,7 +25,8 @@ _METHOD = {
 
 # Built once and shared by every Observation (never mutated): category and eye codes.
 _CATEGORY = {
-    c: concept(coding(OBS_CATEGORY, c, codes.OBS_CATEGORY_DISPLAY[c])) for c in ("exam", "procedure")
+    c: concept(coding(OBS_CATEGORY, c, codes.OBS_CATEGORY_DISPLAY[c]))
+    for c in ("exam", "procedure")
 }
 _BODY_SITE = {
     eye: concept(coding(SNOMED, codes.EYE_STRUCTURE[eye], codes.EYE_DISPLAY[eye]))

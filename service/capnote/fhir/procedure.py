@@ -130,17 +130,13 @@ def _clinical_lines(note: Note) -> list[str]:
     if drugs:
         lines.append("Drugs given in clinic: " + "; ".join(drugs) + ".")
     home = [
-        f"{d.agent}{_strength(d.strength_percent)} {d.times_per_day} times a day for "
-        f"{d.days} days"
+        f"{d.agent}{_strength(d.strength_percent)} {d.times_per_day} times a day for {d.days} days"
         for d in plan.take_home
     ]
     if home:
         lines.append("Drops to take home: " + "; ".join(home) + ".")
-    lines.append(
-        "Retinal detachment warning (flashes, floaters, a shadow or curtain: seek care at "
-        "once): "
-        + ("given to the patient." if plan.rd_warning_given else "NOT recorded as given.")
-    )
+    given = "given to the patient" if plan.rd_warning_given else "NOT recorded as given"
+    lines.append(f"Retinal detachment warning: {given}.")
     return lines
 
 
