@@ -142,3 +142,27 @@ def test_narrative_says_when_the_detachment_warning_was_not_given() -> None:
     div = procedure_of(bundle_of(in_region("england"), data))["text"]["div"]
     assert "NOT recorded as given" in div
     assert "Complications: none recorded." in div
+
+
+@pytest.mark.parametrize(("eye", "structure"), [("right", "18944008"), ("left", "8966001")])
+def test_eye_drops_name_the_eye_as_dosage_site(eye: str, structure: str) -> None:
+    # coding.md [confirmed]: right eye structure 18944008, left 8966001 (SNOMED CT).
+    path = next(p for p in VALID if p.name == "right-iop-spike.json")
+    data = json.loads(path.read_text())
+    data["eye"] = eye
+    bundle = bundle_of(in_region("england"), data)
+    dosages = []
+    for entry in bundle["entry"]:
+        r = entry["resource"]
+        if r["resourceType"] == "MedicationAdministration":
+            dosages.append(r["dosage"])
+        elif r["resourceType"] == "MedicationRequest":
+            dosages += r["dosageInstruction"]
+    drops = [d for d in dosages if "drop" in d["text"]]
+    assert drops  # prophylaxis and take-home drops
+    for dosage in drops:
+        assert systems(dosage["site"]) == {SNOMED: structure}
+    # A drug taken by mouth has no site on the eye.
+    oral = [d for d in dosages if " oral " in d["text"]]
+    assert oral
+    assert all("site" not in d for d in oral)
