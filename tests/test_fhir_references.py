@@ -15,6 +15,7 @@ import httpx
 import pytest
 
 from capnote.assess import Assessor
+from capnote.config import Settings, effective_policy
 from capnote.errors import PolicyError
 from capnote.fhir import profiles
 from capnote.fhir.profile_check import check_profile
@@ -186,3 +187,14 @@ def test_literal_mode_needs_a_base(tmp_path: Any) -> None:
     site.write_text('[record]\nreferences = "literal"\nreference_base = "ehr.example"\n')
     with pytest.raises(PolicyError, match="http"):
         load_policy(site)
+
+
+def test_settings_choose_the_mode_over_the_policy() -> None:
+    chosen = effective_policy(
+        Settings(fhir_references="literal", fhir_reference_base="https://ehr.example/fhir")
+    )
+    assert chosen.record.references == "literal"
+    assert chosen.record.reference_base == "https://ehr.example/fhir"
+    assert chosen.record.region == "england"  # the policy's, untouched
+    with pytest.raises(PolicyError, match="reference_base"):
+        effective_policy(Settings(fhir_references="literal"))
