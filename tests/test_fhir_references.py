@@ -20,10 +20,13 @@ from capnote.errors import PolicyError
 from capnote.fhir import profiles
 from capnote.fhir.profile_check import check_profile
 from capnote.fhir.validate import validate_resource
+from capnote.notes import NoteService, Principal
 from capnote.policy import load_policy
-from tests.conftest import NOW, routine
+from capnote.store.database import migrate, open_store
+from tests.conftest import NOW, SyncNotes, routine
 from tests.fhir_r4_check import r4_problems
 from tests.fhir_receiver import FHIR, Store, running
+from tests.test_delivery import Clock, drain, worker_for
 
 AUTH = {"Authorization": "Bearer receiver-secret", "Content-Type": FHIR}
 
@@ -33,6 +36,12 @@ def receiver() -> Iterator[tuple[Store, str]]:
     store = Store()
     with running(store) as url:
         yield store, url
+
+
+def conditional_assessor() -> Assessor:
+    policy = load_policy()
+    record = policy.record.model_copy(update={"references": "conditional"})
+    return Assessor(policy.model_copy(update={"record": record}))
 
 
 def emitted(mode: str, base: str | None = None, data: dict[str, Any] | None = None) -> Any:
@@ -198,3 +207,33 @@ def test_settings_choose_the_mode_over_the_policy() -> None:
     assert chosen.record.region == "england"  # the policy's, untouched
     with pytest.raises(PolicyError, match="reference_base"):
         effective_policy(Settings(fhir_references="literal"))
+
+
+def test_capnote_forwards_conditional_references_and_parks_an_unknown_patient(
+    receiver: tuple[Store, str], tmp_path: Any
+) -> None:
+    # End to end: notes stored by capnote (a real SQLite file), forwarded by its delivery
+    # worker over HTTP. The patient the hospital holds is linked; the one it does not is
+    # refused whole by the receiver and parked with the receiver's OperationOutcome.
+    store, url = receiver
+    database = f"sqlite:///{tmp_path / 'capnote.sqlite3'}"
+    migrate(database)
+    clock = Clock()
+    service = SyncNotes(
+        NoteService(open_store(database), conditional_assessor(), clock, forward=True)
+    )
+    try:
+        known, unknown = other_patient("FWD-KNOWN"), other_patient("FWD-UNKNOWN")
+        patient_id = chart(store, known)
+        for data in (known, unknown):
+            service.submit(json.dumps(data).encode(), Principal("forward test", "submitter"))
+        worker = worker_for(service, url, clock)
+        drain(service, worker, clock, rounds=3)
+        service.run(worker.aclose())
+        by_state = {e.state: e for e in service.run(service.store.outbox(None, 10))}
+    finally:
+        service.close()
+    assert set(by_state) == {"delivered", "failed"}
+    assert by_state["failed"].last_status == 404
+    assert "no resource" in (by_state["failed"].last_error or "")
+    assert len(found_for(url, patient_id)) == 1
