@@ -10,7 +10,9 @@ from typing import Any
 import pytest
 
 from capnote.assess import Assessor
+from capnote.fhir import profiles
 from capnote.fhir.common import DEFAULT_RECORD
+from capnote.fhir.profile_check import check_profile
 from capnote.fhir.regions import CPT, ICD10CM
 from capnote.fhir.validate import validate_resource
 from capnote.policy import load_policy
@@ -124,6 +126,12 @@ def test_every_coding_has_a_display_and_every_resource_a_narrative(region: str, 
         assert text["div"].startswith('<div xmlns="http://www.w3.org/1999/xhtml"><p>')
     assert r4_problems(bundle) == []  # google-fhir-r4 and the core invariants (txt-1, ...)
     assert [f.message for f in validate_resource(bundle) if f.blocking] == []
+    for entry in bundle["entry"]:  # and capnote's published profiles, in either region
+        url = profiles.profile_for(entry["resource"])
+        assert url is not None
+        sd = profiles.profile(url)
+        assert sd is not None
+        assert check_profile(entry["resource"], sd) == [], url
 
 
 def test_procedure_narrative_names_complications_drugs_and_the_detachment_warning() -> None:
