@@ -3,6 +3,7 @@ resource (issue 15, section 4)."""
 
 from __future__ import annotations
 
+import copy
 import json
 from pathlib import Path
 from typing import Any
@@ -11,12 +12,13 @@ import pytest
 
 from capnote.assess import Assessor
 from capnote.fhir import profiles
-from capnote.fhir.common import DEFAULT_RECORD
+from capnote.fhir.common import DEFAULT_RECORD, Emitted, Version
 from capnote.fhir.profile_check import check_profile
 from capnote.fhir.regions import CPT, ICD10CM
 from capnote.fhir.validate import validate_resource
 from capnote.policy import load_policy
 from capnote.policy.model import Policy
+from capnote.rules import Context, check_payload
 from tests.conftest import NOW, VALID, routine
 from tests.fhir_r4_check import r4_problems
 
@@ -174,3 +176,48 @@ def test_eye_drops_name_the_eye_as_dosage_site(eye: str, structure: str) -> None
     oral = [d for d in dosages if " oral " in d["text"]]
     assert oral
     assert all("site" not in d for d in oral)
+
+
+def _version(assessor: Assessor, data: dict[str, Any], version: Version) -> Emitted:
+    note, findings = check_payload(json.dumps(data), Context(assessor.policy, NOW))
+    assert note is not None
+    result = assessor.complete(note, findings, version=version)
+    assert result.bundle is not None
+    return Emitted(result.bundle, result.roles)
+
+
+def test_a_voided_record_says_so_in_every_narrative() -> None:
+    # The status is a modifier element: a reader of text.div alone must see the withdrawal.
+    assessor = in_region("england")
+    v1 = _version(assessor, routine(), Version(1))
+    v2 = _version(assessor, routine(), Version(2, voided=True, previous=v1))
+    for entry in v2.bundle["entry"]:
+        resource = entry["resource"]
+        div = resource["text"]["div"]
+        if resource["resourceType"] == "Procedure":
+            assert "ENTERED IN ERROR" in div
+        else:
+            assert f"Status: {resource['status']}" in div
+            assert resource["status"] in {"entered-in-error", "revoked", "cancelled"}
+
+
+def test_an_amendment_keeps_unchanged_statuses_whatever_the_narrative() -> None:
+    # A version stored before Observations had a narrative must not make every Observation
+    # of the amendment look changed (bundle.restatused compares without status and text).
+    assessor = in_region("england")
+    data = routine()
+    data["status"] = "final"
+    v1 = _version(assessor, data, Version(1))
+    for entry in v1.bundle["entry"]:
+        if entry["resource"]["resourceType"] == "Observation":
+            del entry["resource"]["text"]
+    changed = copy.deepcopy(data)
+    changed["result"]["opening"]["horizontal_mm"] = 4.0
+    v2 = _version(assessor, changed, Version(2, amends_final=True, previous=v1))
+    statuses = {
+        e["resource"]["status"]
+        for e in v2.bundle["entry"]
+        if e["resource"]["resourceType"] == "Observation"
+    }
+    assert "final" in statuses  # the untouched ones (IOP, acuity, series) stay final
+    assert "amended" in statuses or "corrected" in statuses  # the opening changed

@@ -133,7 +133,9 @@ def restatused(items: list[Entry], previous: Emitted) -> None:
 
 
 def _without_status(resource: dict[str, Any]) -> dict[str, Any]:
-    return {k: v for k, v in resource.items() if k != "status"}
+    # The narrative is left out too: it restates the status, and a version stored before
+    # Observations had one must not look changed for want of it.
+    return {k: v for k, v in resource.items() if k not in ("status", "text")}
 
 
 class OutputCheck(StrEnum):
@@ -188,10 +190,6 @@ def emit(
     ctx = VersionContext(note, version, record)
     items = entries(note, derived, due, version, ctx)
     for e in items:
-        if "text" not in e.resource:
-            text = narrative(e.resource)
-            if text is not None:
-                e.resource["text"] = text
         url = _profile(e.resource)
         if url is not None:
             # The profile it conforms to (schemas/fhir-package), so a receiver can check it.
@@ -200,6 +198,12 @@ def emit(
         if ctx.amended:
             restatused(items, version.previous)
         items += withdrawn(version.previous, {e.key for e in items})
+    for e in items:
+        # Written last, once every status is settled: the narrative states the status, a
+        # modifier element (R4 narrative.html), so a withdrawn resource's says withdrawn.
+        text = narrative(e.resource)
+        if text is not None:
+            e.resource["text"] = text
     result: dict[str, Any] = {
         "resourceType": "Bundle",
         "identifier": {"system": RESOURCE_KEY, "value": ctx.keys.key("bundle")},

@@ -1,9 +1,10 @@
-"""A readable narrative (text.div) for every emitted resource that has none of its own.
+"""A readable narrative (text.div) for every emitted resource but the Procedure, which
+builds its own (capnote.fhir.procedure).
 
-A receiving record shows text.div when it cannot render the coded content (FHIR R4
-narrative.html: "the narrative SHALL reflect the impact of all modifier elements" and should
-let a person read the resource), so each line here is what the resource says, in words: the
-code's text, the value, the eye, the time and the status.
+A receiving record shows text.div to a person when it does not render the coded content
+(FHIR R4 narrative.html), and the narrative must not hide a modifier such as the status, so
+each line here is what the resource says, in words: the code's text, the value, the eye,
+the time and the status. bundle.emit writes it once every status is settled.
 """
 
 from __future__ import annotations

@@ -149,7 +149,9 @@ def _billing_notes(ctx: VersionContext) -> list[str]:
     return [f"CPT 66821 global period: {days} days (site policy)."]
 
 
-def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, str]:
+def _narrative(
+    note: Note, derived: Derived, due: list[DueItem], voided: bool = False
+) -> dict[str, str]:
     """A short XHTML summary; clinical content only, no identifiers."""
     opening = note.result.opening
     size = "not recorded"
@@ -166,6 +168,9 @@ def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, st
         f"IOP {note.before.iop.value_mmhg:g} mmHg before; after: {after} mmHg "
         f"(spike grade {derived.iop.spike_grade}).",
     ]
+    if voided:
+        # Status is a modifier: the reader must see that this record was withdrawn.
+        lines.insert(0, "ENTERED IN ERROR: this record has been voided.")
     lines += _pathway_notes(note, derived)
     lines += _clinical_lines(note)
     lines += [f"{item.title}: {item.target.date().isoformat()}." for item in due]
@@ -190,7 +195,7 @@ def procedure(ctx: VersionContext, derived: Derived, due: list[DueItem]) -> Entr
         used.append(concept(own("capsulotomy-contact-lens"), text=named))
     resource: dict[str, Any] = {
         "resourceType": "Procedure",
-        "text": _narrative(note, derived, due),
+        "text": _narrative(note, derived, due, ctx.voided),
         "identifier": [fhir_identifier(note.note_id)],
         # The procedure happened whatever the note's state; a draft note marks its
         # Observations preliminary instead.
