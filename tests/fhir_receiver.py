@@ -2,7 +2,10 @@
 
 It implements the parts of FHIR R4 that delivery relies on (Bundle transaction, urn:uuid
 reference resolution, conditional create with ifNoneExist: no match 201, one match 200,
-several 412; conditional update by identifier; all-or-nothing) and can be told to fail:
+several 412; conditional update by identifier; all-or-nothing; conditional references
+``Patient?identifier=system|value`` resolved inside the transaction, which fails when they
+match no or several resources; literal references checked to exist, as a server with
+referential integrity does; a ``patient=`` search) and can be told to fail:
 answer 500 before doing anything, do the work and answer 500 (the answer is lost), do the
 work and answer too late for the client's timeout, answer 429 with Retry-After, or 400;
 and, through Dropper, a proxy in front of it, drop the connection before or after the work.
@@ -38,6 +41,28 @@ class Store:
         self.faults: list[str] = []
         self.transactions = 0
         self.applied = 0
+        # The base URL the receiver serves (set by running()): literal references under it
+        # name its own resources.
+        self.base = ""
+
+    def put(self, resource: dict[str, Any], rid: str | None = None) -> str:
+        """Hold a resource the hospital record already has (a Patient, say); its id."""
+        rid = rid or uuid.uuid4().hex
+        stored = {**resource, "id": rid, "meta": {"versionId": "1"}}
+        self.resources.setdefault(resource["resourceType"], {})[rid] = [stored]
+        return rid
+
+    def linked(self, kind: str, patient: str) -> list[dict[str, Any]]:
+        """Current resources of kind whose subject (or patient) is the literal reference
+        patient ("Patient/<id>"): what a patient= search finds."""
+        out = []
+        for versions in self.resources.get(kind, {}).values():
+            current = versions[-1]
+            for field in ("subject", "patient"):
+                if (current.get(field) or {}).get("reference") == patient:
+                    out.append(current)
+                    break
+        return out
 
     def matches(self, kind: str, query: str) -> list[str]:
         """Ids of current resources of kind whose identifier matches identifier=system|value."""
@@ -76,6 +101,45 @@ def _resolve(node: Any, ids: dict[str, str]) -> Any:
     return node
 
 
+def _references(node: Any) -> Iterator[str]:
+    if isinstance(node, dict):
+        ref = node.get("reference")
+        if isinstance(ref, str):
+            yield ref
+        for value in node.values():
+            yield from _references(value)
+    elif isinstance(node, list):
+        for value in node:
+            yield from _references(value)
+
+
+def _link(shadow: Store, bundle: dict[str, Any], ids: dict[str, str]) -> tuple[int, str] | None:
+    """Resolve every conditional and literal reference of the transaction into ids, or say
+    why the transaction fails. FHIR R4 http.html, transaction, "Conditional References":
+    the server finds the one match; "If there are no matches, or multiple matches, the
+    transaction fails"."""
+    for entry in bundle.get("entry", []):
+        for ref in _references(entry.get("resource", {})):
+            if ref in ids or ref.startswith(("urn:", "#")):
+                continue
+            local = ref.removeprefix(shadow.base + "/") if shadow.base else ref
+            if "?" in local:
+                kind, query = local.split("?", 1)
+                found = shadow.matches(kind, query)
+                if len(found) != 1:
+                    many = "several resources" if found else "no resource"
+                    return 412 if found else 404, f"conditional reference matches {many}"
+                ids[ref] = f"{kind}/{found[0]}"
+            elif local.count("/") == 1:
+                kind, rid = local.split("/")
+                if rid not in shadow.resources.get(kind, {}):
+                    return 404, "a reference names a resource this server does not hold"
+                ids[ref] = local
+            else:
+                return 400, "a reference to another server"
+    return None
+
+
 def apply(store: Store, bundle: dict[str, Any]) -> tuple[int, dict[str, Any] | str]:
     """Run a transaction on a copy and keep it only when every entry succeeds."""
     if bundle.get("resourceType") != "Bundle" or bundle.get("type") != "transaction":
@@ -83,6 +147,7 @@ def apply(store: Store, bundle: dict[str, Any]) -> tuple[int, dict[str, Any] | s
     staged = copy.deepcopy(store.resources)
     shadow = Store()
     shadow.resources = staged
+    shadow.base = store.base
     ids: dict[str, str] = {}
     plan: list[tuple[str, str, str, bool]] = []  # kind, id, status, is_new_version
     for entry in bundle.get("entry", []):
@@ -123,6 +188,9 @@ def apply(store: Store, bundle: dict[str, Any]) -> tuple[int, dict[str, Any] | s
             )
         else:
             return 400, "unsupported request in transaction"
+    failed = _link(shadow, bundle, ids)
+    if failed is not None:
+        return failed
     answers = []
     for entry, (kind, rid, status, write) in zip(bundle.get("entry", []), plan, strict=True):
         if write:
@@ -166,6 +234,20 @@ def receiver_app(store: Store, late_s: float = 3.0) -> FastAPI:
             return _outcome(status, body)
         return Response(orjson.dumps(body), status, media_type=FHIR)
 
+    @app.get("/fhir/{kind}")
+    async def search(kind: str, patient: str) -> Response:
+        # patient=Patient/<id> or a bare id (R4 search, reference parameters).
+        literal = patient if "/" in patient else f"Patient/{patient}"
+        with store.lock:
+            found = store.linked(kind, literal)
+        body = {
+            "resourceType": "Bundle",
+            "type": "searchset",
+            "total": len(found),
+            "entry": [{"resource": r, "search": {"mode": "match"}} for r in found],
+        }
+        return Response(orjson.dumps(body), 200, media_type=FHIR)
+
     return app
 
 
@@ -187,8 +269,9 @@ def running(store: Store, late_s: float = 3.0) -> Iterator[str]:
         if time.monotonic() > deadline:
             raise RuntimeError("receiver did not start")
         time.sleep(0.05)
+    store.base = f"http://127.0.0.1:{port}/fhir"
     try:
-        yield f"http://127.0.0.1:{port}/fhir"
+        yield store.base
     finally:
         server.should_exit = True
         thread.join(timeout=20)

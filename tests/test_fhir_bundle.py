@@ -68,22 +68,22 @@ def test_every_demo_bundle_parses_as_r4b(assessor: Assessor, path: Path) -> None
 
 
 @pytest.mark.parametrize(
-    ("eye", "structure", "iop_loinc", "icd"),
+    ("eye", "structure", "iop_loinc"),
     [
         # coding.md [confirmed]: right eye 18944008 with IOP LOINC 79892-6 (one public file swaps
         # right and left; this pins right to 79892-6), left 8966001 with 79893-4.
-        ("right", "18944008", "79892-6", "H26.491"),
-        ("left", "8966001", "79893-4", "H26.492"),
+        # The region's diagnosis codes by eye: tests/test_fhir_regions.py.
+        ("right", "18944008", "79892-6"),
+        ("left", "8966001", "79893-4"),
     ],
 )
-def test_eye_codes(assessor: Assessor, eye: str, structure: str, iop_loinc: str, icd: str) -> None:
+def test_eye_codes(assessor: Assessor, eye: str, structure: str, iop_loinc: str) -> None:
     data = routine()
     data["eye"] = eye
     bundle = assessed(assessor, data).bundle
     assert bundle is not None
     [proc] = resources(bundle, "Procedure")
     assert codes_of(proc["bodySite"][0], SNOMED) == [structure]
-    assert codes_of(proc["reasonCode"][0], "http://hl7.org/fhir/sid/icd-10-cm") == [icd]
     iops = [
         o for o in resources(bundle, "Observation") if codes_of(o["code"], LOINC) == [iop_loinc]
     ]

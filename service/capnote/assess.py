@@ -75,5 +75,5 @@ class Assessor:
         """Derive, schedule and emit for a note that passed its checks."""
         derived = derive(note, self.policy, prior)
         due = schedule(note, derived, self.policy, self.calendar)
-        emitted = emit(note, derived, due, version, self.output_check)
+        emitted = emit(note, derived, due, version, self.output_check, self.policy.record)
         return Assessment(note, findings, derived, tuple(due), emitted.bundle, emitted.roles)

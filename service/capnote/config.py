@@ -9,12 +9,14 @@ import ipaddress
 from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
-from pydantic import Field, field_validator
+from pydantic import Field, ValidationError, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from capnote.errors import PolicyError
 from capnote.fhir.bundle import OutputCheck
 from capnote.logs import LogFormat, LogLevel
 from capnote.policy import Policy, load_policy
+from capnote.policy.model import RecordPolicy, ReferenceMode
 
 if TYPE_CHECKING:
     from capnote.delivery import Receiver
@@ -77,6 +79,10 @@ class Settings(BaseSettings):
     # How each emitted Bundle is checked before it leaves: "bindings" (required code
     # bindings; the default) or "r4b" (also the whole Bundle through the R4B models).
     output_check: OutputCheck = OutputCheck.BINDINGS
+    # How the emitted record refers to patient, encounter and performer, over the site
+    # policy's [record] table: the receiving server is a deployment's, so is its base.
+    fhir_references: ReferenceMode | None = None
+    fhir_reference_base: str | None = None
 
     @field_validator("trusted_proxies")
     @classmethod
@@ -115,6 +121,7 @@ def effective_policy(settings: Settings) -> Policy:
         )
         if value is not None
     }
+    policy = _record_overrides(policy, settings)
     if not overrides:
         return policy
     if settings.holiday_country is not None and settings.holiday_subdivision is None:
@@ -122,3 +129,21 @@ def effective_policy(settings: Settings) -> Policy:
         overrides["holiday_subdivision"] = None
     calendar = policy.calendar.model_copy(update=overrides)
     return policy.model_copy(update={"calendar": calendar})
+
+
+def _record_overrides(policy: Policy, settings: Settings) -> Policy:
+    """The policy's [record] table with CAPNOTE_FHIR_REFERENCES and _BASE laid on top."""
+    update: dict[str, str] = {}
+    if settings.fhir_references is not None:
+        update["references"] = settings.fhir_references
+    if settings.fhir_reference_base is not None:
+        update["reference_base"] = settings.fhir_reference_base
+    if not update:
+        return policy
+    data = {**policy.record.model_dump(), **update, "source": "settings (CAPNOTE_FHIR_*)"}
+    try:
+        record = RecordPolicy.model_validate(data)
+    except ValidationError as exc:
+        problems = "; ".join(str(e["msg"]) for e in exc.errors())
+        raise PolicyError(f"CAPNOTE_FHIR_REFERENCES / _REFERENCE_BASE: {problems}") from exc
+    return policy.model_copy(update={"record": record})

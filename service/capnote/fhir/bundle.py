@@ -22,6 +22,7 @@ from capnote.fhir.identity import (
     take_home_roles,
     treatment_roles,
 )
+from capnote.fhir.narrative import narrative
 from capnote.fhir.observations import observations
 from capnote.fhir.procedure import procedure
 from capnote.fhir.profiles import profile_for
@@ -32,6 +33,7 @@ from capnote.fhir.requests import (
     service_request,
 )
 from capnote.note import Note
+from capnote.policy.model import RecordPolicy
 from capnote.schedule import DueItem
 
 
@@ -131,7 +133,9 @@ def restatused(items: list[Entry], previous: Emitted) -> None:
 
 
 def _without_status(resource: dict[str, Any]) -> dict[str, Any]:
-    return {k: v for k, v in resource.items() if k != "status"}
+    # The narrative is left out too: it restates the status, and a version stored before
+    # Observations had one must not look changed for want of it.
+    return {k: v for k, v in resource.items() if k not in ("status", "text")}
 
 
 class OutputCheck(StrEnum):
@@ -174,14 +178,16 @@ def emit(
     due: list[DueItem],
     version: Version | None = None,
     check: OutputCheck = OutputCheck.BINDINGS,
+    record: RecordPolicy | None = None,
 ) -> Emitted:
-    """The transaction Bundle and its entries' roles; raises EmissionError rather than emit
-    a bad code."""
+    """The transaction Bundle and its entries' roles, coded and linked as the site's record
+    policy says (the shipped default without one); raises EmissionError rather than emit a
+    bad code."""
     # No id or version here: a receiver assigns its own, and a conditional update must not
     # carry an id that may differ from the matched resource's. The read API adds both to
     # meta, which here holds only the profile.
     version = version or Version()
-    ctx = VersionContext(note, version)
+    ctx = VersionContext(note, version, record)
     items = entries(note, derived, due, version, ctx)
     for e in items:
         url = _profile(e.resource)
@@ -192,6 +198,12 @@ def emit(
         if ctx.amended:
             restatused(items, version.previous)
         items += withdrawn(version.previous, {e.key for e in items})
+    for e in items:
+        # Written last, once every status is settled: the narrative states the status, a
+        # modifier element (R4 narrative.html), so a withdrawn resource's says withdrawn.
+        text = narrative(e.resource)
+        if text is not None:
+            e.resource["text"] = text
     result: dict[str, Any] = {
         "resourceType": "Bundle",
         "identifier": {"system": RESOURCE_KEY, "value": ctx.keys.key("bundle")},

@@ -11,7 +11,6 @@ from typing import Any, Final
 
 SNOMED: Final = "http://snomed.info/sct"
 LOINC: Final = "http://loinc.org"
-ICD10CM: Final = "http://hl7.org/fhir/sid/icd-10-cm"
 UCUM: Final = "http://unitsofmeasure.org"
 OBS_CATEGORY: Final = "http://terminology.hl7.org/CodeSystem/observation-category"
 
@@ -24,7 +23,9 @@ FINDING_CS: Final = f"{CANONICAL}/CodeSystem/finding"
 EYE_STRUCTURE: Final = {"right": "18944008", "left": "8966001"}
 EYE_DISPLAY: Final = {"right": "Right eye structure", "left": "Left eye structure"}
 DISCISSION_SECONDARY_MEMBRANE: Final = "9137006"
+DISCISSION_DISPLAY: Final = "Discission of membranous cataract, secondary"
 IOP_OBSERVABLE: Final = "41633001"
+IOP_OBSERVABLE_DISPLAY: Final = "Intraocular pressure"
 OUTCOME: Final = {
     "complete": ("385669000", "Successful"),
     "partial": ("385670004", "Partially successful"),
@@ -34,9 +35,17 @@ OUTCOME: Final = {
 # LOINC, [confirmed]; right is 79892-6 (one public file swaps them; a test pins it).
 IOP_BY_EYE: Final = {"right": "79892-6", "left": "79893-4"}
 BCVA_SNELLEN_BY_EYE: Final = {"right": "79880-1", "left": "79881-9"}
-
-# ICD-10-CM H26.49x "other secondary cataract", by eye.
-PCO_ICD10: Final = {"right": "H26.491", "left": "H26.492"}
+# Displays: coding.md's meaning of each code.
+IOP_BY_EYE_DISPLAY: Final = {
+    "right": "Right eye intraocular pressure",
+    "left": "Left eye intraocular pressure",
+}
+BCVA_SNELLEN_DISPLAY: Final = {
+    "right": "Best corrected visual acuity, right eye (Snellen)",
+    "left": "Best corrected visual acuity, left eye (Snellen)",
+}
+# The displays of the observation-category CodeSystem (terminology.hl7.org).
+OBS_CATEGORY_DISPLAY: Final = {"exam": "Exam", "procedure": "Procedure"}
 
 # The project's own CodeSystem: code -> (display, definition).
 CONCEPTS: Final[dict[str, tuple[str, str]]] = {

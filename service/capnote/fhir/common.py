@@ -17,6 +17,7 @@ from urllib.parse import quote
 
 from capnote.fhir.codes import CANONICAL, RESOURCE_KEY
 from capnote.note import Identifier, Note
+from capnote.policy.model import RecordPolicy
 
 _NAMESPACE = uuid.uuid5(uuid.NAMESPACE_URL, CANONICAL)
 
@@ -164,24 +165,66 @@ class Version:
     previous: Emitted | None = None
 
 
+# What the shipped policy's [record] table says (policy/default.toml), for callers without a
+# policy at hand; tests/test_fhir_references.py checks the two agree.
+DEFAULT_RECORD = RecordPolicy(
+    region="england",
+    references="identifier",
+    source="capnote demo clinic (England): set to the site's region and to what its "
+    "receiving record resolves",
+)
+
+# A FHIR id (R4 datatypes, id): a site number that is not one cannot name a literal reference.
+_FHIR_ID = re.compile(r"[A-Za-z0-9\-.]{1,64}")
+
+
+def reference_to(
+    kind: str, identifier: Identifier, record: RecordPolicy, display: str | None = None
+) -> dict[str, Any]:
+    """A reference to a resource the receiver holds (Patient, Encounter, Practitioner), in
+    the site's reference mode; the identifier is always kept, so a receiver that resolves
+    nothing still knows whom it names.
+
+    conditional: ``Patient?identifier=system|value``, which the receiver resolves inside the
+    transaction and fails on no or several matches (FHIR R4 http.html, transaction,
+    "Conditional References"). literal: ``[reference_base]/Patient/[value]``, for a record
+    whose ids are the site's numbers; a number that is not a FHIR id stays identifier-only.
+    """
+    out: dict[str, Any] = {}
+    if record.references == "conditional":
+        out["reference"] = f"{kind}?{identifier_query(identifier.system, identifier.value)}"
+    elif (
+        record.references == "literal"
+        and record.reference_base is not None
+        and _FHIR_ID.fullmatch(identifier.value)
+    ):
+        out["reference"] = f"{record.reference_base.rstrip('/')}/{kind}/{identifier.value}"
+    out["identifier"] = fhir_identifier(identifier)
+    if display is not None:
+        out["display"] = display
+    return out
+
+
 class VersionContext:
     """What every resource of one note version shares: references, version and state."""
 
-    def __init__(self, note: Note, version: Version | None = None) -> None:
+    def __init__(
+        self, note: Note, version: Version | None = None, record: RecordPolicy | None = None
+    ) -> None:
         version = version or Version()
+        self.record = record = record or DEFAULT_RECORD
         self.note = note
         self.keys = KeyMaker(note)
         self.version = version.number
         self.voided = version.voided
         self.amended = version.amends_final and note.status == "final"
-        self.subject: dict[str, Any] = {"identifier": fhir_identifier(note.patient)}
+        self.subject = reference_to("Patient", note.patient, record)
         self.encounter: dict[str, Any] | None = (
-            {"identifier": fhir_identifier(note.encounter)} if note.encounter else None
+            reference_to("Encounter", note.encounter, record) if note.encounter else None
         )
-        self.clinician: dict[str, Any] = {
-            "identifier": fhir_identifier(note.performer.identifier),
-            "display": note.performer.name,
-        }
+        self.clinician = reference_to(
+            "Practitioner", note.performer.identifier, record, note.performer.name
+        )
         self.draft = note.status == "draft"
 
     def status(self, current: str, *, draft: str | None = None, amended: str | None = None) -> str:

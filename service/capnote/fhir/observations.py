@@ -24,7 +24,10 @@ _METHOD = {
 
 
 # Built once and shared by every Observation (never mutated): category and eye codes.
-_CATEGORY = {c: concept(coding(OBS_CATEGORY, c)) for c in ("exam", "procedure")}
+_CATEGORY = {
+    c: concept(coding(OBS_CATEGORY, c, codes.OBS_CATEGORY_DISPLAY[c]))
+    for c in ("exam", "procedure")
+}
 _BODY_SITE = {
     eye: concept(coding(SNOMED, codes.EYE_STRUCTURE[eye], codes.EYE_DISPLAY[eye]))
     for eye in codes.EYE_STRUCTURE
@@ -73,8 +76,8 @@ class ObservationMaker:
         """An IOP reading, coded by eye."""
         eye = self.ctx.note.eye
         code = concept(
-            coding(LOINC, codes.IOP_BY_EYE[eye]),
-            coding(SNOMED, codes.IOP_OBSERVABLE),
+            coding(LOINC, codes.IOP_BY_EYE[eye], codes.IOP_BY_EYE_DISPLAY[eye]),
+            coding(SNOMED, codes.IOP_OBSERVABLE, codes.IOP_OBSERVABLE_DISPLAY),
             text=f"Intraocular pressure, {eye} eye",
         )
         effective = when(reading.measured_at) if reading.measured_at else fallback
@@ -100,7 +103,10 @@ class ObservationMaker:
         correction = entered.correction or "correction not recorded"
         label = f"Visual acuity ({correction}, {entered.notation}), {eye} eye"
         code = (
-            concept(coding(LOINC, codes.BCVA_SNELLEN_BY_EYE[eye]), text=label)
+            concept(
+                coding(LOINC, codes.BCVA_SNELLEN_BY_EYE[eye], codes.BCVA_SNELLEN_DISPLAY[eye]),
+                text=label,
+            )
             if snellen_bcva
             else concept(own("visual-acuity"), text=label)
         )

@@ -6,7 +6,7 @@ from html import escape
 from typing import Any
 
 from capnote.derive import Derived
-from capnote.fhir import codes
+from capnote.fhir import codes, regions
 from capnote.fhir.codes import SNOMED, coding, concept, own
 from capnote.fhir.common import (
     PROCEDURE_ROLE,
@@ -102,7 +102,56 @@ def _pathway_notes(note: Note, derived: Derived) -> list[str]:
     return out
 
 
-def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, str]:
+_TIMING = {
+    "before": "before the laser",
+    "after": "after the laser",
+    "both": "before and after the laser",
+}
+
+
+def _strength(percent: float | None) -> str:
+    return f" {percent:g}%" if percent is not None else ""
+
+
+def _clinical_lines(note: Note) -> list[str]:
+    """Complications, drugs and the detachment warning, in words, for the receiver's reader."""
+    found = note.result.complications
+    named = [c.text or complication_concept(c)["text"] for c in found]
+    lines = [f"Complications: {'; '.join(named) if named else 'none recorded'}."]
+    plan = note.plan
+    drugs = [
+        f"{d.agent}{_strength(d.strength_percent)} {_TIMING[d.timing]}" for d in plan.prophylaxis
+    ]
+    drugs += [
+        f"{t.agent}{_strength(t.strength_percent)} {t.dose:g} {t.dose_unit} {t.route} "
+        "for a raised IOP"
+        for t in note.result.pressure_treatment
+    ]
+    if drugs:
+        lines.append("Drugs given in clinic: " + "; ".join(drugs) + ".")
+    home = [
+        f"{d.agent}{_strength(d.strength_percent)} {d.times_per_day} times a day for {d.days} days"
+        for d in plan.take_home
+    ]
+    if home:
+        lines.append("Drops to take home: " + "; ".join(home) + ".")
+    given = "given to the patient" if plan.rd_warning_given else "NOT recorded as given"
+    lines.append(f"Retinal detachment warning: {given}.")
+    return lines
+
+
+def _billing_notes(ctx: VersionContext) -> list[str]:
+    """The site's CPT global period, where the region codes CPT and the site states one (the
+    sources disagree, so capnote never states one itself: clinical-practice.md)."""
+    days = ctx.record.cpt_global_period_days
+    if ctx.record.region != "united-states" or days is None:
+        return []
+    return [f"CPT 66821 global period: {days} days (site policy)."]
+
+
+def _narrative(
+    note: Note, derived: Derived, due: list[DueItem], voided: bool = False
+) -> dict[str, str]:
     """A short XHTML summary; clinical content only, no identifiers."""
     opening = note.result.opening
     size = "not recorded"
@@ -119,7 +168,11 @@ def _narrative(note: Note, derived: Derived, due: list[DueItem]) -> dict[str, st
         f"IOP {note.before.iop.value_mmhg:g} mmHg before; after: {after} mmHg "
         f"(spike grade {derived.iop.spike_grade}).",
     ]
+    if voided:
+        # Status is a modifier: the reader must see that this record was withdrawn.
+        lines.insert(0, "ENTERED IN ERROR: this record has been voided.")
     lines += _pathway_notes(note, derived)
+    lines += _clinical_lines(note)
     lines += [f"{item.title}: {item.target.date().isoformat()}." for item in due]
     lines.append(
         "Thresholds are literature defaults; local protocol and the treating clinician decide."
@@ -142,13 +195,14 @@ def procedure(ctx: VersionContext, derived: Derived, due: list[DueItem]) -> Entr
         used.append(concept(own("capsulotomy-contact-lens"), text=named))
     resource: dict[str, Any] = {
         "resourceType": "Procedure",
-        "text": _narrative(note, derived, due),
+        "text": _narrative(note, derived, due, ctx.voided),
         "identifier": [fhir_identifier(note.note_id)],
         # The procedure happened whatever the note's state; a draft note marks its
         # Observations preliminary instead.
         "status": ctx.status("completed"),
         "code": concept(
-            coding(SNOMED, codes.DISCISSION_SECONDARY_MEMBRANE),
+            coding(SNOMED, codes.DISCISSION_SECONDARY_MEMBRANE, codes.DISCISSION_DISPLAY),
+            *regions.procedure_codings(ctx.record.region),
             own("yag-posterior-capsulotomy"),
             text="Nd:YAG laser posterior capsulotomy",
         ),
@@ -163,7 +217,7 @@ def procedure(ctx: VersionContext, derived: Derived, due: list[DueItem]) -> Entr
     resource["location"] = location
     resource["reasonCode"] = [
         concept(
-            coding(codes.ICD10CM, codes.PCO_ICD10[note.eye]),
+            *regions.diagnosis_codings(ctx.record.region, note.eye),
             own("posterior-capsule-opacification"),
             text="Posterior capsule opacification",
         )
@@ -185,7 +239,7 @@ def procedure(ctx: VersionContext, derived: Derived, due: list[DueItem]) -> Entr
             concept(text=f"{item.title}: {item.target.date().isoformat()}") for item in due
         ]
     resource["usedCode"] = used
-    notes = _session_notes(note) + _pathway_notes(note, derived)
+    notes = _session_notes(note) + _pathway_notes(note, derived) + _billing_notes(ctx)
     if notes:
         resource["note"] = [{"text": text} for text in notes]
     key = ctx.keys.key(PROCEDURE_ROLE)

@@ -5,7 +5,8 @@ from __future__ import annotations
 from datetime import date, datetime
 from typing import Any
 
-from capnote.fhir.codes import concept, own, quantity
+from capnote.fhir import codes
+from capnote.fhir.codes import SNOMED, coding, concept, own, quantity
 from capnote.fhir.common import Entry, VersionContext, keyed, keyed_entry, when
 from capnote.note import ClinicDrop, HomeDrop, PressureTreatment
 from capnote.schedule import DueItem
@@ -66,6 +67,14 @@ def service_request(ctx: VersionContext, procedure: Entry, item: DueItem) -> Ent
     return keyed_entry(key, resource, role)
 
 
+def _eye_site(eye: str) -> dict[str, Any]:
+    """dosage.site for a drop: the eye treated, coded as the Procedure's bodySite is
+    (SNOMED CT eye structures, coding.md [confirmed])."""
+    return concept(
+        coding(SNOMED, codes.EYE_STRUCTURE[eye], codes.EYE_DISPLAY[eye]), text=f"{eye} eye"
+    )
+
+
 def _drug(agent: str, strength: float | None) -> dict[str, Any]:
     strength_text = f" {strength:g}%" if strength is not None else ""
     return concept(text=f"{agent}{strength_text} eye drops")
@@ -98,6 +107,7 @@ def administrations(
         resource["performer"] = [{"actor": ctx.clinician}]
         resource["dosage"] = {
             "text": f"one drop to the {note.eye} eye {label} the laser",
+            "site": _eye_site(note.eye),
             "route": _ROUTE,
             "dose": quantity(1, "drop", "{drop}"),
         }
@@ -135,11 +145,14 @@ def pressure_treatment(
         # R4 MedicationAdministration.reasonReference takes an Observation: the reading.
         resource["reasonReference"] = [reason.reference]
     unit, code = _DOSE_UNIT[given.dose_unit]
-    resource["dosage"] = {
-        "text": f"{given.dose:g} {unit} {given.route} for a raised IOP after the laser",
-        "route": _TREATMENT_ROUTE[given.route],
-        "dose": quantity(given.dose, unit, code),
+    dosage: dict[str, Any] = {
+        "text": f"{given.dose:g} {unit} {given.route} for a raised IOP after the laser"
     }
+    if given.route == "topical":
+        dosage["site"] = _eye_site(ctx.note.eye)
+    dosage["route"] = _TREATMENT_ROUTE[given.route]
+    dosage["dose"] = quantity(given.dose, unit, code)
+    resource["dosage"] = dosage
     return keyed_entry(key, resource, role)
 
 
@@ -168,6 +181,7 @@ def medication_request(ctx: VersionContext, procedure: Entry, drop: HomeDrop, ro
                     "periodUnit": "d",
                 }
             },
+            "site": _eye_site(note.eye),
             "route": _ROUTE,
             "doseAndRate": [{"doseQuantity": quantity(1, "drop", "{drop}")}],
         }

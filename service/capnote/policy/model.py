@@ -293,6 +293,37 @@ class ContactLensPolicy(PolicyPart):
     source: str
 
 
+Region = Literal["england", "united-states"]
+ReferenceMode = Literal["identifier", "conditional", "literal"]
+
+
+class RecordPolicy(PolicyPart):
+    """How the emitted FHIR record is coded and linked at this site.
+
+    region picks the national code systems beside SNOMED CT (capnote.fhir.regions);
+    references picks how patient, encounter and performer are referred to
+    (capnote.fhir.common.References): by identifier only, by a conditional reference the
+    receiver resolves inside the transaction, or by a literal reference under
+    reference_base."""
+
+    region: Region
+    references: ReferenceMode = "identifier"
+    reference_base: str | None = None
+    # CPT 66821's global period in days, for United States sites; unset, none is stated
+    # (sources disagree: clinical-practice.md).
+    cpt_global_period_days: int | None = Field(default=None, ge=0, le=365)
+    source: str
+
+    @model_validator(mode="after")
+    def _base_for_literal(self) -> RecordPolicy:
+        base = self.reference_base
+        if base is not None and not base.startswith(("https://", "http://")):
+            raise ValueError(f"reference_base {base!r} must be an http(s) URL")
+        if self.references == "literal" and base is None:
+            raise ValueError("references = 'literal' needs reference_base, the receiver's base")
+        return self
+
+
 def _unknown(found: Iterable[str], known: frozenset[str], what: str) -> None:
     unknown = sorted(set(found) - known)
     if unknown:
@@ -307,6 +338,7 @@ class Policy(PolicyPart):
     thresholds: Thresholds
     schedule: Schedule
     calendar: CalendarPolicy
+    record: RecordPolicy
     # Finding code -> level. Absent codes keep the severity their check gives.
     severity: dict[str, SeverityPolicy] = {}
     # Risk reason code -> what it means and changes; every code of derive.risk() is here.
