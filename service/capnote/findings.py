@@ -113,6 +113,29 @@ def ordered(findings: Iterable[Finding]) -> list[Finding]:
     return sorted(findings, key=lambda f: _ORDER[f.severity])
 
 
+def error_finding(
+    code: str,
+    location: str,
+    message: str,
+    rule: str,
+    *,
+    value: str | None = None,
+    allowed: str | None = None,
+    issue_type: IssueType = "invalid",
+) -> Finding:
+    """One error finding (the value already shown as it may be: see show_value)."""
+    return Finding(
+        severity=Severity.ERROR,
+        code=code,
+        location=location,
+        message=message,
+        rule=rule,
+        value=value,
+        allowed=allowed,
+        issue_type=issue_type,
+    )
+
+
 def refusal(
     code: str,
     location: str,
@@ -126,15 +149,8 @@ def refusal(
     """A request refused for one reason: an InputError with the one error finding that
     names the field, the value, the rule and the allowed range (answered as 422 with an
     OperationOutcome). The one way to build such a refusal."""
-    finding = Finding(
-        severity=Severity.ERROR,
-        code=code,
-        location=location,
-        message=message,
-        rule=rule,
-        value=value,
-        allowed=allowed,
-        issue_type=issue_type,
+    finding = error_finding(
+        code, location, message, rule, value=value, allowed=allowed, issue_type=issue_type
     )
     return InputError(message, [finding])
 

@@ -21,7 +21,7 @@ from typing import Any
 from capnote.fhir import core_table, wording
 from capnote.fhir.core_table import ElementRule
 from capnote.fhir.wording import found as _found
-from capnote.findings import Finding, Severity
+from capnote.findings import Finding, Severity, error_finding
 
 _STRUCTURE = "FHIR R4 JSON representation (json.html) and the element definitions of "
 _DATES = frozenset({"date", "dateTime", "instant", "time"})
@@ -62,15 +62,8 @@ def problem(
     allowed: str | None = None,
 ) -> Finding:
     """An error finding at location."""
-    return Finding(
-        severity=Severity.ERROR,
-        code=code,
-        location=location,
-        message=message,
-        rule=rule,
-        value=value,
-        allowed=allowed,
-        issue_type=issue_type,
+    return error_finding(
+        code, location, message, rule, value=value, allowed=allowed, issue_type=issue_type
     )
 
 

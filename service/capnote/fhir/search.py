@@ -24,7 +24,7 @@ from datetime import UTC, datetime, timedelta
 
 from capnote.errors import SearchError
 from capnote.fhir.readmodel import READABLE, parse_id
-from capnote.findings import Finding, Severity
+from capnote.findings import error_finding
 
 # The date parameter of each type (R4 names) and the element it reads.
 DATE_PARAM = {
@@ -139,15 +139,9 @@ def _error(
 ) -> SearchError:
     """A refused search. value is given only for parameters that cannot identify anyone
     (counts, dates, sort orders), never for patient or identifier values."""
-    finding = Finding(
-        severity=Severity.ERROR,
-        code="search-invalid",
-        location=location,
-        message=message,
-        rule=_RULE,
-        value=None if value is None else _shown(value),
-        allowed=allowed,
-        issue_type="invalid",
+    shown = None if value is None else _shown(value)
+    finding = error_finding(
+        "search-invalid", location, message, _RULE, value=shown, allowed=allowed
     )
     return SearchError(message, [finding])
 
