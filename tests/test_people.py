@@ -80,6 +80,8 @@ def test_a_system_client_sends_what_the_performer_signed(api: Api) -> None:
     assert r.status_code == 201
     performer = routine()["performer"]
     assert r.json()["signed"]["by"] == performer["name"]
+    # The EHR sent no signing time: none is written down as if it were one.
+    assert r.json()["signed"]["at"] is None
     agents = _agents(_provenance(r.json()["bundle"]))
     assert agents["author"] == {
         "type": "Device",

@@ -93,7 +93,9 @@ class Signature:
 
     by: str
     staff: tuple[str, str] | None
-    at: datetime
+    # When it was signed; None when the sending system signed it and sent no time (capnote
+    # knows only when it received the note, which is the Provenance's recorded time).
+    at: datetime | None
 
     def actor(self) -> Actor:
         """The attester of the version's Provenance."""
@@ -111,12 +113,14 @@ def signature(change: Change, who: Principal, now: datetime) -> Signature | None
         return Signature(who.label, who.staff, now)
     performer = change.note.performer
     staff = (performer.identifier.system, performer.identifier.value)
-    return Signature(performer.name, staff, now)
+    # The EHR vouches that its performer signed; the note carries no signing time, so none
+    # is written down (capnote's receipt time would claim a moment nobody recorded).
+    return Signature(performer.name, staff, None)
 
 
 def signature_of(row: VersionRow) -> Signature | None:
     """The signature a stored version carries (None before signers were recorded)."""
-    if row.signed_by is None or row.signed_at is None:
+    if row.signed_by is None:
         return None
     system, _, value = (row.signed_by_staff or "").partition("|")
     return Signature(row.signed_by, (system, value) if value else None, row.signed_at)
@@ -170,7 +174,8 @@ def _signed_view(signed: Signature | None) -> dict[str, Any] | None:
     if signed is None:
         return None
     staff = None if signed.staff is None else {"system": signed.staff[0], "value": signed.staff[1]}
-    return {"by": signed.by, "staff_identifier": staff, "at": signed.at.isoformat()}
+    at = None if signed.at is None else signed.at.isoformat()
+    return {"by": signed.by, "staff_identifier": staff, "at": at}
 
 
 SYSTEM = Principal("capnote (system)", "system")

@@ -62,7 +62,10 @@ class Signed(Answer):
 
     by: str
     staff_identifier: StaffIdentifier | None
-    at: datetime
+    at: datetime | None = Field(
+        description="when it was signed; null when the sending system signed it and sent "
+        "no time"
+    )
 
 
 class NoteAnswer(AssessmentAnswer):

@@ -74,7 +74,7 @@ const born = (day) => (day ? formatCalendarDay(day, true).replace(/^\S+ /, "") :
 function signedLine(stored, zone) {
   if (!stored) return null;
   const parts = [];
-  if (stored.signed) parts.push(`Signed by ${stored.signed.by}${stored.signed.staff_identifier ? ` (${stored.signed.staff_identifier.value})` : ""} at ${formatMoment(stored.signed.at, zone)}`);
+  if (stored.signed) parts.push(`Signed by ${stored.signed.by}${stored.signed.staff_identifier ? ` (${stored.signed.staff_identifier.value})` : ""}${stored.signed.at ? ` at ${formatMoment(stored.signed.at, zone)}` : " (in the sending system; time not sent)"}`);
   else if (stored.status === "draft") parts.push("Not signed");
   if (stored.version > 1 && stored.reason) parts.push(`version ${stored.version}: ${stored.status === "void" ? "voided" : "amended"}, reason: ${stored.reason}`);
   return parts.length ? el("p", "p-signed", parts.join(" · ")) : null;
