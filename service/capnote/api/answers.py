@@ -63,8 +63,7 @@ class Signed(Answer):
     by: str
     staff_identifier: StaffIdentifier | None
     at: datetime | None = Field(
-        description="when it was signed; null when the sending system signed it and sent "
-        "no time"
+        description="when it was signed; null when the sending system signed it and sent no time"
     )
 
 

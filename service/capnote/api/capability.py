@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from functools import lru_cache
 from typing import Any
 
 from capnote import __version__
@@ -62,9 +63,14 @@ def _search(name: str, kind: str) -> dict[str, str]:
     return {"name": name, "type": param_type, "documentation": doc}
 
 
-def _profiles(kind: str) -> list[str]:
-    """capnote's published profiles on a type (schemas/fhir-package)."""
-    return [sd["url"] for sd in structure_definitions() if sd["type"] == kind]
+@lru_cache(maxsize=1)
+def _profiles_by_type() -> dict[str, tuple[str, ...]]:
+    """capnote's published profiles per type (schemas/fhir-package), built once: the
+    package never changes while the server runs."""
+    found: dict[str, list[str]] = {}
+    for sd in structure_definitions():
+        found.setdefault(sd["type"], []).append(sd["url"])
+    return {kind: tuple(urls) for kind, urls in found.items()}
 
 
 # Each version's Provenance (its author, its attester, why), read by the id its Bundle gives.
@@ -113,7 +119,8 @@ _CONFORMANCE = [
 
 def _resource(kind: str) -> dict[str, Any]:
     params = [n for n in filter_params(kind) if n != "status:not"]
-    profiles = {"supportedProfile": _profiles(kind)} if _profiles(kind) else {}
+    urls = _profiles_by_type().get(kind, ())
+    profiles = {"supportedProfile": list(urls)} if urls else {}
     return {
         "type": kind,
         **profiles,
