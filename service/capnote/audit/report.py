@@ -124,7 +124,9 @@ def _figures(group: GroupFigures) -> Figures:
         name=(group.names[-1] if group.names else None) or "all units",
         sessions=n("sessions"),
         eyes=n("eyes"),
-        energy_mean=None if c["energy_mean"] is None else float(c["energy_mean"]),
+        # To 1e-9 mJ: the database's average depends in its last bits on the order it sums
+        # in (PostgreSQL's varies by plan), and a report must not change with the plan.
+        energy_mean=None if c["energy_mean"] is None else round(float(c["energy_mean"]), 9),
         energy_quartiles=group.energy,
         cataract_days=group.cataract_days,
         cataract_n=n("cataract_n"),
