@@ -25,11 +25,12 @@ def test_upgrade_from_empty_gives_the_models_tables(database_url: str) -> None:
             "api_token",
             "audit_entry",
             "outbox_entry",
+            "review_version",
         }
         with engine.connect() as connection:
             assert (
                 connection.execute(text("select version_num from alembic_version")).scalar()
-                == "0006"
+                == "0007"
             )
             diff = compare_metadata(MigrationContext.configure(connection), SQLModel.metadata)
         assert diff == []

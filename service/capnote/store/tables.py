@@ -182,3 +182,46 @@ class OutboxEntry(SQLModel, table=True):
     last_error: str | None = Field(default=None, sa_column=Column(Text, nullable=True))
     created_at: datetime
     delivered_at: datetime | None = None
+
+
+class ReviewVersion(SQLModel, table=True):
+    """One version of one review visit record (capnote.review), with what capnote made of it.
+
+    Linked to its laser session by the session's note key; the findings the clinical audit
+    counts are copied out into columns (None: not recorded, never "no")."""
+
+    __tablename__ = "review_version"
+    __table_args__ = (
+        UniqueConstraint("review_key", "version", name="uq_review_version"),
+        Index("ix_review_version_session", "session_key"),
+    )
+
+    id: int | None = Field(default=None, primary_key=True)
+    review_key: str = Field(max_length=36)
+    version: int
+    session_key: str = Field(max_length=36)
+    sender_system: str = Field(max_length=255)
+    sender_value: str = Field(max_length=64)
+    patient_system: str = Field(max_length=255)
+    patient_value: str = Field(max_length=64)
+    eye: str = Field(max_length=5)
+    seen_at: datetime
+    status: str = Field(max_length=8)  # draft | final | void
+    attended: bool
+    content_hash: str = Field(max_length=64)
+    review_json: str = Field(sa_column=Column(Text, nullable=False))
+    result_json: str = Field(sa_column=Column(Text, nullable=False))
+    bundle: bytes = Field(sa_column=Column(LargeBinary, nullable=False))
+    roles: str = Field(sa_column=Column(Text, nullable=False))
+    reason: str | None = Field(default=None, max_length=500)
+    recorded_at: datetime
+    recorded_by: str = Field(max_length=LABEL_MAX)
+    recorded_by_token: int | None = None
+    # What the clinical audit counts (capnote.audit): each None when not recorded.
+    cystoid_macular_oedema: bool | None = None
+    retinal_detachment: bool | None = None
+    anterior_uveitis: bool | None = None
+    raised_iop: bool | None = None
+    iol_pits: bool | None = None
+    retreatment: bool | None = None
+    opening_adequate: bool | None = None
