@@ -51,8 +51,9 @@ from sqlalchemy.sql import ClauseElement
 from capnote.derive import PriorSession
 from capnote.fhir.readmodel import Searchable
 from capnote.fhir.search import Criteria
-from capnote.store import audit_sql
+from capnote.store import audit_sql, review_sql
 from capnote.store.audit_sql import GroupFigures
+from capnote.store.review_sql import REVIEW_COLUMNS, ReviewRow, review_params
 from capnote.store.tables import (
     ApiToken,
     AuditEntry,
@@ -486,6 +487,9 @@ STATEMENTS.update(
 )
 
 
+STATEMENTS.update(review_sql.STATEMENTS)
+
+
 def _worklist() -> ClauseElement:
     """The latest version of each note whose session starts in a range (a clinic day) or
     that is a draft last saved with one token: the form's worklist."""
@@ -842,6 +846,48 @@ class Store(ABC):
         """Add each version, its search rows (retiring the note's previous ones), its audit
         entry and, when forwarding, its outbox entry, all or nothing. DuplicateVersionError
         when another writer stored one of these versions first."""
+
+    @abstractmethod
+    async def write_all(self, steps: Sequence[tuple[str, dict[str, Any]]]) -> None:
+        """Run fixed statements (by name, with their parameters) in one transaction, all or
+        nothing; DuplicateVersionError when a unique constraint refuses a row."""
+
+    # -- review visit records (capnote.reviews) ---------------------------------------------
+
+    async def review_latest(self, key: str) -> ReviewRow | None:
+        """The newest version of a review record, or None."""
+        rows = await self._fetch(self._sql["review_latest"], {"key": key})
+        return review_row(rows[0]) if rows else None
+
+    async def review_version(self, key: str, version: int) -> ReviewRow | None:
+        """One version of a review record, or None."""
+        rows = await self._fetch(self._sql["review_version"], {"key": key, "version": version})
+        return review_row(rows[0]) if rows else None
+
+    async def review_versions(self, key: str) -> list[ReviewRow]:
+        """Every version of a review record, oldest first."""
+        return [
+            review_row(r) for r in await self._fetch(self._sql["review_versions"], {"key": key})
+        ]
+
+    async def review_hashes(self, key: str) -> list[str]:
+        """The content digests of a review record's versions (none for a new one)."""
+        return [r[0] for r in await self._fetch(self._sql["review_hashes"], {"key": key})]
+
+    async def reviews_of_session(self, session_key: str) -> list[ReviewRow]:
+        """The newest version of each review record of one laser session, as seen."""
+        rows = await self._fetch(self._sql["reviews_of_session"], {"session": session_key})
+        return [review_row(r) for r in rows]
+
+    async def write_review(self, row: ReviewRow, audit: AuditRow) -> None:
+        """Add one review version and its audit entry together; DuplicateVersionError when
+        another writer stored this version first."""
+        await self.write_all(
+            [
+                ("add_review", review_params(row, self._time)),
+                ("add_audit", audit_params(audit, row.review_key, row.version, self._time)),
+            ]
+        )
 
     # -- the clinical audit (capnote.store.audit_sql) ---------------------------------------
 
@@ -1225,6 +1271,18 @@ def read_moment(value: Any) -> datetime:
     moment = datetime.fromisoformat(value) if isinstance(value, str) else value
     assert isinstance(moment, datetime)
     return moment.replace(tzinfo=UTC) if moment.tzinfo is None else moment.astimezone(UTC)
+
+
+def review_row(row: Sequence[Any]) -> ReviewRow:
+    """A ReviewRow from a row of REVIEW_COLUMNS, as either driver returns it."""
+    values = dict(zip(REVIEW_COLUMNS, row, strict=True))
+    values["seen_at"] = read_moment(values["seen_at"])
+    values["recorded_at"] = read_moment(values["recorded_at"])
+    values["bundle"] = bytes(values["bundle"])
+    for name in ("attended", *REVIEW_COLUMNS[-7:]):
+        if values[name] is not None:  # SQLite hands booleans back as 0 and 1
+            values[name] = bool(values[name])
+    return ReviewRow(**values)
 
 
 def version_row(row: Sequence[Any]) -> VersionRow:

@@ -203,6 +203,23 @@ class PostgresStore(Store):
         except psycopg.DataError as exc:
             raise unstorable() from exc
 
+    async def write_all(self, steps: Sequence[tuple[str, dict[str, Any]]]) -> None:
+        """Run the named statements in one transaction (see Store)."""
+        pool = await self._connections()
+        try:
+            async with pool.connection() as connection, connection.transaction():
+                for name, params in steps:
+                    sql = self._sql[name]
+                    await connection.execute(sql.text, sql.params(params))
+        except psycopg.errors.UniqueViolation as exc:
+            raise DuplicateVersionError from exc
+        except (PoolTimeout, psycopg.OperationalError) as exc:
+            raise UnavailableError("the database is not reachable right now") from exc
+        except psycopg.errors.ReadOnlySqlTransaction as exc:
+            raise UnavailableError(_READ_ONLY) from exc
+        except psycopg.DataError as exc:
+            raise unstorable() from exc
+
 
 _READ_ONLY = "the database accepts no writes right now (read-only); retry later"
 

@@ -183,6 +183,16 @@ class SqliteStore(Store):
             loop.call_soon(self._commit_waiting)
         await done
 
+    async def write_all(self, steps: Sequence[tuple[str, dict[str, Any]]]) -> None:
+        """Run the named statements all or nothing, in the next group commit (see Store)."""
+        planned = [(self._sql[name], params) for name, params in steps]
+        loop = asyncio.get_running_loop()
+        done: asyncio.Future[None] = loop.create_future()
+        self._waiting.append((planned, done))
+        if len(self._waiting) == 1:
+            loop.call_soon(self._commit_waiting)
+        await done
+
     def _commit_waiting(self) -> None:
         batch, self._waiting = self._waiting, []
         task = asyncio.ensure_future(self._group_commit(batch))
