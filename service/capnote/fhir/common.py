@@ -42,8 +42,16 @@ class KeyMaker:
     __slots__ = ("_prefix",)
 
     def __init__(self, note: Note) -> None:
-        name = f"{note.note_id.system}|{note.note_id.value}|".encode()
-        self._prefix = hashlib.sha1(_NAMESPACE_BYTES + name, usedforsecurity=False)
+        self._prefix = _prefix(note.note_id, "")
+
+    @classmethod
+    def of_record(cls, identifier: Identifier, kind: str) -> KeyMaker:
+        """Keys for another kind of record (a review visit: kind "review"), named by its own
+        identifier; the kind keeps them apart from a note's that shares the identifier (the
+        empty kind is a note's own: its keys from its note identifier alone)."""
+        made = cls.__new__(cls)
+        made._prefix = _prefix(identifier, f"{kind}|" if kind else "")
+        return made
 
     def key(self, role: str) -> str:
         """The UUID of this note's resource in the given role."""
@@ -52,6 +60,12 @@ class KeyMaker:
         h = digest.hexdigest()
         # Version nibble 5; variant bits 10 (the nibble becomes 8, 9, a or b).
         return f"{h[:8]}-{h[8:12]}-5{h[13:16]}-{_VARIANT[int(h[16], 16)]}{h[17:20]}-{h[20:32]}"
+
+
+def _prefix(identifier: Identifier, kind: str) -> Any:
+    """The SHA-1 state after the namespace and the record's name (see KeyMaker)."""
+    name = f"{kind}{identifier.system}|{identifier.value}|".encode()
+    return hashlib.sha1(_NAMESPACE_BYTES + name, usedforsecurity=False)
 
 
 def stable_uuid(note: Note, role: str) -> str:
