@@ -35,6 +35,14 @@ ALLOWED: dict[tuple[str, str], set[str] | None] = {
     ("get", "/notes/{note_id}/versions/{version}"): READ,
     ("put", "/notes/{note_id}"): WRITE,
     ("post", "/notes/{note_id}/void"): WRITE,
+    ("get", "/notes/{note_id}/reviews"): READ,
+    ("post", "/reviews"): WRITE,
+    ("post", "/reviews/check"): CHECK,
+    ("get", "/reviews/{review_id}"): READ,
+    ("get", "/reviews/{review_id}/versions"): READ,
+    ("get", "/reviews/{review_id}/versions/{version}"): READ,
+    ("put", "/reviews/{review_id}"): WRITE,
+    ("post", "/reviews/{review_id}/void"): WRITE,
     ("get", "/fhir/{kind}"): READ,
     ("post", "/fhir/{kind}/_search"): READ,
     ("get", "/fhir/{kind}/{resource_id}"): READ,
@@ -55,6 +63,7 @@ ALLOWED: dict[tuple[str, str], set[str] | None] = {
 }
 FILL = {
     "{note_id}": "00000000-0000-0000-0000-000000000000",
+    "{review_id}": "00000000-0000-0000-0000-000000000000",
     "{version}": "1",
     "{kind}": "Procedure",
     "{resource_id}": "x",

@@ -9,20 +9,26 @@ from pathlib import Path
 import pytest
 from jsonschema import Draft202012Validator
 
-from capnote.schema_files import ANSWERS_SCHEMA, CODE_SYSTEM, NOTE_SCHEMA, generated
+from capnote.schema_files import (
+    ANSWERS_SCHEMA,
+    CODE_SYSTEM,
+    NOTE_SCHEMA,
+    REVIEW_SCHEMA,
+    generated,
+)
 from tests.conftest import INVALID, ROOT, VALID
 from tests.fhir_r4_check import r4_problems
 
 SCHEMAS = ROOT / "schemas"
 
 
-@pytest.mark.parametrize("name", [NOTE_SCHEMA, ANSWERS_SCHEMA, CODE_SYSTEM])
+@pytest.mark.parametrize("name", [NOTE_SCHEMA, REVIEW_SCHEMA, ANSWERS_SCHEMA, CODE_SYSTEM])
 def test_committed_file_matches_the_models(name: str) -> None:
     committed = (SCHEMAS / name).read_bytes()
     assert committed == generated()[name], f"schemas/{name} is stale: run `capnote schema`"
 
 
-@pytest.mark.parametrize("name", [NOTE_SCHEMA, ANSWERS_SCHEMA])
+@pytest.mark.parametrize("name", [NOTE_SCHEMA, REVIEW_SCHEMA, ANSWERS_SCHEMA])
 def test_schema_is_valid_draft_2020_12(name: str) -> None:
     Draft202012Validator.check_schema(json.loads((SCHEMAS / name).read_text()))
 
@@ -54,3 +60,19 @@ def test_code_system_is_valid_r4() -> None:
     assert r4_problems(code_system) == []
     codes = [c["code"] for c in code_system["concept"]]
     assert len(codes) == len(set(codes)) == code_system["count"]
+
+
+REVIEWS = sorted((ROOT / "examples" / "reviews").glob("*.json"))
+
+
+@pytest.mark.parametrize("path", REVIEWS, ids=lambda p: p.name)
+def test_example_reviews_satisfy_the_review_schema_and_the_contract(path: Path) -> None:
+    from capnote.review import Review
+
+    schema = Draft202012Validator(json.loads((SCHEMAS / REVIEW_SCHEMA).read_text()))
+    data = json.loads(path.read_text())
+    assert list(schema.iter_errors(data)) == []
+    Review.model_validate_json(path.read_bytes())
+    # A finding given as text, not true or false, breaks both (unknown is null, never "no").
+    data["findings"] = {"retinal_detachment": "no"}
+    assert list(schema.iter_errors(data))

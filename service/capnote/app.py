@@ -23,6 +23,7 @@ from capnote.api import (
     fhir_validate,
     health,
     notes,
+    reviews,
     web,
 )
 from capnote.api.access_audit import AccessAudit
@@ -37,6 +38,7 @@ from capnote.config import Settings, effective_policy
 from capnote.delivery import DeliveryWorker
 from capnote.fhir_reads import FhirReads
 from capnote.notes import Clock, NoteService
+from capnote.reviews import ReviewService
 from capnote.store.database import migrate, open_store
 
 DESCRIPTION = (
@@ -98,6 +100,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     # The services routes ask for (capnote.api.deps); nothing else is kept on the app.
     assessor = Assessor(policy, output_check=settings.output_check)
     app.state.notes = NoteService(store, assessor, clock, forward=receiver is not None)
+    app.state.reviews = ReviewService(store, assessor, clock)
     app.state.fhir_reads = FhirReads(store, clock, settings.patient_id_system)
     app.state.audit_trail = AuditTrail(store)
     app.state.access = Access(store, clock)
@@ -107,6 +110,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     # audit before fhir: /fhir/AuditEvent is the auditor's, not the read API's.
     for router in (
         health.router,
+        reviews.router,
         notes.router,
         fhir_validate.router,
         fhir_package.router,

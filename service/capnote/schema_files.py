@@ -10,9 +10,11 @@ import orjson
 from capnote.note import Note
 
 NOTE_SCHEMA = "note.schema.json"
+REVIEW_SCHEMA = "review.schema.json"
 ANSWERS_SCHEMA = "answers.schema.json"
 CODE_SYSTEM = "capnote-codesystem.json"
 SCHEMA_ID = "https://capnote.org/schemas/note.schema.json"
+REVIEW_ID = "https://capnote.org/schemas/review.schema.json"
 ANSWERS_ID = "https://capnote.org/schemas/answers.schema.json"
 
 
@@ -20,6 +22,14 @@ def note_schema() -> dict[str, Any]:
     """The note contract as JSON Schema (draft 2020-12), as the service validates it."""
     schema = Note.model_json_schema(mode="validation")
     return {"$schema": "https://json-schema.org/draft/2020-12/schema", "$id": SCHEMA_ID, **schema}
+
+
+def review_schema() -> dict[str, Any]:
+    """The review visit contract (capnote.review) as JSON Schema (draft 2020-12)."""
+    from capnote.review import Review
+
+    schema = Review.model_json_schema(mode="validation")
+    return {"$schema": "https://json-schema.org/draft/2020-12/schema", "$id": REVIEW_ID, **schema}
 
 
 def answers_schema() -> dict[str, Any]:
@@ -52,6 +62,7 @@ def generated() -> dict[str, bytes]:
 
     return {
         NOTE_SCHEMA: render(note_schema()),
+        REVIEW_SCHEMA: render(review_schema()),
         ANSWERS_SCHEMA: render(answers_schema()),
         CODE_SYSTEM: render(code_system_resource()),
     }

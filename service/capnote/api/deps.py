@@ -19,11 +19,18 @@ from capnote.audit_trail import AuditTrail
 from capnote.fhir_reads import FhirReads
 from capnote.notes import NoteService
 from capnote.policy import Policy
+from capnote.reviews import ReviewService
 
 
 async def notes_service(request: Request) -> NoteService:
     """The note lifecycle."""
     service: NoteService = request.app.state.notes
+    return service
+
+
+async def review_service(request: Request) -> ReviewService:
+    """The review visit lifecycle."""
+    service: ReviewService = request.app.state.reviews
     return service
 
 
@@ -52,6 +59,7 @@ async def site_policy(request: Request) -> Policy:
 
 
 Notes = Annotated[NoteService, Depends(notes_service)]
+Reviews = Annotated[ReviewService, Depends(review_service)]
 Reads = Annotated[FhirReads, Depends(fhir_reads)]
 Audit = Annotated[AuditTrail, Depends(audit_trail)]
 Tokens = Annotated[Access, Depends(access)]

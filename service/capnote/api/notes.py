@@ -58,7 +58,7 @@ def _written(request: Request, stored: StoredNote, status: int = 200) -> Respons
     return Response(stored.json(), status, headers, media_type=JSON)
 
 
-def _if_match(value: str | None) -> int:
+def if_match_version(value: str | None) -> int:
     """The version in If-Match (W/"3", "3" or 3); required on every change (428)."""
     if value is None:
         raise PreconditionRequiredError(
@@ -196,8 +196,8 @@ async def _change(
     """An amend or a void: read the body, call the service, answer."""
     body = await json_body(request)
     if action == "amend":
-        return _written(request, await notes.amend(note_id, body, who, _if_match(if_match)))
-    return _answer(await notes.void(note_id, body, who, _if_match(if_match)))
+        return _written(request, await notes.amend(note_id, body, who, if_match_version(if_match)))
+    return _answer(await notes.void(note_id, body, who, if_match_version(if_match)))
 
 
 @router.put(

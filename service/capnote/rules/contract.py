@@ -3,14 +3,16 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Any
+from typing import Any, TypeVar
 
-from pydantic import ValidationError
+from pydantic import BaseModel, ValidationError
 from pydantic_core import ErrorDetails
 
 from capnote.findings import FINDINGS_MAX, Finding, Severity, left_out, show_value
 from capnote.note import Note
 from capnote.rules.wording import message, primitive
+
+M = TypeVar("M", bound=BaseModel)
 
 RULE = "the note contract (schemas/note.schema.json)"
 
@@ -171,8 +173,14 @@ def finding_from_error(
 
 def parse_note(payload: bytes | str) -> tuple[Note | None, list[Finding]]:
     """The note, or None with a finding for every contract error."""
+    return parse_as(Note, payload)
+
+
+def parse_as(model: type[M], payload: bytes | str) -> tuple[M | None, list[Finding]]:
+    """A record of the given contract (a note, a review), or None with a finding for every
+    contract error."""
     try:
-        return Note.model_validate_json(payload), []
+        return model.model_validate_json(payload), []
     except ValidationError as exc:
         errors = exc.errors(include_url=False)
         # Only the findings an answer lists are built (90,000 unknown keys took 2 s more).

@@ -104,7 +104,8 @@ def _outside(location: str, value: float, limit: Range, what: str) -> Finding:
     return found
 
 
-def _acuity(location: str, acuity: VisualAcuity | None, ctx: Context) -> Iterator[Finding]:
+def acuity_findings(location: str, acuity: VisualAcuity | None, ctx: Context) -> Iterator[Finding]:
+    """An acuity entry must be readable in its notation and lie on a chart."""
     if acuity is None:
         return
     try:
@@ -127,8 +128,8 @@ def _acuity(location: str, acuity: VisualAcuity | None, ctx: Context) -> Iterato
 
 def acuities(note: Note, ctx: Context) -> Iterator[Finding]:
     """Acuity entries must be readable in their notation and lie on a chart."""
-    yield from _acuity("before.visual_acuity", note.before.visual_acuity, ctx)
-    yield from _acuity("result.visual_acuity_after", note.result.visual_acuity_after, ctx)
+    yield from acuity_findings("before.visual_acuity", note.before.visual_acuity, ctx)
+    yield from acuity_findings("result.visual_acuity_after", note.result.visual_acuity_after, ctx)
 
 
 # Nd:YAG capsulotomy entered practice around 1980 (from memory); an earlier time is an entry

@@ -1,0 +1,227 @@
+"""The review visit over the REST API, on a real SQLite file and a real PostgreSQL server:
+store, resend, conflict, amend with If-Match, void, the reviews of a session, and the checks
+that keep a review with its own session's patient and eye (capnote.rules.review)."""
+
+from __future__ import annotations
+
+import copy
+from typing import Any
+
+import httpx
+import orjson
+import pytest
+
+from tests.conftest import Api, routine
+
+SESSION = routine()  # the routine right-eye note, 27 November 2026 at 10:05 UTC
+CLINICIAN = {
+    "identifier": {"system": "https://harbourside-eye.example/fhir/sid/staff", "value": "S-9"},
+    "name": "Dr Invented Reviewer",
+}
+
+
+def review(**changes: Any) -> dict[str, Any]:
+    """An attended, signed review of the routine session, three days later."""
+    body: dict[str, Any] = {
+        "review_id": {"system": "https://harbourside-eye.example/fhir/sid/review", "value": "RV-1"},
+        "session": copy.deepcopy(SESSION["note_id"]),
+        "patient": copy.deepcopy(SESSION["patient"]),
+        "eye": SESSION["eye"],
+        "attended": True,
+        "seen_at": "2026-11-30T09:00:00+00:00",
+        "seen_by": CLINICIAN,
+        "visual_acuity": {"notation": "snellen-metric", "value": "6/9", "correction": "habitual"},
+        "iop": {"value_mmhg": 16, "method": "applanation"},
+        "opening": {"patent": True, "adequate": True},
+        "symptoms_relieved": True,
+        "findings": {"cystoid_macular_oedema": False, "retinal_detachment": False},
+        "retreatment_needed": False,
+        "outcome": "discharged",
+        "status": "final",
+    }
+    body.update(changes)
+    return body
+
+
+def post(
+    api: Api, path: str, body: object, role: str = "clinician", **headers: str
+) -> httpx.Response:
+    return api.client.post(path, content=orjson.dumps(body), headers=api.headers(role, **headers))
+
+
+@pytest.fixture
+def session_id(api: Api) -> str:
+    answer = post(api, "/notes", SESSION)
+    assert answer.status_code == 201, answer.text
+    key: str = answer.json()["id"]
+    return key
+
+
+def codes(answer: httpx.Response) -> dict[str, str]:
+    """Each issue's code (from its details) -> its FHIRPath, from an OperationOutcome."""
+    out = {}
+    for issue in answer.json()["issue"]:
+        code = issue["details"]["coding"][0]["code"]
+        out[code] = issue.get("expression", [""])[0]
+    return out
+
+
+def test_a_review_is_stored_read_and_resent_safely(api: Api, session_id: str) -> None:
+    created = post(api, "/reviews", review())
+    assert created.status_code == 201, created.text
+    body = created.json()
+    assert body["session_id"] == session_id
+    assert body["version"] == 1
+    assert body["status"] == "final"
+    assert body["accepted"] is True
+    assert created.headers["etag"] == 'W/"1"'
+    # 6/9 is logMAR log10(9/6) = 0.18 (standard definition; ICO 1984 acuity standard).
+    assert body["derived"]["logmar"] == pytest.approx(0.18, abs=0.005)
+    # 16 mmHg against the session's pre-laser 15 mmHg (right-routine.json): +1.
+    assert body["derived"]["iop_change_from_pre_laser_mmhg"] == pytest.approx(
+        16 - SESSION["before"]["iop"]["value_mmhg"]
+    )
+    assert body["derived"]["days_after_session"] == 2
+    # What nobody recorded stays unrecorded: no false is filled in.
+    assert "anterior_uveitis" not in body["review"]["findings"]
+    assert body["review"]["findings"]["retinal_detachment"] is False
+
+    again = post(api, "/reviews", review())
+    assert again.status_code == 200
+    assert again.json()["version"] == 1
+    other = post(api, "/reviews", review(symptoms_relieved=False))
+    assert other.status_code == 409
+
+    read = api.client.get(f"/reviews/{body['id']}", headers=api.headers("auditor"))
+    assert read.status_code == 200
+    assert read.json()["review"] == body["review"]
+    listed = api.client.get(f"/notes/{session_id}/reviews", headers=api.headers("analyst"))
+    assert listed.status_code == 200
+    assert [(r["id"], r["attended"], r["outcome"]) for r in listed.json()["reviews"]] == [
+        (body["id"], True, "discharged")
+    ]
+
+
+def test_a_review_never_moves_to_another_patient_or_eye(api: Api, session_id: str) -> None:
+    other_patient = review(patient={"system": SESSION["patient"]["system"], "value": "HX999999"})
+    answer = post(api, "/reviews", other_patient)
+    assert answer.status_code == 422
+    assert codes(answer)["patient-mismatch"] == "patient"
+    # The message names the mismatch, never whom.
+    assert "HX999999" not in answer.text
+    assert SESSION["patient"]["value"] not in answer.text
+    answer = post(api, "/reviews", review(eye="left"))
+    assert answer.status_code == 422
+    assert codes(answer)["eye-mismatch"] == "eye"
+    unknown = review(session={"system": SESSION["note_id"]["system"], "value": "LN-NOPE"})
+    answer = post(api, "/reviews", unknown)
+    assert answer.status_code == 422
+    assert "session-unknown" in codes(answer)
+
+
+def test_times_and_contradictions_are_refused_with_their_field(api: Api, session_id: str) -> None:
+    early = post(api, "/reviews", review(seen_at="2026-11-26T09:00:00+00:00"))
+    assert early.status_code == 422
+    assert codes(early)["review-before-session"] == "seen_at"
+    future = post(api, "/reviews", review(seen_at="2026-12-20T09:00:00+00:00"))
+    assert codes(future)["review-in-future"] == "seen_at"
+    pits = post(api, "/reviews", review(findings={"iol_pits": False, "iol_pits_troublesome": True}))
+    assert codes(pits)["pits-trouble-without-pits"] == "findings.iol_pits_troublesome"
+    missed = review(attended=False)
+    missed.pop("seen_by")
+    answer = post(api, "/reviews", missed)
+    assert answer.status_code == 422
+    assert codes(answer)["missed-review-has-findings"]
+    unsigned = review()
+    del unsigned["outcome"]
+    assert codes(post(api, "/reviews", unsigned))["required-to-sign"] == "outcome"
+    wrong_type = post(api, "/reviews", review(attended="yes"))
+    assert wrong_type.status_code == 422
+    assert "attended" in wrong_type.text
+
+
+def test_a_missed_review_records_only_that_it_was_missed(api: Api, session_id: str) -> None:
+    missed = {
+        k: v
+        for k, v in review(attended=False).items()
+        if k in ("review_id", "session", "patient", "eye", "attended", "seen_at", "status")
+    }
+    answer = post(api, "/reviews", missed)
+    assert answer.status_code == 201, answer.text
+    assert answer.json()["review"]["attended"] is False
+    listed = api.client.get(f"/notes/{session_id}/reviews", headers=api.headers("clinician"))
+    assert [(r["attended"], r["outcome"]) for r in listed.json()["reviews"]] == [(False, None)]
+
+
+def test_warnings_do_not_block_and_name_their_source(api: Api, session_id: str) -> None:
+    body = review(
+        findings={"retinal_detachment": True},
+        iop={"value_mmhg": 31, "method": "applanation"},
+    )
+    answer = post(api, "/reviews", body)
+    assert answer.status_code == 201, answer.text
+    found = {f["code"]: f for f in answer.json()["findings"]}
+    assert found["complication-discharged"]["severity"] == "warning"
+    # CMO not recorded: the audit cannot count this review for it (Steinberg et al. 1991).
+    assert "Steinberg" in found["review-finding-not-recorded"]["source"]
+    assert found["review-iop-high"]["location"] == "findings.raised_iop_needing_treatment"
+
+
+def test_amend_needs_if_match_and_a_reason_and_void_says_so(api: Api, session_id: str) -> None:
+    created = post(api, "/reviews", review()).json()
+    key = created["id"]
+    change = {
+        "reason": "CMO seen on OCT after the visit",
+        "review": review(
+            findings={"cystoid_macular_oedema": True, "retinal_detachment": False},
+            outcome="further-follow-up",
+            follow_up_days=28,
+        ),
+    }
+    put = api.client.put(
+        f"/reviews/{key}", content=orjson.dumps(change), headers=api.headers("clinician")
+    )
+    assert put.status_code == 428
+    stale = api.client.put(
+        f"/reviews/{key}",
+        content=orjson.dumps(change),
+        headers=api.headers("clinician", **{"if-match": 'W/"7"'}),
+    )
+    assert stale.status_code == 412
+    no_reason = {"review": change["review"]}
+    answer = api.client.put(
+        f"/reviews/{key}",
+        content=orjson.dumps(no_reason),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
+    )
+    assert answer.status_code == 422
+    done = api.client.put(
+        f"/reviews/{key}",
+        content=orjson.dumps(change),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
+    )
+    assert done.status_code == 200, done.text
+    assert done.json()["version"] == 2
+    assert done.json()["review"]["findings"]["cystoid_macular_oedema"] is True
+    void = api.client.post(
+        f"/reviews/{key}/void",
+        content=orjson.dumps({"reason": "recorded against the wrong visit"}),
+        headers=api.headers("clinician", **{"if-match": 'W/"2"'}),
+    )
+    assert void.status_code == 200, void.text
+    assert void.json()["status"] == "void"
+    versions = api.client.get(f"/reviews/{key}/versions", headers=api.headers("auditor")).json()
+    assert [v["status"] for v in versions["versions"]] == ["final", "final", "void"]
+    again = api.client.put(
+        f"/reviews/{key}",
+        content=orjson.dumps(change),
+        headers=api.headers("clinician", **{"if-match": 'W/"3"'}),
+    )
+    assert again.status_code == 409
+
+
+def test_roles(api: Api, session_id: str) -> None:
+    assert post(api, "/reviews", review(), role="analyst").status_code == 403
+    assert post(api, "/reviews", review(), role="auditor").status_code == 403
+    assert post(api, "/reviews/check", review(), role="analyst").status_code == 200
+    assert api.client.post("/reviews", content=orjson.dumps(review())).status_code == 401
