@@ -225,3 +225,35 @@ def test_roles(api: Api, session_id: str) -> None:
     assert post(api, "/reviews", review(), role="auditor").status_code == 403
     assert post(api, "/reviews/check", review(), role="analyst").status_code == 200
     assert api.client.post("/reviews", content=orjson.dumps(review())).status_code == 401
+
+
+def _review_request_status(bundle: dict[str, Any]) -> str:
+    [status] = [
+        e["resource"]["status"]
+        for e in bundle["entry"]
+        if e["resource"]["resourceType"] == "ServiceRequest"
+        and e["resource"]["code"]["coding"][0]["code"] == "capsulotomy-review"
+    ]
+    return str(status)
+
+
+def test_a_session_amended_after_its_review_keeps_the_review_done(
+    api: Api, session_id: str
+) -> None:
+    def amend(version: int, reason: str) -> dict[str, Any]:
+        note = copy.deepcopy(SESSION)
+        note["assistant"] = reason
+        answer = api.client.put(
+            f"/notes/{session_id}",
+            content=orjson.dumps({"reason": reason, "note": note}),
+            headers=api.headers("clinician", **{"if-match": f'W/"{version}"'}),
+        )
+        assert answer.status_code == 200, answer.text
+        bundle: dict[str, Any] = answer.json()["bundle"]
+        return bundle
+
+    # Before any review, the review is still owed.
+    assert _review_request_status(amend(1, "Nurse Invented One")) == "active"
+    assert post(api, "/reviews", review()).status_code == 201
+    # After a signed, attended review, an amendment of the session does not reopen it.
+    assert _review_request_status(amend(2, "Nurse Invented Two")) == "completed"

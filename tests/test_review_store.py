@@ -47,10 +47,10 @@ def test_review_versions_read_back_and_one_writer_wins(database_url: str) -> Non
     migrate(database_url)
 
     async def work(store: Store) -> tuple[ReviewRow | None, list[ReviewRow], list[str]]:
-        await store.write_review(_row(1), _audit("review-create"))
+        await store.write_review(_row(1), _audit("review-create"), forward=False)
         with pytest.raises(DuplicateVersionError):
-            await store.write_review(_row(1), _audit("review-create"))
-        await store.write_review(_row(2), _audit("review-amend"))
+            await store.write_review(_row(1), _audit("review-create"), forward=False)
+        await store.write_review(_row(2), _audit("review-amend"), forward=False)
         return (
             await store.review_latest("k1"),
             await store.reviews_of_session("s1"),

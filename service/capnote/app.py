@@ -100,7 +100,7 @@ def create_app(settings: Settings | None = None, clock: Clock = utc_now) -> Fast
     # The services routes ask for (capnote.api.deps); nothing else is kept on the app.
     assessor = Assessor(policy, output_check=settings.output_check)
     app.state.notes = NoteService(store, assessor, clock, forward=receiver is not None)
-    app.state.reviews = ReviewService(store, assessor, clock)
+    app.state.reviews = ReviewService(store, assessor, clock, forward=receiver is not None)
     app.state.fhir_reads = FhirReads(store, clock, settings.patient_id_system)
     app.state.audit_trail = AuditTrail(store)
     app.state.access = Access(store, clock)

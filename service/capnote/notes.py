@@ -289,6 +289,12 @@ class NoteService:
             key, (note.patient.system, note.patient.value), note.eye
         )
 
+    async def _reviewed(self, key: str) -> bool:
+        """Whether a signed, attended review of this session is on record (its review
+        request stays completed in every later version of the session)."""
+        rows = await self.store.reviews_of_session(key)
+        return any(r.status == "final" and r.attended for r in rows)
+
     async def check(self, payload: bytes) -> dict[str, Any]:
         """Everything a submission would produce, stored nowhere."""
         note, findings = check_payload(payload, Context(self.assessor.policy, self.clock()))
@@ -403,6 +409,7 @@ class NoteService:
                 latest.version + 1,
                 amends_final=latest.status == "final",
                 previous=emitted_before(latest),
+                reviewed=await self._reviewed(key),
             ),
             latest.status,
             f"session number and cumulative energy counted again: an earlier session of this "
@@ -595,6 +602,7 @@ class NoteService:
             latest.version + 1,
             amends_final=latest.status == "final",
             previous=emitted_before(latest),
+            reviewed=await self._reviewed(key),
         )
         others = await self._others(note, key)
         change = Change(

@@ -167,10 +167,14 @@ def _assessment(
 class ReviewService:
     """The review lifecycle over one store (the notes' store: reviews sit beside them)."""
 
-    def __init__(self, store: Store, assessor: Assessor, clock: Clock) -> None:
+    def __init__(
+        self, store: Store, assessor: Assessor, clock: Clock, *, forward: bool = False
+    ) -> None:
         self.store = store
         self.assessor = assessor
         self.clock = clock
+        # With forwarding on, each review version's Bundle goes to the outbox with it.
+        self.forward = forward
 
     # -- checking --------------------------------------------------------------------------
 
@@ -278,7 +282,7 @@ class ReviewService:
         )
         audit = AuditRow(now, who.label, who.role, f"review-{action}", who.remote, who.token_id)
         try:
-            await self.store.write_review(row, audit)
+            await self.store.write_review(row, audit, forward=self.forward)
         except DuplicateVersionError as exc:
             raise PreconditionError("the review changed meanwhile; read it and retry") from exc
         return _stored(row)

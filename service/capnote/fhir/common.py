@@ -177,6 +177,9 @@ class Version:
     amends_final: bool = False
     # What the version before emitted, to withdraw what this one no longer has.
     previous: Emitted | None = None
+    # A signed, attended review visit (capnote.reviews) completed the session's review
+    # request: a later version of the session keeps it completed, not owed again.
+    reviewed: bool = False
 
 
 # What the shipped policy's [record] table says (policy/default.toml), for callers without a
@@ -231,6 +234,7 @@ class VersionContext:
         self.keys = KeyMaker(note)
         self.version = version.number
         self.voided = version.voided
+        self.reviewed = version.reviewed
         self.amended = version.amends_final and note.status == "final"
         self.subject = reference_to("Patient", note.patient, record)
         self.encounter: dict[str, Any] | None = (

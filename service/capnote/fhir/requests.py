@@ -41,7 +41,8 @@ def _due_note(item: DueItem) -> str:
 
 def service_request(ctx: VersionContext, procedure: Entry, item: DueItem) -> Entry:
     """One due item as a ServiceRequest with its window (Timing.repeat.boundsPeriod)."""
-    done = item.done_by_reading is not None
+    reviewed = item.kind == "review" and ctx.reviewed
+    done = item.done_by_reading is not None or reviewed
     role = f"due-{item.kind}"
     key, resource = keyed(ctx, role, "ServiceRequest")
     resource["status"] = ctx.status("completed" if done else "active", draft="draft")
@@ -63,7 +64,8 @@ def service_request(ctx: VersionContext, procedure: Entry, item: DueItem) -> Ent
     resource["requester"] = ctx.clinician
     # reasonReference cannot point at a Procedure in R4; supportingInfo takes any resource.
     resource["supportingInfo"] = [procedure.reference]
-    resource["note"] = [{"text": _due_note(item)}]
+    said = _due_note(item) + (" Done: the review visit was recorded." if reviewed else "")
+    resource["note"] = [{"text": said}]
     return keyed_entry(key, resource, role)
 
 

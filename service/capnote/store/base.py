@@ -43,6 +43,7 @@ from sqlalchemy import (
     select,
     true,
     tuple_,
+    union_all,
     update,
 )
 from sqlalchemy.engine import Dialect
@@ -61,6 +62,7 @@ from capnote.store.tables import (
     FhirToken,
     NoteVersion,
     OutboxEntry,
+    ReviewVersion,
 )
 from capnote.tokens import hash_token, new_secret
 
@@ -68,6 +70,7 @@ _NOTE = NoteVersion.__table__  # type: ignore[attr-defined]
 _INDEX = FhirIndex.__table__  # type: ignore[attr-defined]
 _AUDIT = AuditEntry.__table__  # type: ignore[attr-defined]
 _OUTBOX = OutboxEntry.__table__  # type: ignore[attr-defined]
+_REVIEW = ReviewVersion.__table__  # type: ignore[attr-defined]
 _TOKEN = ApiToken.__table__  # type: ignore[attr-defined]
 _TOKEN_ROWS = FhirToken.__table__  # type: ignore[attr-defined]
 # The columns a version's search rows are written with (both drivers).
@@ -432,8 +435,15 @@ STATEMENTS.update(
             attempts=_OUTBOX.c.attempts + 1,
         )
         .returning(*_outbox_out),
-        "bundle_of": select(_NOTE.c.bundle).where(
-            _NOTE.c.note_key == bindparam("key"), _NOTE.c.version == bindparam("version")
+        # An outbox entry names a note version or a review version (their keys are UUIDs
+        # from different names, so a key is one or the other, never both).
+        "bundle_of": union_all(
+            select(_NOTE.c.bundle).where(
+                _NOTE.c.note_key == bindparam("key"), _NOTE.c.version == bindparam("version")
+            ),
+            select(_REVIEW.c.bundle).where(
+                _REVIEW.c.review_key == bindparam("key"), _REVIEW.c.version == bindparam("version")
+            ),
         ),
         "delivered": update(_OUTBOX)
         .where(_held)
@@ -879,15 +889,19 @@ class Store(ABC):
         rows = await self._fetch(self._sql["reviews_of_session"], {"session": session_key})
         return [review_row(r) for r in rows]
 
-    async def write_review(self, row: ReviewRow, audit: AuditRow) -> None:
-        """Add one review version and its audit entry together; DuplicateVersionError when
-        another writer stored this version first."""
-        await self.write_all(
-            [
-                ("add_review", review_params(row, self._time)),
-                ("add_audit", audit_params(audit, row.review_key, row.version, self._time)),
-            ]
-        )
+    async def write_review(self, row: ReviewRow, audit: AuditRow, *, forward: bool) -> None:
+        """Add one review version, its audit entry and, when forwarding, its outbox entry,
+        all or nothing; DuplicateVersionError when another writer stored it first."""
+        steps = [
+            ("add_review", review_params(row, self._time)),
+            ("add_audit", audit_params(audit, row.review_key, row.version, self._time)),
+        ]
+        if forward:
+            at = self._time(row.recorded_at)
+            steps.append(
+                ("add_outbox", {"note_key": row.review_key, "version": row.version, "at": at})
+            )
+        await self.write_all(steps)
 
     # -- the clinical audit (capnote.store.audit_sql) ---------------------------------------
 
