@@ -201,6 +201,77 @@ class StatusAnswer(Answer):
     status: Literal["ok", "ready"]
 
 
+class ReviewDerived(Answer):
+    """What capnote works out from a review visit."""
+
+    logmar: float | None
+    iop_change_from_pre_laser_mmhg: float | None = Field(
+        description="the review IOP minus the session's pre-laser IOP"
+    )
+    days_after_session: int | None
+
+
+class ReviewCheckAnswer(Answer):
+    """POST /reviews/check: findings and, for a review without errors, its Bundle."""
+
+    id: str | None = None
+    accepted: bool = Field(description="false when any finding is an error")
+    findings: list[FindingAnswer]
+    outcome: dict[str, Any] = Field(description="the findings as a FHIR R4 OperationOutcome")
+    derived: ReviewDerived | None
+    caution: str
+    bundle: dict[str, Any] | None
+
+
+class ReviewAnswer(ReviewCheckAnswer):
+    """One stored version of a review visit record."""
+
+    id: str = Field(description="capnote's review id (a UUID)")
+    version: int
+    status: Literal["draft", "final", "void"]
+    session_id: str = Field(description="the note id of the laser session reviewed")
+    recorded_at: datetime
+    recorded_by: str
+    reason: str | None
+    review: dict[str, Any] = Field(description="the review as stored (capnote.review.Review)")
+
+
+class ReviewVersionSummary(Answer):
+    """One version in a review's history."""
+
+    version: int
+    status: Literal["draft", "final", "void"]
+    reason: str | None
+    recorded_at: datetime
+    recorded_by: str
+
+
+class ReviewVersionsAnswer(Answer):
+    """GET /reviews/{id}/versions."""
+
+    id: str
+    versions: list[ReviewVersionSummary]
+
+
+class SessionReview(Answer):
+    """One review of a session, as GET /notes/{id}/reviews lists it."""
+
+    id: str
+    version: int
+    status: Literal["draft", "final", "void"]
+    seen_at: datetime
+    attended: bool
+    outcome: Literal["discharged", "further-follow-up"] | None
+    recorded_by: str
+
+
+class SessionReviewsAnswer(Answer):
+    """GET /notes/{id}/reviews: the newest version of each review of the session."""
+
+    session_id: str
+    reviews: list[SessionReview]
+
+
 ANSWERS: tuple[type[Answer], ...] = (
     NoteAnswer,
     CheckAnswer,
@@ -209,4 +280,8 @@ ANSWERS: tuple[type[Answer], ...] = (
     DeliveryAnswer,
     AuditAnswer,
     StatusAnswer,
+    ReviewAnswer,
+    ReviewCheckAnswer,
+    ReviewVersionsAnswer,
+    SessionReviewsAnswer,
 )

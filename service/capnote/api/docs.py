@@ -13,9 +13,11 @@ from pydantic.json_schema import models_json_schema
 from capnote.api.answers import ANSWERS
 from capnote.demo_notes import demo_notes
 from capnote.note import Note
+from capnote.review import Review
 
 _NOTE_REF = {"$ref": "#/components/schemas/Note"}
 _OUTCOME_REF = {"$ref": "#/components/schemas/OperationOutcome"}
+_REVIEW_REF = {"$ref": "#/components/schemas/Review"}
 
 NOTE_BODY: dict[str, Any] = {
     "requestBody": {
@@ -35,6 +37,30 @@ AMEND_BODY: dict[str, Any] = {
                     "properties": {
                         "reason": {"type": "string", "maxLength": 500},
                         "note": _NOTE_REF,
+                    },
+                }
+            }
+        },
+    }
+}
+REVIEW_BODY: dict[str, Any] = {
+    "requestBody": {
+        "required": True,
+        "content": {"application/json": {"schema": _REVIEW_REF}},
+    }
+}
+REVIEW_AMEND_BODY: dict[str, Any] = {
+    "requestBody": {
+        "required": True,
+        "content": {
+            "application/json": {
+                "schema": {
+                    "type": "object",
+                    "required": ["review"],
+                    "additionalProperties": False,
+                    "properties": {
+                        "reason": {"type": "string", "maxLength": 500},
+                        "review": _REVIEW_REF,
                     },
                 }
             }
@@ -152,6 +178,9 @@ def install(app: FastAPI) -> None:
         note = Note.model_json_schema(ref_template="#/components/schemas/{model}")
         schemas.update(note.pop("$defs", {}))
         schemas["Note"] = note
+        review = Review.model_json_schema(ref_template="#/components/schemas/{model}")
+        schemas.update(review.pop("$defs", {}))
+        schemas["Review"] = review
         schemas["OperationOutcome"] = _OUTCOME_SCHEMA
         examples = _examples()
         for path in spec["paths"].values():

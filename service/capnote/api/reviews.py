@@ -7,9 +7,15 @@ from typing import Annotated
 from fastapi import APIRouter, Depends, Header, Path, Request
 from fastapi.responses import Response
 
+from capnote.api.answers import (
+    ReviewAnswer,
+    ReviewCheckAnswer,
+    ReviewVersionsAnswer,
+    SessionReviewsAnswer,
+)
 from capnote.api.auth import CHECK, READ, WRITE, allow
 from capnote.api.deps import Reviews
-from capnote.api.docs import responses
+from capnote.api.docs import CHECK_BODY, REVIEW_AMEND_BODY, REVIEW_BODY, VOID_BODY, responses
 from capnote.api.media import JSON, http_date, json_body, json_response
 from capnote.api.notes import if_match_version
 from capnote.findings import refusal
@@ -31,14 +37,21 @@ def _answer(stored: StoredReview, status: int = 200) -> Response:
     return Response(stored.json(), status, headers, media_type=JSON)
 
 
-@router.post("/reviews", status_code=201, responses=responses(200, 201, 409, 422))
+@router.post(
+    "/reviews",
+    status_code=201,
+    openapi_extra=REVIEW_BODY,
+    responses=responses(200, 201, 409, 422, model=ReviewAnswer),
+)
 async def submit_review(request: Request, reviews: Reviews, who: Writer) -> Response:
     """Check and store one review visit record and emit its Bundle (a resend is safe)."""
     created, stored = await reviews.submit(await json_body(request), who)
     return _answer(stored, 201 if created else 200)
 
 
-@router.post("/reviews/check", responses=responses(200))
+@router.post(
+    "/reviews/check", openapi_extra=CHECK_BODY, responses=responses(200, model=ReviewCheckAnswer)
+)
 async def check_review(
     request: Request, reviews: Reviews, _who: Annotated[Principal, Depends(allow(*CHECK))]
 ) -> Response:
@@ -56,19 +69,23 @@ async def check_review(
     return json_response(await reviews.check(body))
 
 
-@router.get("/reviews/{review_id}", responses=responses(200, 404))
+@router.get("/reviews/{review_id}", responses=responses(200, 404, model=ReviewAnswer))
 async def read_review(reviews: Reviews, review_id: str, _who: Reader) -> Response:
     """The latest version of a review record."""
     return _answer(await reviews.get(review_id))
 
 
-@router.get("/reviews/{review_id}/versions", responses=responses(200, 404))
+@router.get(
+    "/reviews/{review_id}/versions", responses=responses(200, 404, model=ReviewVersionsAnswer)
+)
 async def review_versions(reviews: Reviews, review_id: str, _who: Reader) -> Response:
     """Every version of a review record, oldest first."""
     return json_response({"id": review_id, "versions": await reviews.versions(review_id)})
 
 
-@router.get("/reviews/{review_id}/versions/{version}", responses=responses(200, 404))
+@router.get(
+    "/reviews/{review_id}/versions/{version}", responses=responses(200, 404, model=ReviewAnswer)
+)
 async def read_review_version(
     reviews: Reviews,
     review_id: str,
@@ -79,7 +96,11 @@ async def read_review_version(
     return _answer(await reviews.get(review_id, version))
 
 
-@router.put("/reviews/{review_id}", responses=responses(200, 404, 409, 412, 422, 428))
+@router.put(
+    "/reviews/{review_id}",
+    openapi_extra=REVIEW_AMEND_BODY,
+    responses=responses(200, 404, 409, 412, 422, 428, model=ReviewAnswer),
+)
 async def amend_review(
     request: Request,
     reviews: Reviews,
@@ -93,7 +114,11 @@ async def amend_review(
     return _answer(await reviews.amend(review_id, body, who, if_match_version(if_match)))
 
 
-@router.post("/reviews/{review_id}/void", responses=responses(200, 404, 412, 422, 428))
+@router.post(
+    "/reviews/{review_id}/void",
+    openapi_extra=VOID_BODY,
+    responses=responses(200, 404, 412, 422, 428, model=ReviewAnswer),
+)
 async def void_review(
     request: Request,
     reviews: Reviews,
@@ -106,7 +131,7 @@ async def void_review(
     return _answer(await reviews.void(review_id, body, who, if_match_version(if_match)))
 
 
-@router.get("/notes/{note_id}/reviews", responses=responses(200, 404))
+@router.get("/notes/{note_id}/reviews", responses=responses(200, 404, model=SessionReviewsAnswer))
 async def reviews_of_session(reviews: Reviews, note_id: str, _who: Reader) -> Response:
     """The review records of one laser session (the newest version of each), as seen."""
     return json_response(await reviews.of_session(note_id))
