@@ -5,6 +5,7 @@ that keep a review with its own session's patient and eye (capnote.rules.review)
 from __future__ import annotations
 
 import copy
+import json
 from typing import Any
 
 import httpx
@@ -257,3 +258,31 @@ def test_a_session_amended_after_its_review_keeps_the_review_done(
     assert post(api, "/reviews", review()).status_code == 201
     # After a signed, attended review, an amendment of the session does not reopen it.
     assert _review_request_status(amend(2, "Nurse Invented Two")) == "completed"
+
+
+def test_review_reads_changes_and_refusals_are_in_the_audit_trail(
+    api: Api, session_id: str
+) -> None:
+    from tests.fhir_r4_check import r4_problems
+
+    key = post(api, "/reviews", review()).json()["id"]
+    api.client.get(f"/reviews/{key}", headers=api.headers("analyst"))
+    post(api, "/reviews", review(symptoms_relieved=False))  # 409: refused, recorded
+    post(api, "/reviews/check", review(), role="analyst")  # reads nothing stored
+    events = api.client.get("/fhir/AuditEvent", headers=api.headers("auditor"))
+    assert events.status_code == 200
+    bundle = events.json()
+    assert r4_problems(bundle) == []
+    recent = [e["resource"] for e in bundle["entry"]][:3]
+    assert [(r["subtype"][0]["code"], r["action"], r["outcome"]) for r in recent] == [
+        ("create", "C", "4"),
+        ("read", "R", "0"),
+        ("create", "C", "0"),
+    ]
+    # Named as the review record it is, never as a Procedure.
+    stored = recent[2]["entity"][0]["what"]
+    assert stored == {
+        "identifier": {"system": "https://capnote.org/fhir/sid/review-record", "value": key}
+    }
+    assert recent[2]["entity"][0]["detail"] == [{"type": "version", "valueString": "1"}]
+    assert SESSION["patient"]["value"] not in json.dumps(bundle)

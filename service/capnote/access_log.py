@@ -12,6 +12,7 @@ from dataclasses import dataclass
 
 _UUID = r"[0-9a-fA-F]{8}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{4}-[0-9a-fA-F]{12}"
 _NOTE = re.compile(rf"^/notes/({_UUID})(?:/|$)")
+_REVIEW = re.compile(rf"^/reviews/({_UUID})(?:/|$)")
 _FHIR_ID = re.compile(rf"^/fhir/[A-Za-z]+/({_UUID})(?:[-/]|$)")
 # Served without patient data: the server's own description and conformance resources.
 _NOT_PATIENT_DATA = (
@@ -48,6 +49,17 @@ def audited(method: str, path: str, query: str, status: int) -> Access | None:
             return Access(change, _key(_NOTE, path), outcome, _detail(method, path, query))
         action = "search" if path == "/notes" else "read"
         return Access(action, _key(_NOTE, path), outcome, _detail(method, path, query))
+    if path == "/reviews" or path.startswith("/reviews/"):
+        # Review visit records are patient data like notes; their actions say "review-".
+        if path == "/reviews/check":
+            return None
+        change = _change(method, path, "/reviews")
+        if change is not None:
+            if status < 400:
+                return None  # stored, and recorded with its version (capnote.reviews)
+            key = _key(_REVIEW, path)
+            return Access(f"review-{change}", key, outcome, _detail(method, path, query))
+        return Access("review-read", _key(_REVIEW, path), outcome, _detail(method, path, query))
     if path.startswith("/fhir/"):
         if path.startswith(_NOT_PATIENT_DATA) or "$validate" in path:
             return None
@@ -57,8 +69,8 @@ def audited(method: str, path: str, query: str, status: int) -> Access | None:
     return None
 
 
-def _change(method: str, path: str) -> str | None:
-    if method == "POST" and path == "/notes":
+def _change(method: str, path: str, collection: str = "/notes") -> str | None:
+    if method == "POST" and path == collection:
         return "create"
     if method == "PUT":
         return "amend"

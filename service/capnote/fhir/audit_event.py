@@ -12,6 +12,7 @@ from __future__ import annotations
 import base64
 from typing import Any, Final
 
+from capnote.fhir.codes import CANONICAL
 from capnote.fhir.provenance import TOKEN_SYSTEM
 from capnote.store.base import AuditRecord
 
@@ -19,6 +20,8 @@ EVENT_TYPE: Final = "http://terminology.hl7.org/CodeSystem/audit-event-type"
 DICOM: Final = "http://dicom.nema.org/resources/ontology/DCM"
 INTERACTION: Final = "http://hl7.org/fhir/restful-interaction"
 ENTITY_TYPE: Final = "http://terminology.hl7.org/CodeSystem/audit-entity-type"
+# capnote's ids of review visit records (capnote.reviews), as an identifier system.
+REVIEW_RECORD: Final = f"{CANONICAL}/sid/review-record"
 
 _REST = {"system": EVENT_TYPE, "code": "rest", "display": "RESTful Operation"}
 # DICOM audit message types (DICOM PS3.15 A.5.3; DCM codes in PS3.16).
@@ -35,6 +38,10 @@ _KINDS: dict[str, tuple[dict[str, str], str | None, str]] = {
     "recount": (_REST, "update", "U"),
     # A void stores a version that marks everything entered in error: a logical delete.
     "void": (_REST, "update", "D"),
+    "review-read": (_REST, "read", "R"),
+    "review-create": (_REST, "create", "C"),
+    "review-amend": (_REST, "update", "U"),
+    "review-void": (_REST, "update", "D"),
     "deliver": (_EXPORT, None, "E"),
     "token-create": (_SECURITY, None, "C"),
     "token-revoke": (_SECURITY, None, "D"),
@@ -77,7 +84,12 @@ def audit_event(entry: AuditRecord) -> dict[str, Any]:
         event["outcomeDesc"] = entry.outcome
     entities: list[dict[str, Any]] = []
     if entry.note_key is not None:
-        what: dict[str, Any] = {"reference": f"Procedure/{entry.note_key}"}
+        what: dict[str, Any] = (
+            # A review visit record is no Procedure: it is named by capnote's review id.
+            {"identifier": {"system": REVIEW_RECORD, "value": entry.note_key}}
+            if entry.action.startswith("review-")
+            else {"reference": f"Procedure/{entry.note_key}"}
+        )
         note: dict[str, Any] = {"what": what}
         if entry.version is not None:
             note["detail"] = [{"type": "version", "valueString": str(entry.version)}]
