@@ -40,6 +40,7 @@ ALLOWED: dict[tuple[str, str], set[str] | None] = {
     ("post", "/reviews/check"): CHECK,
     ("get", "/reviews/{review_id}"): READ,
     ("get", "/reviews/{review_id}/versions"): READ,
+    ("get", "/reviews/{review_id}/delivery"): READ,
     ("get", "/reviews/{review_id}/versions/{version}"): READ,
     ("put", "/reviews/{review_id}"): WRITE,
     ("post", "/reviews/{review_id}/void"): WRITE,

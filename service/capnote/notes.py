@@ -43,6 +43,7 @@ from capnote.store.base import (
     AuditRow,
     DuplicateVersionError,
     NewVersion,
+    OutboxRow,
     Store,
     VersionRow,
 )
@@ -728,22 +729,7 @@ class NoteService:
         entries = await self.store.outbox_of_note(key)
         if not entries and not await self.store.note_exists(key):
             raise NotFoundError("no note with this id")
-        return {
-            "id": key,
-            "forwarding": self.forward,
-            "deliveries": [
-                {
-                    "version": e.version,
-                    "state": e.state,
-                    "attempts": e.attempts,
-                    "last_status": e.last_status,
-                    "receiver_answer": receiver_answer(e.last_error),
-                    "next_attempt_at": e.next_attempt_at.isoformat(),
-                    "delivered_at": e.delivered_at.isoformat() if e.delivered_at else None,
-                }
-                for e in entries
-            ],
-        }
+        return delivery_view(key, self.forward, entries)
 
     async def ready(self) -> None:
         """UnavailableError when the store does not answer, or answers but takes no writes
@@ -779,6 +765,27 @@ def _other_identifier() -> InputError:
         "the note's identifier belongs to another note",
         "an amendment keeps the note identifier",
     )
+
+
+def delivery_view(key: str, forward: bool, entries: Sequence[OutboxRow]) -> dict[str, Any]:
+    """Where each version's Bundle stands on its way to the receiver (a note's or a
+    review's: their outbox entries are alike)."""
+    return {
+        "id": key,
+        "forwarding": forward,
+        "deliveries": [
+            {
+                "version": e.version,
+                "state": e.state,
+                "attempts": e.attempts,
+                "last_status": e.last_status,
+                "receiver_answer": receiver_answer(e.last_error),
+                "next_attempt_at": e.next_attempt_at.isoformat(),
+                "delivered_at": e.delivered_at.isoformat() if e.delivered_at else None,
+            }
+            for e in entries
+        ],
+    }
 
 
 def receiver_answer(entry_error: str | None) -> object:

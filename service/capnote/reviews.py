@@ -30,7 +30,7 @@ from capnote.fhir.review import emit_review
 from capnote.findings import Finding, has_errors
 from capnote.note import Identifier, Note
 from capnote.note_input import check_match, json_object, known_key, problem, reason_text
-from capnote.notes import Principal
+from capnote.notes import Principal, delivery_view
 from capnote.plain_text import CAUTION
 from capnote.review import Review
 from capnote.rules import Context
@@ -437,6 +437,14 @@ class ReviewService:
             }
             for r in rows
         ]
+
+    async def delivery(self, key: str) -> dict[str, Any]:
+        """Where each version's Bundle stands on its way to the hospital's FHIR server."""
+        key = known_key(key)
+        entries = await self.store.outbox_of_note(key)
+        if not entries and await self.store.review_latest(key) is None:
+            raise NotFoundError("no review with this id")
+        return delivery_view(key, self.forward, entries)
 
     async def of_session(self, note_id: str) -> dict[str, Any]:
         """The reviews of one laser session (the newest version of each), as seen."""

@@ -8,6 +8,7 @@ from fastapi import APIRouter, Depends, Header, Path, Request
 from fastapi.responses import Response
 
 from capnote.api.answers import (
+    DeliveryAnswer,
     ReviewAnswer,
     ReviewCheckAnswer,
     ReviewVersionsAnswer,
@@ -129,6 +130,12 @@ async def void_review(
     """Mark a review entered-in-error, with a reason; the session's review is owed again."""
     body = await json_body(request)
     return _answer(await reviews.void(review_id, body, who, if_match_version(if_match)))
+
+
+@router.get("/reviews/{review_id}/delivery", responses=responses(200, 404, model=DeliveryAnswer))
+async def review_delivery(reviews: Reviews, review_id: str, _who: Reader) -> Response:
+    """Where each version's Bundle stands on its way to the hospital's FHIR server."""
+    return json_response(await reviews.delivery(review_id))
 
 
 @router.get("/notes/{note_id}/reviews", responses=responses(200, 404, model=SessionReviewsAnswer))
