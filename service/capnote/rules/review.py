@@ -279,15 +279,19 @@ def clinical(review: Review, session: ReviewedSession | None, ctx: Context) -> I
                     "a review records the complications audited after capsulotomy",
                     source=STEINBERG,
                 )
-    high = review.iop is not None and review.iop.value_mmhg >= t.iop_high_mmhg.value
-    if high and review.iop is not None and f.raised_iop_needing_treatment is None:
+    iop = review.iop
+    if (
+        iop is not None
+        and iop.value_mmhg >= t.iop_high_mmhg.value
+        and f.raised_iop_needing_treatment is None
+    ):
         yield warning(
             "review-iop-high",
             "findings.raised_iop_needing_treatment",
-            f"IOP of {review.iop.value_mmhg:g} mmHg at the review, and whether it needs "
+            f"IOP of {iop.value_mmhg:g} mmHg at the review, and whether it needs "
             "treatment is not recorded",
             f"an IOP of {t.iop_high_mmhg.value:g} mmHg or more is treated or explained",
-            value=review.iop.value_mmhg,
+            value=iop.value_mmhg,
             allowed=f"< {t.iop_high_mmhg.value:g} mmHg",
             source=t.iop_high_mmhg.source,
         )

@@ -184,6 +184,14 @@ class PostgresStore(Store):
     async def write_many(self, versions: Sequence[NewVersion], *, forward: bool) -> None:
         """Store the versions: one statement each, in one transaction when several."""
         statements = [(_WRITES[(v.row.version > 1, forward)], _write_params(v)) for v in versions]
+        await self._write(statements)
+
+    async def write_all(self, steps: Sequence[tuple[str, dict[str, Any]]]) -> None:
+        """Run the named statements in one transaction (see Store)."""
+        await self._write([(self._sql[n].text, self._sql[n].params(p)) for n, p in steps])
+
+    async def _write(self, statements: Sequence[tuple[str, dict[str, Any]]]) -> None:
+        """Run statements in one transaction (one alone needs none), driver errors mapped."""
         pool = await self._connections()
         try:
             async with pool.connection() as connection:
@@ -199,23 +207,6 @@ class PostgresStore(Store):
             raise UnavailableError("the database is not reachable right now") from exc
         except psycopg.errors.ReadOnlySqlTransaction as exc:
             # A standby after a failover, or the server set read-only: nothing was written.
-            raise UnavailableError(_READ_ONLY) from exc
-        except psycopg.DataError as exc:
-            raise unstorable() from exc
-
-    async def write_all(self, steps: Sequence[tuple[str, dict[str, Any]]]) -> None:
-        """Run the named statements in one transaction (see Store)."""
-        pool = await self._connections()
-        try:
-            async with pool.connection() as connection, connection.transaction():
-                for name, params in steps:
-                    sql = self._sql[name]
-                    await connection.execute(sql.text, sql.params(params))
-        except psycopg.errors.UniqueViolation as exc:
-            raise DuplicateVersionError from exc
-        except (PoolTimeout, psycopg.OperationalError) as exc:
-            raise UnavailableError("the database is not reachable right now") from exc
-        except psycopg.errors.ReadOnlySqlTransaction as exc:
             raise UnavailableError(_READ_ONLY) from exc
         except psycopg.DataError as exc:
             raise unstorable() from exc
