@@ -286,3 +286,46 @@ def test_review_reads_changes_and_refusals_are_in_the_audit_trail(
     }
     assert recent[2]["entity"][0]["detail"] == [{"type": "version", "valueString": "1"}]
     assert SESSION["patient"]["value"] not in json.dumps(bundle)
+
+
+def _review_request(answer: httpx.Response) -> dict[str, Any]:
+    [found] = [
+        e["resource"]
+        for e in answer.json()["bundle"]["entry"]
+        if e["resource"]["resourceType"] == "ServiceRequest"
+    ]
+    return found
+
+
+def test_a_missed_review_amended_later_never_reopens_a_completed_review(
+    api: Api, session_id: str
+) -> None:
+    missed = review(
+        review_id={"system": "https://harbourside-eye.example/fhir/sid/review", "value": "RV-0"},
+        seen_at="2026-11-29T09:00:00+00:00",
+        attended=False,
+        seen_by=None,
+        visual_acuity=None,
+        iop=None,
+        opening={},
+        symptoms_relieved=None,
+        findings={},
+        retreatment_needed=None,
+        outcome=None,
+    )
+    first = post(api, "/reviews", missed)
+    assert first.status_code == 201, first.text
+    assert _review_request(first)["status"] == "active"  # still owed
+    seen = post(api, "/reviews", review())
+    assert seen.status_code == 201, seen.text
+    assert _review_request(seen)["status"] == "completed"
+    # The missed record corrected later (a comment added): the review stays done, because
+    # another review of the session, signed and attended, completed it.
+    body = {"reason": "clerical note", "review": {**missed, "comment": "Rebooked by phone."}}
+    amended = api.client.put(
+        f"/reviews/{first.json()['id']}",
+        content=orjson.dumps(body),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
+    )
+    assert amended.status_code == 200, amended.text
+    assert _review_request(amended)["status"] == "completed"

@@ -291,3 +291,43 @@ def test_a_receivers_wait_is_capped(asked: float) -> None:
     worker = DeliveryWorker(store, Receiver(base_url="http://127.0.0.1:9/fhir"), max_asked_s=3600.0)
     assert worker.backoff(1, asked) == timedelta(seconds=3600)
     assert worker.backoff(1, 90.0) == timedelta(seconds=90)
+
+
+def test_a_review_completes_the_review_request_at_the_receiver(setup: Any) -> None:
+    from capnote.reviews import ReviewService
+    from tests.test_api_reviews import review
+
+    service, _url, clock = setup
+    reviews = ReviewService(service.store, service.service.assessor, clock, forward=True)
+    _, stored = service.submit(json.dumps(routine()).encode(), WHO)
+    receiver = Store()
+    with running(receiver) as url:
+        worker = worker_for(service, url, clock)
+        drain(service, worker, clock, rounds=2)
+
+        def review_request() -> dict[str, Any]:
+            [found] = [
+                versions[-1]
+                for versions in receiver.resources["ServiceRequest"].values()
+                if versions[-1]["code"]["coding"][0]["code"] == "capsulotomy-review"
+            ]
+            return found
+
+        assert review_request()["status"] == "active"
+        created, done = service.run(reviews.submit(json.dumps(review()).encode(), WHO))
+        assert created
+        drain(service, worker, clock, rounds=2)
+        # The hospital record now holds the review request completed, and the review's
+        # resources beside it, each once.
+        assert review_request()["status"] == "completed"
+        delivered = service.run(reviews.delivery(done.key))
+        service.run(worker.aclose())
+    assert [d["state"] for d in delivered["deliveries"]] == ["delivered"]
+    assert receiver.count("Condition") == 2  # RD and CME recorded absent: refuted
+    verified = {
+        versions[-1]["verificationStatus"]["coding"][0]["code"]
+        for versions in receiver.resources["Condition"].values()
+    }
+    assert verified == {"refuted"}
+    assert states(service) == Counter({"delivered": 2})
+    assert stored.key == done.session_key

@@ -26,7 +26,7 @@ from capnote.errors import ConflictError, InputError, NotFoundError, Preconditio
 from capnote.fhir.common import PROCEDURE_ROLE, Emitted, KeyMaker, Version
 from capnote.fhir.outcome import outcome
 from capnote.fhir.provenance import Actor, provenance_entry
-from capnote.fhir.review import emit_review
+from capnote.fhir.review import ReviewDerived, emit_review
 from capnote.findings import Finding, has_errors
 from capnote.note import Identifier, Note
 from capnote.note_input import check_match, json_object, known_key, problem, reason_text
@@ -198,15 +198,25 @@ class ReviewService:
         result = _assessment(review, findings, session)
         if review is None or has_errors(findings) or row is None:
             return {**result, "bundle": None}
-        emitted = self._emit(review, row, Version(1))
+        emitted = await self._emit(review, row, Version(1))
         return {"id": review_key(review), **result, "bundle": emitted.bundle}
 
-    def _emit(self, review: Review, session_row: VersionRow, version: Version) -> Emitted:
+    async def _emit(self, review: Review, session_row: VersionRow, version: Version) -> Emitted:
         derived = derived_values(review, reviewed_session(session_row))
         bundle = orjson.loads(unpack_bundle(session_row.bundle))
         roles = tuple(role for _kind, role in unpack_roles(session_row.roles))
+        key = review_key(review)
+        others = await self.store.reviews_of_session(session_row.note_key)
         return emit_review(
-            review, bundle, roles, derived["logmar"], version, self.assessor.policy.record
+            review,
+            bundle,
+            roles,
+            ReviewDerived(derived["logmar"], derived["iop_change_from_pre_laser_mmhg"]),
+            version,
+            self.assessor.policy.record,
+            reviewed_elsewhere=any(
+                r.status == "final" and r.attended and r.review_key != key for r in others
+            ),
         )
 
     # -- writing ---------------------------------------------------------------------------
@@ -225,7 +235,7 @@ class ReviewService:
     ) -> StoredReview:
         key = review_key(review)
         now = self.clock()
-        emitted = self._emit(review, session_row, version)
+        emitted = await self._emit(review, session_row, version)
         keys = KeyMaker.of_record(review.review_id, REVIEW_KIND)
         signed = status == "final" and review.seen_by is not None
         seen_by = review.seen_by

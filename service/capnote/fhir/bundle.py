@@ -14,7 +14,7 @@ from typing import Any
 from capnote.derive import Derived
 from capnote.errors import EmissionError
 from capnote.fhir.bindings import status_problem
-from capnote.fhir.codes import RESOURCE_KEY
+from capnote.fhir.codes import CONDITION_ENTERED_IN_ERROR, RESOURCE_KEY
 from capnote.fhir.common import Emitted, Entry, Version, VersionContext, key_query
 from capnote.fhir.identity import (
     prophylaxis_roles,
@@ -67,7 +67,7 @@ def entries(
     return out
 
 
-def _request(entry: Entry, version: int) -> dict[str, str]:
+def request_of(entry: Entry, version: int) -> dict[str, str]:
     """Version 1 creates if absent; later versions update what the receiver holds, found by
     the same identifier search (conditional update), so every resend stays harmless."""
     kind = entry.resource["resourceType"]
@@ -95,9 +95,20 @@ def withdrawn(previous: Emitted, kept: set[str]) -> list[Entry]:
         # A version's Provenance stays what it was: the record of that version.
         if key in kept or entry["resource"]["resourceType"] == "Provenance":
             continue
-        resource = dict(entry["resource"])
-        resource["status"] = _WITHDRAWN[resource["resourceType"]]
-        out.append(Entry(key, resource, key_query(key), role))
+        out.append(Entry(key, withdrawn_resource(entry["resource"]), key_query(key), role))
+    return out
+
+
+def withdrawn_resource(resource: dict[str, Any]) -> dict[str, Any]:
+    """A copy of a resource, marked withdrawn (entered in error, revoked or cancelled)."""
+    out = dict(resource)
+    if out["resourceType"] == "Condition":
+        # A Condition has no status: its verification says entered in error, and then it
+        # carries no clinical status (R4 invariant con-5).
+        out.pop("clinicalStatus", None)
+        out["verificationStatus"] = CONDITION_ENTERED_IN_ERROR
+    else:
+        out["status"] = _WITHDRAWN[out["resourceType"]]
     return out
 
 
@@ -190,7 +201,7 @@ def emit(
     ctx = VersionContext(note, version, record)
     items = entries(note, derived, due, version, ctx)
     for e in items:
-        url = _profile(e.resource)
+        url = profile(e.resource)
         if url is not None:
             # The profile it conforms to (schemas/fhir-package), so a receiver can check it.
             e.resource["meta"] = {"profile": [url]}
@@ -212,7 +223,7 @@ def emit(
             {
                 "fullUrl": e.full_url,
                 "resource": e.resource,
-                "request": _request(e, version.number),
+                "request": request_of(e, version.number),
             }
             for e in items
         ],
@@ -221,7 +232,7 @@ def emit(
     return Emitted(result, tuple(e.role for e in items))
 
 
-def _profile(resource: dict[str, Any]) -> str | None:
+def profile(resource: dict[str, Any]) -> str | None:
     """profile_for, looked up once per type and code (a Bundle holds about twenty)."""
     code = resource.get("code")
     codings = tuple((c.get("system"), c.get("code")) for c in (code or {}).get("coding", ()) if c)

@@ -18,6 +18,9 @@ CANONICAL: Final = "https://capnote.org/fhir"
 CAPNOTE_CS: Final = f"{CANONICAL}/CodeSystem/capnote"
 RESOURCE_KEY: Final = f"{CANONICAL}/sid/resource-key"
 FINDING_CS: Final = f"{CANONICAL}/CodeSystem/finding"
+CONDITION_CATEGORY: Final = "http://terminology.hl7.org/CodeSystem/condition-category"
+CONDITION_CLINICAL: Final = "http://terminology.hl7.org/CodeSystem/condition-clinical"
+CONDITION_VERIFICATION: Final = "http://terminology.hl7.org/CodeSystem/condition-ver-status"
 
 # SNOMED CT, all [confirmed] in coding.md.
 EYE_STRUCTURE: Final = {"right": "18944008", "left": "8966001"}
@@ -141,6 +144,67 @@ CONCEPTS: Final[dict[str, tuple[str, str]]] = {
     "iop-recheck": ("IOP recheck after laser", "Same-day IOP measurement after the laser."),
     "next-day-iop-check": ("Next-day IOP check", "IOP measurement the day after the laser."),
     "capsulotomy-review": ("Review after capsulotomy", "Clinic review after the laser."),
+    # The review visit (capnote.review).
+    "review-attendance": (
+        "Attendance at the review after capsulotomy",
+        "Whether the patient came to the booked review; the value says which.",
+    ),
+    "review-attended": ("Attended the review", "The patient was seen at the review."),
+    "review-did-not-attend": (
+        "Did not attend the review",
+        "The patient did not come to the booked review.",
+    ),
+    "opening-at-review": (
+        "Capsule opening at review",
+        "The opening as seen at the review; components say whether it is patent and adequate.",
+    ),
+    "opening-patent": (
+        "Opening patent",
+        "The opening is clear on the visual axis (not closed by regrowth or leaflets).",
+    ),
+    "opening-adequate": (
+        "Opening adequate",
+        "The opening is large enough and well placed for vision and the view of the fundus.",
+    ),
+    "symptoms-relieved": (
+        "Symptoms relieved after capsulotomy",
+        "The symptoms that led to the laser are relieved.",
+    ),
+    "retreatment-needed": (
+        "Further laser needed",
+        "Another laser session on this eye is needed.",
+    ),
+    "review-outcome": (
+        "Outcome of the review after capsulotomy",
+        "What was decided at the review; a component gives the follow-up interval.",
+    ),
+    "review-discharged": ("Discharged after review", "The capsulotomy pathway ends."),
+    "review-further-follow-up": (
+        "Further follow-up after review",
+        "The patient is to be seen again.",
+    ),
+    "follow-up-interval": ("Follow-up interval", "Days until the patient is seen again."),
+    "iop-change-from-pre-laser": (
+        "IOP at review minus pre-laser IOP",
+        "The review IOP minus the IOP measured before the laser session.",
+    ),
+    "review-other-finding": ("Other finding at review", "Anything else found, in words."),
+    "iol-pits": ("IOL pits", "Laser pits in the IOL optic."),
+    "raised-iop-needing-treatment": (
+        "Raised IOP needing treatment",
+        "An intraocular pressure raised enough to need treatment.",
+    ),
+}
+
+# Condition statuses (terminology.hl7.org, bound required in R4 Condition).
+CONDITION_ENTERED_IN_ERROR: Final = {
+    "coding": [
+        {
+            "system": CONDITION_VERIFICATION,
+            "code": "entered-in-error",
+            "display": "Entered in Error",
+        }
+    ]
 }
 
 

@@ -12,7 +12,7 @@ import uuid
 from dataclasses import dataclass
 from datetime import datetime
 from functools import lru_cache
-from typing import Any
+from typing import Any, Protocol
 from urllib.parse import quote
 
 from capnote.fhir.codes import CANONICAL, RESOURCE_KEY
@@ -145,8 +145,15 @@ def key_query(key: str) -> str:
     return _KEY_QUERY + key
 
 
-def keyed(ctx: VersionContext, role: str, kind: str) -> tuple[str, dict[str, Any]]:
-    """A new resource of the note in this role: its key and the resource, begun with its
+class Keyed(Protocol):
+    """What keyed() needs of a record's context: its keys (a note's or a review's)."""
+
+    @property
+    def keys(self) -> KeyMaker: ...
+
+
+def keyed(ctx: Keyed, role: str, kind: str) -> tuple[str, dict[str, Any]]:
+    """A new resource of the record in this role: its key and the resource, begun with its
     type and its identifier (the project's resource key, which ifNoneExist searches), as
     FHIR JSON is usually read; the builder adds the rest."""
     key = ctx.keys.key(role)

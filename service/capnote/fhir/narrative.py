@@ -73,7 +73,25 @@ def _service_request(r: dict[str, Any]) -> list[str]:
     return lines
 
 
+def _condition(r: dict[str, Any]) -> list[str]:
+    lines = [_text(r.get("code")) or "Condition"]
+    verification = _text(r.get("verificationStatus"))
+    if verification:
+        lines.append(f"Verification: {verification}")
+    clinical = _text(r.get("clinicalStatus"))
+    if clinical:
+        lines.append(f"Clinical status: {clinical}")
+    sites = [t for site in r.get("bodySite", ()) if (t := _text(site))]
+    if sites:
+        lines.append("Site: " + ", ".join(sites))
+    lines += [str(n["text"]) for n in r.get("note", ()) if n.get("text")]
+    if r.get("recordedDate"):
+        lines.append(f"Recorded {r['recordedDate']}")
+    return lines
+
+
 _BY_KIND = {
+    "Condition": _condition,
     "Observation": _observation,
     "MedicationAdministration": _medication,
     "MedicationRequest": _medication,

@@ -74,47 +74,56 @@ class ObservationMaker:
 
     def iop(self, role: str, reading: IopReading, fallback: str) -> Entry:
         """An IOP reading, coded by eye."""
-        eye = self.ctx.note.eye
-        code = concept(
-            coding(LOINC, codes.IOP_BY_EYE[eye], codes.IOP_BY_EYE_DISPLAY[eye]),
-            coding(SNOMED, codes.IOP_OBSERVABLE, codes.IOP_OBSERVABLE_DISPLAY),
-            text=f"Intraocular pressure, {eye} eye",
-        )
         effective = when(reading.measured_at) if reading.measured_at else fallback
-        return self.make(
-            role,
-            "exam",
-            code,
-            effective,
-            {"valueQuantity": quantity(reading.value_mmhg, "mmHg", "mm[Hg]")},
-            method=concept(text=_METHOD[reading.method]),
-        )
+        return self.make(role, "exam", iop_code(self.ctx.note.eye), effective, **iop_value(reading))
 
     def acuity(
         self, role: str, entered: VisualAcuity, logmar: float | None, effective: str
     ) -> Entry:
         """Visual acuity as entered, with its logMAR (derived already) as a component."""
-        eye = self.ctx.note.eye
-        # The best-corrected LOINC code only for a correction recorded as best-corrected: a
-        # correction not recorded is sent as acuity of unstated correction, never assumed.
-        snellen_bcva = entered.correction == "best-corrected" and entered.notation.startswith(
-            "snellen"
+        code, value = acuity_coded(self.ctx.note.eye, entered, logmar)
+        return self.make(role, "exam", code, effective, **value)
+
+
+def iop_code(eye: str) -> dict[str, Any]:
+    """The code of an IOP reading of one eye: LOINC by eye and the SNOMED CT observable."""
+    return concept(
+        coding(LOINC, codes.IOP_BY_EYE[eye], codes.IOP_BY_EYE_DISPLAY[eye]),
+        coding(SNOMED, codes.IOP_OBSERVABLE, codes.IOP_OBSERVABLE_DISPLAY),
+        text=f"Intraocular pressure, {eye} eye",
+    )
+
+
+def iop_value(reading: IopReading) -> dict[str, Any]:
+    """An IOP Observation's value and method."""
+    return {
+        "valueQuantity": quantity(reading.value_mmhg, "mmHg", "mm[Hg]"),
+        "method": concept(text=_METHOD[reading.method]),
+    }
+
+
+def acuity_coded(
+    eye: str, entered: VisualAcuity, logmar: float | None
+) -> tuple[dict[str, Any], dict[str, Any]]:
+    """A visual acuity Observation's code, and its value as entered with the logMAR
+    (derived already) as a component."""
+    # The best-corrected LOINC code only for a correction recorded as best-corrected: a
+    # correction not recorded is sent as acuity of unstated correction, never assumed.
+    snellen_bcva = entered.correction == "best-corrected" and entered.notation.startswith("snellen")
+    correction = entered.correction or "correction not recorded"
+    label = f"Visual acuity ({correction}, {entered.notation}), {eye} eye"
+    code = (
+        concept(
+            coding(LOINC, codes.BCVA_SNELLEN_BY_EYE[eye], codes.BCVA_SNELLEN_DISPLAY[eye]),
+            text=label,
         )
-        correction = entered.correction or "correction not recorded"
-        label = f"Visual acuity ({correction}, {entered.notation}), {eye} eye"
-        code = (
-            concept(
-                coding(LOINC, codes.BCVA_SNELLEN_BY_EYE[eye], codes.BCVA_SNELLEN_DISPLAY[eye]),
-                text=label,
-            )
-            if snellen_bcva
-            else concept(own("visual-acuity"), text=label)
-        )
-        shown = QUALITATIVE.get(entered.value.upper(), entered.value)
-        extra: dict[str, Any] = {}
-        if logmar is not None:
-            extra["component"] = [part("logmar", quantity(logmar, "logMAR", "{logMAR}"))]
-        return self.make(role, "exam", code, effective, {"valueString": shown}, **extra)
+        if snellen_bcva
+        else concept(own("visual-acuity"), text=label)
+    )
+    value: dict[str, Any] = {"valueString": QUALITATIVE.get(entered.value.upper(), entered.value)}
+    if logmar is not None:
+        value["component"] = [part("logmar", quantity(logmar, "logMAR", "{logMAR}"))]
+    return code, value
 
 
 def observations(ctx: VersionContext, procedure: Entry, derived: Derived) -> list[Entry]:
