@@ -1,14 +1,17 @@
 """The clinical audit at full size: `capnote audit` over a year of 100,000 sessions.
 
 Fills a database with 100,000 final sessions, then times the audit's SQL aggregates alone
-(Store.audit_figures) and the whole command (`capnote audit ... --report`, a process of its
-own, HTML and CSV), and prints the figures. The target is under 10 s for the command.
+(Store.audit_figures, which joins each session's review visits) and the whole command
+(`capnote audit ... --report`, a process of its own, HTML and CSV), and prints the
+figures. The target is under 10 s for the command.
 
 The rows are written straight into note_version, not through the service (which would take
 minutes on two cores and is benchmarked elsewhere): one real note is submitted through the
 service, and its row is copied 100,000 times with invented, deterministic variations of
 what the audit reads (session start, unit, clinician, total energy, IOP rise grade,
-glaucoma, prophylaxis, days from cataract surgery). Run it by hand:
+glaucoma, prophylaxis, days from cataract surgery, review booked); one review of it is
+submitted too, and copied for nine sessions in ten (attended or missed, with invented
+findings). Run it by hand:
 
     python bench/audit.py [--sessions N] [--postgres]
 """
@@ -34,12 +37,13 @@ import orjson  # noqa: E402
 from sqlalchemy import insert, select  # noqa: E402
 
 from capnote.assess import Assessor  # noqa: E402
-from capnote.audit.demo_year import CLINICIANS, STAFF, UNITS, sessions  # noqa: E402
+from capnote.audit.demo_year import CLINICIANS, STAFF, UNITS, reviews, sessions  # noqa: E402
 from capnote.notes import NoteService, Principal  # noqa: E402
 from capnote.policy import load_policy  # noqa: E402
+from capnote.reviews import ReviewService  # noqa: E402
 from capnote.store.base import VERSION_COLUMNS  # noqa: E402
 from capnote.store.database import make_engine, migrate, open_store  # noqa: E402
-from capnote.store.tables import NoteVersion  # noqa: E402
+from capnote.store.tables import NoteVersion, ReviewVersion  # noqa: E402
 
 START = datetime(2025, 12, 1, tzinfo=UTC)
 NOW = datetime(2026, 12, 1, tzinfo=UTC)
@@ -51,15 +55,21 @@ def fill(url: str, count: int) -> float:
 
     async def one() -> None:
         service = NoteService(open_store(url), Assessor(load_policy()), lambda: NOW)
+        who = Principal("bench", "submitter")
         try:
             note = next(sessions(1))
-            await service.submit(orjson.dumps(note), Principal("bench", "submitter"))
+            await service.submit(orjson.dumps(note), who)
+            review = next(r for r in reviews([note] * 40, NOW) if r["attended"])
+            visits = ReviewService(service.store, service.assessor, lambda: NOW)
+            await visits.submit(orjson.dumps(review), who)
         finally:
             await service.store.aclose()
 
     asyncio.run(one())
     began = time.perf_counter()
     table = NoteVersion.__table__  # type: ignore[attr-defined]
+    visits = ReviewVersion.__table__  # type: ignore[attr-defined]
+    review_columns = [c.name for c in visits.columns if c.name != "id"]
     engine = make_engine(url)
     rng = random.Random(19)  # noqa: S311 - invented bench data
     with engine.begin() as connection:
@@ -70,7 +80,14 @@ def fill(url: str, count: int) -> float:
                 strict=True,
             )
         )
-        batch = []
+        seen = dict(
+            zip(
+                review_columns,
+                connection.execute(select(*(visits.c[n] for n in review_columns))).one(),
+                strict=True,
+            )
+        )
+        batch, reviewed = [], []
         for i in range(count):
             unit, staff, name, p_moderate, p_severe = CLINICIANS[i % len(CLINICIANS)]
             draw = rng.random()
@@ -98,13 +115,41 @@ def fill(url: str, count: int) -> float:
                 glaucoma="mild" if rng.random() < 0.12 else "none",
                 prophylaxis=rng.random() < 0.7,
                 cataract_days=rng.randint(120, 1500),
+                review_booked=True,
             )
             batch.append(row)
+            if rng.random() < 0.9:
+                attended = rng.random() < 0.9
+
+                def found(chance: float, attended: bool = attended) -> bool | None:
+                    return (rng.random() < chance) if attended and rng.random() > 0.1 else None
+
+                visit = dict(seen)
+                visit.update(
+                    review_key=f"bench-review-{i:08d}",
+                    session_key=row["note_key"],
+                    sender_value=f"BR-{i:08d}",
+                    patient_value=row["patient_value"],
+                    eye=row["eye"],
+                    seen_at=row["started_at"] + timedelta(days=28),
+                    attended=attended,
+                    retinal_detachment=found(0.009),
+                    cystoid_macular_oedema=found(0.012),
+                    anterior_uveitis=found(0.03),
+                    raised_iop=found(0.02),
+                    iol_pits=found(0.08),
+                    retreatment=found(0.03),
+                    opening_adequate=found(0.95),
+                )
+                reviewed.append(visit)
             if len(batch) == 5000:
                 connection.execute(insert(table), batch)
-                batch = []
+                connection.execute(insert(visits), reviewed)
+                batch, reviewed = [], []
         if batch:
             connection.execute(insert(table), batch)
+        if reviewed:
+            connection.execute(insert(visits), reviewed)
     engine.dispose()
     return time.perf_counter() - began
 

@@ -13,7 +13,7 @@ from __future__ import annotations
 import copy
 import csv
 import io
-from datetime import UTC, date, datetime
+from datetime import UTC, date, datetime, timedelta
 from pathlib import Path
 from typing import Any
 
@@ -27,11 +27,12 @@ from scipy.stats import binomtest
 from sqlalchemy import inspect, text
 
 from capnote.app import create_app
-from capnote.audit.demo_year import sessions
+from capnote.audit.demo_year import reviews, sessions
 from capnote.audit.render import csv_text, html_page
-from capnote.audit.report import CAUTION, NOT_RECORDED, Report, build
+from capnote.audit.report import CAUTION, REVIEW_LABELS, Report, build
 from capnote.config import Settings
 from capnote.notes import Principal
+from capnote.reviews import ReviewService
 from capnote.store.database import MIGRATIONS, make_engine, upgrade
 from tests.conftest import NOW, new_token, sync_notes
 from tests.pg_cluster import PgCluster
@@ -70,6 +71,9 @@ class Loaded:
     def __init__(self, url: str) -> None:
         self.url = url
         self.counted: list[dict[str, Any]] = []
+        # The review record that counts for each session (by note identifier value): its
+        # newest version, signed; a draft or a voided review is left out.
+        self.reviews: dict[str, list[dict[str, Any]]] = {}
 
 
 def _load(url: str) -> Loaded:
@@ -109,9 +113,69 @@ def _load(url: str) -> Loaded:
             notes.submit(orjson.dumps(late), WHO)
         # (A final note must record glaucoma status; the not-recorded count covers stores
         # whose rules differ, and is checked below to be what the notes say.)
+        _load_reviews(notes, loaded)
     finally:
         notes.close()
     return loaded
+
+
+def _load_reviews(notes: Any, loaded: Loaded) -> None:
+    """The invented reviews of the counted sessions, and edge cases: an amended, a voided and
+    a draft review, and a session whose missed review is followed by one attended."""
+    service = ReviewService(notes.store, notes.service.assessor, lambda: NOW)
+
+    def submit(review: dict[str, Any]) -> str:
+        created, stored = notes.run(service.submit(orjson.dumps(review), WHO))
+        assert created
+        return stored.key
+
+    made = list(reviews(loaded.counted[:150], NOW))
+    assert len(made) > 100
+    keys = {}
+    for review in made:
+        keys[review["session"]["value"]] = submit(review)
+        loaded.reviews.setdefault(review["session"]["value"], []).append(review)
+    attended = [r for r in made if r["attended"]]
+    # Amended: the newest version is what counts (retinal detachment now recorded seen).
+    changed = copy.deepcopy(attended[0])
+    changed["findings"]["retinal_detachment"] = True
+    changed["outcome"], changed["follow_up_days"] = "further-follow-up", 14
+    session = changed["session"]["value"]
+    body = orjson.dumps({"review": changed, "reason": "detachment seen, first left out"})
+    notes.run(service.amend(keys[session], body, WHO, 1))
+    loaded.reviews[session] = [changed]
+    # Voided: not counted, so its session is awaited again.
+    session = attended[1]["session"]["value"]
+    notes.run(service.void(keys[session], b'{"reason": "entered on the wrong session"}', WHO, 1))
+    del loaded.reviews[session]
+    # A draft is not counted either.
+    awaited = next(n for n in loaded.counted[:150] if n["note_id"]["value"] not in keys)
+    draft = copy.deepcopy(attended[2])
+    draft |= {
+        "review_id": {"system": draft["review_id"]["system"], "value": "R-DRAFT"},
+        "session": copy.deepcopy(awaited["note_id"]),
+        "patient": copy.deepcopy(awaited["patient"]),
+        "eye": awaited["eye"],
+        "seen_at": (datetime.fromisoformat(awaited["started_at"]) + timedelta(days=1)).isoformat(),
+        "status": "draft",
+    }
+    draft["findings"] = {"retinal_detachment": True}
+    submit(draft)
+    # Missed, then seen a week later: the session counts as attended, not missed.
+    missed = next(r for r in made if not r["attended"])
+    seen = copy.deepcopy(attended[3])
+    seen |= {
+        "review_id": {"system": seen["review_id"]["system"], "value": "R-AGAIN"},
+        "session": copy.deepcopy(missed["session"]),
+        "patient": copy.deepcopy(missed["patient"]),
+        "eye": missed["eye"],
+        "seen_at": (datetime.fromisoformat(missed["seen_at"]) + timedelta(days=7)).isoformat(),
+    }
+    seen["findings"] = {"cystoid_macular_oedema": True}
+    seen["outcome"], seen["follow_up_days"] = "further-follow-up", 14
+    if datetime.fromisoformat(seen["seen_at"]) <= NOW:
+        submit(seen)
+        loaded.reviews[missed["session"]["value"]].append(seen)
 
 
 @pytest.fixture(scope="module", params=["sqlite", "postgres"])
@@ -174,6 +238,72 @@ def _check_figures(figures: Any, notes: list[dict[str, Any]]) -> None:
     )
 
 
+_FINDING = {
+    "retinal_detachment": ("findings", "retinal_detachment"),
+    "cystoid_macular_oedema": ("findings", "cystoid_macular_oedema"),
+    "anterior_uveitis": ("findings", "anterior_uveitis"),
+    "raised_iop": ("findings", "raised_iop_needing_treatment"),
+    "iol_pits": ("findings", "iol_pits"),
+    "retreatment": (None, "retreatment_needed"),
+}
+
+
+def _said(review: dict[str, Any], name: str) -> bool | None:
+    if name == "opening_poor":
+        opening = review.get("opening", {})
+        if False in (opening.get("patent"), opening.get("adequate")):
+            return True
+        return False if (opening.get("patent"), opening.get("adequate")) == (True, True) else None
+    part, key = _FINDING[name]
+    found: bool | None = (review.get(part, {}) if part else review).get(key)
+    return found
+
+
+def _check_reviews(figures: Any, notes: list[dict[str, Any]], by_session: Any) -> None:
+    """The review figures, counted here per session from the review records loaded."""
+    counted = [by_session.get(n["note_id"]["value"], []) for n in notes]
+    seen = [[r for r in rs if r["attended"]] for rs in counted]
+    booked = len(notes)  # the shipped policy books a review after every routine session
+    wanted = {
+        "review_attended": (sum(bool(s) for s in seen), booked),
+        "review_missed": (
+            sum(bool(rs) and not s for rs, s in zip(counted, seen, strict=True)),
+            booked,
+        ),
+    }
+    for name in (*_FINDING, "opening_poor"):
+        said = [[_said(r, name) for r in s] for s in seen]
+        recorded = [v for v in said if any(x is not None for x in v)]
+        wanted[name] = (sum(True in v for v in recorded), len(recorded))
+    for name, (count, total) in wanted.items():
+        got = figures.review_rates[name]
+        assert (got.count, got.total) == (count, total), name
+        if total:
+            ci = binomtest(count, total).proportion_ci(method="wilson")
+            assert (got.low, got.high) == pytest.approx((ci.low, ci.high), abs=1e-9)
+    assert (
+        figures.reviews_awaited
+        == booked - wanted["review_attended"][0] - wanted["review_missed"][0]
+    )
+
+
+def test_review_figures_agree_with_counts_made_from_the_reviews(loaded: Loaded) -> None:
+    report = _report(loaded.url)
+    assert report.everyone is not None
+    _check_reviews(report.everyone, loaded.counted, loaded.reviews)
+    rates = report.everyone.review_rates
+    # The edge cases are in: a detachment seen (the amendment), a missed review followed
+    # by one attended, a voided and a draft review left out.
+    assert rates["retinal_detachment"].count >= 1
+    assert rates["review_missed"].count >= 1
+    for unit in report.units:
+        mine = [n for n in loaded.counted if _unit(n) == unit.figures.key]
+        _check_reviews(unit.figures, mine, loaded.reviews)
+        for clinician in unit.clinicians:
+            theirs = [n for n in mine if _staff(n) == clinician.key]
+            _check_reviews(clinician, theirs, loaded.reviews)
+
+
 def test_every_level_agrees_with_counts_made_from_the_notes(loaded: Loaded) -> None:
     report = _report(loaded.url)
     assert report.everyone is not None
@@ -203,7 +333,9 @@ def test_the_html_and_csv_reports(loaded: Loaded) -> None:
     # The caution at top and foot, the items capnote cannot count yet, two funnels a unit.
     assert page.count(CAUTION.split(";")[0]) == 2
     assert page.index(CAUTION.split(";")[0]) < page.index("<h1>")
-    assert page.count(NOT_RECORDED) == 3
+    assert "not yet recorded" not in page
+    assert "booked reviews attended" in page
+    assert page.count("<h3>Review visits</h3>") == 2
     assert page.count("<svg") == 4
     assert "58.6 ± 34.6 mJ" in page
     assert "Steinberg et al., Am J Ophthalmol 1991;112:373" in page
@@ -233,30 +365,6 @@ def test_the_audit_command(loaded: Loaded, tmp_path: Path) -> None:
     )
     assert backwards.returncode == 2
     assert "before --from" in backwards.stderr
-
-
-def test_migration_0006_fills_the_facts_of_stored_rows(loaded: Loaded) -> None:
-    before = _report(loaded.url)
-    engine = make_engine(loaded.url)
-    config = Config()
-    config.set_main_option("script_location", str(MIGRATIONS))
-    try:
-        # Back to 0005 (the columns go) and up again: the facts come from the stored JSON.
-        with engine.begin() as connection:
-            config.attributes["connection"] = connection
-            command.downgrade(config, "0005")
-            assert "performer" not in {
-                c["name"] for c in inspect(connection).get_columns("note_version")
-            }
-        upgrade(engine)
-        with engine.connect() as connection:
-            filled = connection.execute(
-                text("select count(*) from note_version where performer is not null")
-            ).scalar()
-        assert filled
-    finally:
-        engine.dispose()
-    assert _report(loaded.url) == before
 
 
 def test_the_audit_over_http_is_the_auditors(loaded: Loaded) -> None:
@@ -314,6 +422,7 @@ def test_demo_data_loads_the_invented_year_once(tmp_path: Path) -> None:
     again = capnote("demo-data", "--sessions", "40", env=env)
     assert again.returncode == 0, again.stderr
     assert "0 invented sessions stored (40 were there already)" in again.stdout
+    assert "; 0 new review records" in again.stdout  # the reviews too: resent, not doubled
     out = tmp_path / "audit.csv"
     run = capnote(
         "audit", "--from", "2025-12-01", "--to", "2026-11-30", "--report", str(out), env=env
@@ -325,3 +434,62 @@ def test_demo_data_loads_the_invented_year_once(tmp_path: Path) -> None:
         if r["unit"] == "all" and r["measure"] == "sessions"
     ]
     assert sessions_row["count"] == "40"
+
+
+def _session_rows(report: Report) -> list[str]:
+    """The CSV report's rows but those of the review visits."""
+    labels = {label for label, _ in REVIEW_LABELS.values()}
+    return [
+        line
+        for line in csv_text(report).splitlines()
+        if line.split(",")[2] not in labels and "no signed review" not in line
+    ]
+
+
+def test_migration_0008_fills_review_booked_of_stored_rows(loaded: Loaded) -> None:
+    before = _report(loaded.url)
+    engine = make_engine(loaded.url)
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS))
+    try:
+        with engine.begin() as connection:
+            config.attributes["connection"] = connection
+            command.downgrade(config, "0007")
+            assert "review_booked" not in {
+                c["name"] for c in inspect(connection).get_columns("note_version")
+            }
+        upgrade(engine)
+        with engine.connect() as connection:
+            booked = connection.execute(
+                text("select count(*) from note_version where review_booked")
+            ).scalar()
+        assert booked
+    finally:
+        engine.dispose()
+    assert _report(loaded.url) == before
+
+
+# Last in the module: going down to 0005 drops the review records (revision 0007's table),
+# so the session figures are compared, and no later test may count reviews.
+def test_migration_0006_fills_the_facts_of_stored_rows(loaded: Loaded) -> None:
+    before = _session_rows(_report(loaded.url))
+    engine = make_engine(loaded.url)
+    config = Config()
+    config.set_main_option("script_location", str(MIGRATIONS))
+    try:
+        # Back to 0005 (the columns go) and up again: the facts come from the stored JSON.
+        with engine.begin() as connection:
+            config.attributes["connection"] = connection
+            command.downgrade(config, "0005")
+            assert "performer" not in {
+                c["name"] for c in inspect(connection).get_columns("note_version")
+            }
+        upgrade(engine)
+        with engine.connect() as connection:
+            filled = connection.execute(
+                text("select count(*) from note_version where performer is not null")
+            ).scalar()
+        assert filled
+    finally:
+        engine.dispose()
+    assert _session_rows(_report(loaded.url)) == before

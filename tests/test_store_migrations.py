@@ -30,7 +30,7 @@ def test_upgrade_from_empty_gives_the_models_tables(database_url: str) -> None:
         with engine.connect() as connection:
             assert (
                 connection.execute(text("select version_num from alembic_version")).scalar()
-                == "0007"
+                == "0008"
             )
             diff = compare_metadata(MigrationContext.configure(connection), SQLModel.metadata)
         assert diff == []

@@ -345,7 +345,7 @@ class NoteService:
             if signed is None or signed.staff is None
             else "|".join(signed.staff),
             signed_at=None if signed is None else signed.at,
-            **audit_facts(note, result.derived),
+            **audit_facts(note, result.derived, result.due),
         )
         index = tuple(searchables(bundle, roles))
         audit = AuditRow(now, who.label, who.role, change.action, who.remote, who.token_id)

@@ -127,7 +127,9 @@ def reviewed_session(row: VersionRow | None) -> ReviewedSession | None:
         eye=row.eye,
         started_at=row.started_at,
         status=row.status,
-        booked="due-review" in roles,
+        # The due items say it (a withdrawn review request stays among the roles); a row
+        # from before revision 0008 falls back to the roles.
+        booked=row.review_booked if row.review_booked is not None else "due-review" in roles,
         pre_laser_iop=pre,
     )
 

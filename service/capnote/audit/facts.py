@@ -3,17 +3,20 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any
 
 from capnote.derive import Derived
 from capnote.note import Note
+from capnote.schedule import DueItem
 
 
-def audit_facts(note: Note, derived: Derived) -> dict[str, Any]:
+def audit_facts(note: Note, derived: Derived, due: Sequence[DueItem]) -> dict[str, Any]:
     """The audit columns of a note version: unit, clinician, highest IOP rise grade (None
     when no reading after the laser was recorded: unknown is not "no rise"), glaucoma as
     recorded (None: not recorded), whether a prophylaxis drop was given in clinic, and the
-    days from cataract surgery (None: date not recorded)."""
+    days from cataract surgery (None: date not recorded), and whether a review visit was
+    booked (a review among the due items: what attendance is counted against)."""
     location = note.location
     return {
         "site": location.identifier.value if location.identifier else location.name,
@@ -24,4 +27,5 @@ def audit_facts(note: Note, derived: Derived) -> dict[str, Any]:
         "glaucoma": note.before.risk_factors.glaucoma,
         "prophylaxis": bool(note.plan.prophylaxis),
         "cataract_days": derived.days_since_cataract_surgery,
+        "review_booked": any(item.kind == "review" for item in due),
     }

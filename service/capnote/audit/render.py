@@ -11,11 +11,11 @@ from capnote.audit.report import (
     CAUTION,
     ENERGY_BANDS_SOURCE,
     FUNNELS,
-    NOT_RECORDED,
     PROPHYLAXIS_SOURCE,
     PUBLISHED_ENERGY,
     RATE_LABELS,
-    REVIEW_ITEMS,
+    REVIEW_LABELS,
+    REVIEW_SOURCE,
     SPIKE_SOURCE,
     Figures,
     Placed,
@@ -83,6 +83,25 @@ def _figures_table(rows: list[Figures]) -> str:
             cells.append(f"<span{cls}>{escape(rate_text(r))}</span>")
         cells.append(escape(_quartiles(f.cataract_days, "days") + f" (n={f.cataract_n})"))
         cells.append(str(f.glaucoma_unrecorded))
+        body.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
+    return f"<table>{head}{''.join(body)}</table>"
+
+
+def _reviews_table(rows: list[Figures]) -> str:
+    """What the review visits say, one row per unit or clinician."""
+    head = (
+        "<tr><th>who</th>"
+        + "".join(f"<th>{escape(label)}</th>" for label, _ in REVIEW_LABELS.values())
+        + "<th>booked, no signed review yet</th></tr>"
+    )
+    body = []
+    for f in rows:
+        cells = [escape(_who(f))]
+        for name in REVIEW_LABELS:
+            r = f.review_rates[name]
+            cls = ' class="small"' if r.small else ""
+            cells.append(f"<span{cls}>{escape(rate_text(r))}</span>")
+        cells.append(str(f.reviews_awaited))
         body.append("<tr>" + "".join(f"<td>{c}</td>" for c in cells) + "</tr>")
     return f"<table>{head}{''.join(body)}</table>"
 
@@ -172,7 +191,12 @@ def _funnel_table(unit: Figures, placed: tuple[Placed, ...], measure: str) -> st
 
 def _unit_html(u: Unit) -> str:
     f = u.figures
-    parts = [f"<h2>Unit: {escape(_who(f))}</h2>", _figures_table([f, *u.clinicians])]
+    parts = [
+        f"<h2>Unit: {escape(_who(f))}</h2>",
+        _figures_table([f, *u.clinicians]),
+        "<h3>Review visits</h3>",
+        _reviews_table([f, *u.clinicians]),
+    ]
     for measure, title in FUNNELS:
         label = f"{title}: clinicians against the unit's {rate_text(f.rates[measure])}"
         parts.append(
@@ -205,11 +229,14 @@ def html_page(report: Report) -> str:
         if report.everyone
         else "-"
     )
+    everyone = report.everyone
     reviews = "".join(
-        f"<tr><td>{escape(item)}</td><td>{escape(NOT_RECORDED)}</td>"
+        f"<tr><td>{escape(label)}</td>"
+        f"<td>{escape(rate_text(everyone.review_rates[name])) if everyone else '-'}</td>"
         f"<td>{escape(source or '-')}</td></tr>"
-        for item, source in REVIEW_ITEMS
+        for name, (label, source) in REVIEW_LABELS.items()
     )
+    awaited = everyone.reviews_awaited if everyone else 0
     body = [
         caution,
         f"<h1>Clinical audit of laser capsulotomy sessions, {escape(scope)}</h1>",
@@ -222,8 +249,10 @@ def html_page(report: Report) -> str:
         f"<tr><td>this audit (all units)</td><td>{escape(local)}</td></tr></table>",
         f"<p>{escape(ENERGY_BANDS_SOURCE)}. {escape(SPIKE_SOURCE)} "
         f"{escape(PROPHYLAXIS_SOURCE)}.</p>",
-        "<h2>After the session</h2><table><tr><th>item</th><th>figure</th>"
-        f"<th>published series</th></tr>{reviews}</table>",
+        "<h2>After the session: the review visits</h2><table><tr><th>item</th>"
+        f"<th>this audit (all units)</th><th>published series</th></tr>{reviews}</table>",
+        f"<p>Booked reviews with no signed review record yet: {awaited}. "
+        f"{escape(REVIEW_SOURCE)}</p>",
         *(_unit_html(u) for u in report.units),
         caution,
     ]
@@ -297,6 +326,27 @@ def csv_text(report: Report) -> str:
                     "",
                 ]
             )
+        for name, (label, source) in REVIEW_LABELS.items():
+            r = f.review_rates[name]
+            w.writerow(
+                [
+                    unit,
+                    clinician,
+                    label,
+                    r.count,
+                    r.total,
+                    "" if r.value is None else f"{r.value:.6f}",
+                    "" if r.low is None else f"{r.low:.6f}",
+                    "" if r.high is None else f"{r.high:.6f}",
+                    r.small,
+                    "",
+                    f"published: {source}" if source else "",
+                ]
+            )
+        w.writerow(
+            [unit, clinician, "booked reviews with no signed review yet", f.reviews_awaited]
+            + [""] * 7
+        )
         if f.cataract_days:
             q1, med, q3 = f.cataract_days
             w.writerow(
@@ -324,21 +374,5 @@ def csv_text(report: Report) -> str:
                 m: p.where for m, placed in u.funnels.items() for p in placed if p.clinician is c
             }
             rows(u.figures.key, c.key, c, where)
-    for item, source in REVIEW_ITEMS:
-        w.writerow(
-            [
-                "",
-                "",
-                item,
-                "",
-                "",
-                "",
-                "",
-                "",
-                "",
-                "",
-                f"{NOT_RECORDED}; {source or ''}".rstrip("; "),
-            ]
-        )
     w.writerow(["", "", "caution", "", "", "", "", "", "", "", CAUTION])
     return out.getvalue()

@@ -2,8 +2,9 @@
 with its count, denominator and 95% Wilson interval, each clinician placed on the funnel of
 the unit's rate, and the published series the local figures are set against.
 
-What capnote does not record yet (reviews attended, complications found at review) is
-reported as such, never as a number.
+What the review visits say (capnote.review) is counted per session: booked reviews
+attended or missed, and each complication over the sessions whose signed review recorded it
+(seen or not seen); a finding nobody recorded is in no denominator, never a "no".
 """
 
 from __future__ import annotations
@@ -19,7 +20,6 @@ CAUTION = (
     "explain much; local governance decides. capnote documents and counts: it does not "
     "judge a clinician or a unit."
 )
-NOT_RECORDED = "not yet recorded by capnote (needs review-visit records)"
 
 # The published series, as the reference table gives them (shared clinical-practice table).
 PUBLISHED_ENERGY = (
@@ -40,15 +40,27 @@ PROPHYLAXIS_SOURCE = (
     "prophylaxis advised at least in glaucoma and glaucoma suspects (Ophthalmology "
     "Journal, Via Medica); glaucoma not recorded is counted apart, never as no glaucoma"
 )
-REVIEW_ITEMS = (
-    ("reviews attended against booked", None),
-    (
-        "complications found at review",
-        "Steinberg et al., Am J Ophthalmol 1991;112:373: retinal detachment 0.89%, "
-        "cystoid macular oedema 1.23%",
-    ),
-    ("re-treatment", None),
+STEINBERG = "Steinberg et al., Am J Ophthalmol 1991;112:373"
+# What the review visits say: label and the published figure set beside it (None: the
+# reference table holds none).
+REVIEW_LABELS: dict[str, tuple[str, str | None]] = {
+    "review_attended": ("booked reviews attended", None),
+    "review_missed": ("booked reviews not attended", None),
+    "retinal_detachment": ("retinal detachment found at review", f"0.89% ({STEINBERG})"),
+    "cystoid_macular_oedema": ("cystoid macular oedema found at review", f"1.23% ({STEINBERG})"),
+    "anterior_uveitis": ("anterior uveitis found at review", None),
+    "raised_iop": ("raised IOP needing treatment at review", None),
+    "iol_pits": ("IOL pits seen at review", None),
+    "opening_poor": ("opening not patent or not adequate at review", None),
+    "retreatment": ("further laser needed", None),
+}
+REVIEW_SOURCE = (
+    "Each complication is counted over the sessions whose signed review recorded it (seen "
+    "or looked for and not seen); not recorded is in no denominator. Retinal detachment and "
+    "cystoid macular oedema can appear months after the laser (Steinberg 1991 followed "
+    "patients longer): a review weeks after the laser sees only what has appeared by then."
 )
+
 # Which rates a clinician is placed on the unit's funnel for.
 FUNNELS = (
     ("iop_rise", "moderate or severe IOP rise"),
@@ -70,6 +82,9 @@ class Figures:
     cataract_n: int
     glaucoma_unrecorded: int
     rates: dict[str, Rate]
+    # REVIEW_LABELS' rates, and the booked reviews with no signed review record yet.
+    review_rates: dict[str, Rate]
+    reviews_awaited: int
 
 
 @dataclass(frozen=True, slots=True)
@@ -138,7 +153,22 @@ def _figures(group: GroupFigures) -> Figures:
             "iop_rise": rate(rises, n("spike_n")),
             "glaucoma_prophylaxis": rate(n("glaucoma_prophylaxis"), n("glaucoma_n")),
         },
+        review_rates=_review_rates(group.reviews),
+        reviews_awaited=group.reviews["booked"]
+        - group.reviews["booked_attended"]
+        - group.reviews["booked_missed"],
     )
+
+
+def _review_rates(r: dict[str, int]) -> dict[str, Rate]:
+    out = {
+        "review_attended": rate(r["booked_attended"], r["booked"]),
+        "review_missed": rate(r["booked_missed"], r["booked"]),
+    }
+    for name in REVIEW_LABELS:
+        if name not in out:
+            out[name] = rate(r[name], r[f"{name}_n"])
+    return out
 
 
 def _place(clinician: Figures, unit: Figures, measure: str) -> Placed:

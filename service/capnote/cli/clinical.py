@@ -88,27 +88,40 @@ def demo_data(
     """Load the invented audit year (two units, four clinicians, one clinician's IOP rises
     set high on purpose) into the settings' database, for trying `capnote audit`."""
     from capnote.app import create_app
+    from capnote.audit.demo_year import reviews as invented_reviews
     from capnote.audit.demo_year import sessions as invented
+    from capnote.errors import InputError
     from capnote.notes import Principal
 
     settings = Settings()
     from capnote.cli.operator import _migrated
 
     _migrated(settings.database_url)
-    notes = create_app(settings.model_copy(update={"migrate_on_start": False})).state.notes
+    state = create_app(settings.model_copy(update={"migrate_on_start": False})).state
+    notes, review_service = state.notes, state.reviews
     who = Principal(label="audit demo loader", role="submitter")
 
-    async def load() -> int:
-        stored = 0
+    async def load() -> tuple[int, int]:
+        stored = reviewed = 0
         try:
-            for note in invented(sessions):
+            made = list(invented(sessions))
+            for note in made:
                 created, _ = await notes.submit(orjson.dumps(note), who)
                 stored += created
+            for review in invented_reviews(made, review_service.clock()):
+                try:
+                    created, _ = await review_service.submit(orjson.dumps(review), who)
+                except InputError:
+                    continue  # a session kept otherwise (as a draft): no review of it
+                reviewed += created
         finally:
             await notes.store.aclose()
-        return stored
+        return stored, reviewed
 
     import asyncio
 
-    stored = asyncio.run(load())
-    typer.echo(f"{stored} invented sessions stored ({sessions - stored} were there already)")
+    stored, reviewed = asyncio.run(load())
+    typer.echo(
+        f"{stored} invented sessions stored ({sessions - stored} were there already); "
+        f"{reviewed} new review records"
+    )

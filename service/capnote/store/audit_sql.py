@@ -21,9 +21,10 @@ from sqlalchemy import Integer, and_, bindparam, case, distinct, func, literal, 
 from sqlalchemy.sql import ClauseElement
 
 from capnote.audit.stats import quantile_from
-from capnote.store.tables import NoteVersion
+from capnote.store.tables import NoteVersion, ReviewVersion
 
 _NOTE = NoteVersion.__table__  # type: ignore[attr-defined]
+_REVIEW = ReviewVersion.__table__  # type: ignore[attr-defined]
 # The grouping levels: all units together, each unit, each clinician within a unit.
 LEVELS: dict[str, tuple[str, ...]] = {
     "all": (),
@@ -132,6 +133,97 @@ def quartile_rows(level: str, column: str, site: bool) -> ClauseElement:
     )
 
 
+# What the review visits of the counted sessions say (capnote.review), per session: each
+# complication counted where a signed review recorded it (seen or not seen); not recorded is
+# left out of its denominator, never counted as "no".
+REVIEW_FINDINGS = (
+    "retinal_detachment",
+    "cystoid_macular_oedema",
+    "anterior_uveitis",
+    "raised_iop",
+    "iol_pits",
+    "retreatment",
+)
+REVIEW_NAMES = (
+    "booked",
+    "booked_attended",
+    "booked_missed",
+    "reviewed",
+    *(f"{name}{part}" for name in (*REVIEW_FINDINGS, "opening_poor") for part in ("_n", "")),
+)
+
+
+def _reviews_per_session() -> Any:
+    """One row per session with a signed review: whether any review was attended (1), or
+    only missed ones (0), and per finding 1 (seen at any review), 0 (looked for and not
+    seen), or None (no review recorded it). The newest version of each review counts; a
+    voided or draft review does not."""
+    newest = (
+        select(_REVIEW.c.review_key, func.max(_REVIEW.c.version).label("v"))
+        .group_by(_REVIEW.c.review_key)
+        .subquery()
+    )
+    r = _REVIEW
+    attended = r.c.attended.is_(True)
+
+    def said(column: Any) -> Any:
+        return func.max(
+            case((and_(attended, column.is_(True)), 1), (and_(attended, column.is_(False)), 0))
+        )
+
+    poor = r.c.opening_adequate
+    return (
+        select(
+            r.c.session_key,
+            func.max(case((attended, 1), else_=0)).label("attended"),
+            *(said(r.c[name]).label(name) for name in REVIEW_FINDINGS),
+            # A poor opening: patent or adequate recorded no (capnote.reviews._opening_adequate).
+            func.max(
+                case((and_(attended, poor.is_(False)), 1), (and_(attended, poor.is_(True)), 0))
+            ).label("opening_poor"),
+        )
+        .join(newest, and_(r.c.review_key == newest.c.review_key, r.c.version == newest.c.v))
+        .where(r.c.status == literal("final"))
+        .group_by(r.c.session_key)
+        .subquery("rs")
+    )
+
+
+def review_counts(site: bool) -> ClauseElement:
+    """One row per clinician within a unit: unit, clinician, then REVIEW_NAMES. Every
+    figure is a sum over sessions, so the units' and everyone's are these rows added up
+    (review_rollup): one pass over the reviews instead of one per level."""
+    s = _counted(site)
+    rs = _reviews_per_session()
+    keys = [s.c[name] for name in LEVELS["clinician"]]
+    booked = s.c.review_booked.is_(True)
+    columns: list[Any] = [
+        _flag(booked),
+        _flag(and_(booked, rs.c.attended == 1)),
+        _flag(and_(booked, rs.c.attended == 0)),
+        _flag(rs.c.attended == 1),
+    ]
+    for name in (*REVIEW_FINDINGS, "opening_poor"):
+        columns += [func.count(rs.c[name]), func.coalesce(func.sum(rs.c[name]), 0)]
+    return (
+        select(*keys, *columns)
+        .select_from(s.outerjoin(rs, s.c.note_key == rs.c.session_key))
+        .group_by(*keys)
+        .order_by(*keys)
+    )
+
+
+def review_rollup(rows: Sequence[Sequence[Any]], level: str) -> dict[tuple[str, ...], list[int]]:
+    """review_counts' rows added up to the groups of a level (keys: its first keys)."""
+    width, full = len(LEVELS[level]), len(LEVELS["clinician"])
+    out: dict[tuple[str, ...], list[int]] = {}
+    for row in rows:
+        summed = out.setdefault(tuple(row[:width]), [0] * len(REVIEW_NAMES))
+        for i, value in enumerate(row[full:]):
+            summed[i] += int(value or 0)
+    return out
+
+
 @dataclass(frozen=True, slots=True)
 class GroupFigures:
     """One group's aggregates: its level, keys and names, the counts (COUNT_NAMES), and the
@@ -143,6 +235,8 @@ class GroupFigures:
     counts: dict[str, float | int | None]
     energy: tuple[float, float, float] | None
     cataract_days: tuple[float, float, float] | None
+    # REVIEW_NAMES: what the sessions' review visits say.
+    reviews: dict[str, int]
 
 
 def quartiles(rows: Sequence[Sequence[Any]], width: int) -> dict[tuple[str, ...], Any]:
@@ -163,11 +257,16 @@ def figures(
     count_rows: Sequence[Sequence[Any]],
     energy_rows: Sequence[Sequence[Any]],
     cataract_rows: Sequence[Sequence[Any]],
+    review_rows: Sequence[Sequence[Any]],
 ) -> list[GroupFigures]:
-    """GroupFigures of one level from its three statements' rows."""
+    """GroupFigures of one level from its three statements' rows and review_counts'."""
     width = len(LEVELS[level])
     energy = quartiles(energy_rows, width)
     cataract = quartiles(cataract_rows, width)
+    reviews = {
+        keys: dict(zip(REVIEW_NAMES, summed, strict=True))
+        for keys, summed in review_rollup(review_rows, level).items()
+    }
     out = []
     for row in count_rows:
         keys = tuple(row[:width])
@@ -184,6 +283,7 @@ def figures(
                 counted,
                 energy.get(keys),
                 cataract.get(keys),
+                reviews.get(keys, dict.fromkeys(REVIEW_NAMES, 0)),
             )
         )
     return out

@@ -139,6 +139,7 @@ class VersionRow:
     glaucoma: str | None = None
     prophylaxis: bool | None = None
     cataract_days: int | None = None
+    review_booked: bool | None = None
 
 
 VERSION_COLUMNS = tuple(VersionRow.__slots__)
@@ -915,6 +916,10 @@ class Store(ABC):
             params["site"] = site
         one = site is not None
         out: list[GroupFigures] = []
+        reviews = await self._fetch(
+            self._variant(("audit", "reviews", one), partial(audit_sql.review_counts, one)),
+            params,
+        )
         for level in audit_sql.LEVELS:
             shapes = {
                 "counts": partial(audit_sql.counts, level, one),
@@ -925,7 +930,8 @@ class Store(ABC):
                 await self._fetch(self._variant(("audit", name, level, one), build), params)
                 for name, build in shapes.items()
             ]
-            out += audit_sql.figures(level, *rows)
+            counted, energy, cataract = rows
+            out += audit_sql.figures(level, counted, energy, cataract, reviews)
         return out
 
     # -- notes: listings and searches ----------------------------------------------------------

@@ -67,6 +67,9 @@ class NoteVersion(SQLModel, table=True):
     glaucoma: str | None = Field(default=None, max_length=10)  # None: not recorded
     prophylaxis: bool | None = None
     cataract_days: int | None = None
+    # A review visit was booked (a review among the due items); None before revision 0008
+    # filled it, and for drafts kept as typed.
+    review_booked: bool | None = None
 
 
 class FhirIndex(SQLModel, table=True):
