@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import base64
+import hashlib
 import re
 from collections.abc import Iterator
 from html.parser import HTMLParser
@@ -10,8 +12,10 @@ from pathlib import Path
 import pytest
 from fastapi.testclient import TestClient
 
+from capnote.api.clinical_audit import REPORT_STYLE_SOURCE
+from capnote.audit.render import STYLE
 from capnote.policy import load_policy
-from capnote.web import PAGE, STATIC
+from capnote.web import AUDIT_PAGE, PAGE, STATIC
 from tests.conftest import NOW
 from tests.web_helpers import SYSTEMS, build_app
 
@@ -134,9 +138,27 @@ class _Inline(HTMLParser):
             self.controls.append(a["id"] or "")
 
 
-def test_the_page_has_no_inline_code_or_styles_and_every_field_a_label() -> None:
+def test_the_audit_page_is_served_and_allows_only_the_reports_style(
+    client: TestClient,
+) -> None:
+    r = client.get("/audit-page")
+    assert r.status_code == 200
+    assert '<script type="module" src="/static/audit.js">' in r.text
+    # The one inline style it lets in is the report's, by the SHA-256 of that style block
+    # (CSP Level 3, hash-source), computed here independently.
+    digest = base64.b64encode(hashlib.sha256(STYLE.encode()).digest()).decode()
+    assert f"'sha256-{digest}'" == REPORT_STYLE_SOURCE
+    assert r.headers["content-security-policy"] == (
+        f"default-src 'self'; style-src 'self' 'sha256-{digest}'; frame-ancestors 'none'"
+    )
+    # The report itself is not there: it needs an auditor's token.
+    assert client.get("/audit/clinical?from=2026-01-01&to=2026-01-31").status_code == 401
+
+
+@pytest.mark.parametrize("page", [PAGE, AUDIT_PAGE], ids=["form", "audit"])
+def test_the_page_has_no_inline_code_or_styles_and_every_field_a_label(page: Path) -> None:
     parser = _Inline()
-    parser.feed(PAGE.read_text())
+    parser.feed(page.read_text())
     for path in STATIC.glob("*.js"):
         # Scripts may not build inline styles or handlers either.
         text = path.read_text()

@@ -26,7 +26,8 @@ router = APIRouter(tags=["audit"])
 Auditor = Annotated[Principal, Depends(allow(*AUDIT))]
 # The page's one inline style block is allowed by its hash; nothing else runs or loads.
 _STYLE_HASH = base64.b64encode(hashlib.sha256(STYLE.encode()).digest()).decode()
-_PAGE_CSP = f"default-src 'none'; style-src 'sha256-{_STYLE_HASH}'; frame-ancestors 'none'"
+REPORT_STYLE_SOURCE = f"'sha256-{_STYLE_HASH}'"
+_PAGE_CSP = f"default-src 'none'; style-src {REPORT_STYLE_SOURCE}; frame-ancestors 'none'"
 _DAY = r"^\d{4}-\d{2}-\d{2}$"
 
 

@@ -13,6 +13,7 @@ from typing import Any
 from fastapi import APIRouter, Request
 from fastapi.responses import FileResponse, Response
 
+from capnote.api.clinical_audit import REPORT_STYLE_SOURCE
 from capnote.api.deps import SitePolicy
 from capnote.api.media import json_response
 from capnote.config import Settings
@@ -20,7 +21,7 @@ from capnote.errors import NotFoundError
 from capnote.note import LaserSettings
 from capnote.plain_text import CAUTION
 from capnote.policy.model import Policy, Window
-from capnote.web import PAGE, STATIC
+from capnote.web import AUDIT_PAGE, PAGE, STATIC
 
 router = APIRouter(include_in_schema=False)
 
@@ -46,6 +47,21 @@ FORM_CAUTION = (
 def form_page() -> Response:
     """The clinician's note form."""
     return FileResponse(PAGE, media_type="text/html; charset=utf-8")
+
+
+# The audit page shows the report in a sandboxed srcdoc frame, which keeps this page's
+# policy: the report's one style block is allowed by its hash, and nothing else inline.
+_AUDIT_CSP = f"default-src 'self'; style-src 'self' {REPORT_STYLE_SOURCE}; frame-ancestors 'none'"
+
+
+@router.get("/audit-page")
+def audit_page() -> Response:
+    """The clinical audit page (the report itself needs an auditor token)."""
+    return FileResponse(
+        AUDIT_PAGE,
+        media_type="text/html; charset=utf-8",
+        headers={"content-security-policy": _AUDIT_CSP},
+    )
 
 
 @router.get("/static/{name}")

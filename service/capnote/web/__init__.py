@@ -9,4 +9,5 @@ from __future__ import annotations
 from pathlib import Path
 
 PAGE = Path(__file__).resolve().parent / "index.html"
+AUDIT_PAGE = Path(__file__).resolve().parent / "audit.html"
 STATIC = Path(__file__).resolve().parent / "static"
