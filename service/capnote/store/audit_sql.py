@@ -153,38 +153,49 @@ REVIEW_NAMES = (
 )
 
 
-def _reviews_per_session() -> Any:
-    """One row per session with a signed review: whether any review was attended (1), or
-    only missed ones (0), and per finding 1 (seen at any review), 0 (looked for and not
-    seen), or None (no review recorded it). The newest version of each review counts; a
-    voided or draft review does not."""
-    newest = (
-        select(_REVIEW.c.review_key, func.max(_REVIEW.c.version).label("v"))
-        .group_by(_REVIEW.c.review_key)
-        .subquery()
+def _reviews_per_session(site: bool) -> Any:
+    """One row per counted session: its unit, clinician and whether a review was booked;
+    whether any signed review was attended (1), only missed ones (0) or none is on record
+    (None); and per finding 1 (seen at any review), 0 (looked for and not seen), or None
+    (no review recorded it). The newest version of each review counts, if it is signed; a
+    voided or draft review does not.
+
+    Written as a left join on the session index with a NOT EXISTS for "newest", not as a
+    join of grouped subqueries: grouped subqueries are estimated at one row by PostgreSQL
+    until the table is analysed, and a nested loop over two of them never ends."""
+    s = _counted(site)
+    r = _REVIEW.alias("r")
+    later = _REVIEW.alias("later")
+    newer = (
+        select(literal(1))
+        .where(later.c.review_key == r.c.review_key, later.c.version > r.c.version)
+        .exists()
     )
-    r = _REVIEW
     attended = r.c.attended.is_(True)
 
-    def said(column: Any) -> Any:
-        return func.max(
-            case((and_(attended, column.is_(True)), 1), (and_(attended, column.is_(False)), 0))
-        )
+    def said(column: Any, seen: Any) -> Any:
+        # Only what an attended review recorded: seen 1, not seen 0, not recorded None.
+        return func.max(case((and_(attended, seen), 1), (and_(attended, column.is_not(None)), 0)))
 
+    findings = [said(r.c[name], r.c[name].is_(True)).label(name) for name in REVIEW_FINDINGS]
     poor = r.c.opening_adequate
     return (
         select(
-            r.c.session_key,
-            func.max(case((attended, 1), else_=0)).label("attended"),
-            *(said(r.c[name]).label(name) for name in REVIEW_FINDINGS),
+            s.c.site,
+            s.c.performer,
+            s.c.review_booked,
+            func.max(case((attended, 1), (r.c.attended.is_(False), 0))).label("attended"),
+            *findings,
             # A poor opening: patent or adequate recorded no (capnote.reviews._opening_adequate).
-            func.max(
-                case((and_(attended, poor.is_(False)), 1), (and_(attended, poor.is_(True)), 0))
-            ).label("opening_poor"),
+            said(poor, poor.is_(False)).label("opening_poor"),
         )
-        .join(newest, and_(r.c.review_key == newest.c.review_key, r.c.version == newest.c.v))
-        .where(r.c.status == literal("final"))
-        .group_by(r.c.session_key)
+        .select_from(
+            s.outerjoin(
+                r,
+                and_(r.c.session_key == s.c.note_key, r.c.status == literal("final"), ~newer),
+            )
+        )
+        .group_by(s.c.note_key, s.c.site, s.c.performer, s.c.review_booked)
         .subquery("rs")
     )
 
@@ -193,10 +204,9 @@ def review_counts(site: bool) -> ClauseElement:
     """One row per clinician within a unit: unit, clinician, then REVIEW_NAMES. Every
     figure is a sum over sessions, so the units' and everyone's are these rows added up
     (review_rollup): one pass over the reviews instead of one per level."""
-    s = _counted(site)
-    rs = _reviews_per_session()
-    keys = [s.c[name] for name in LEVELS["clinician"]]
-    booked = s.c.review_booked.is_(True)
+    rs = _reviews_per_session(site)
+    keys = [rs.c[name] for name in LEVELS["clinician"]]
+    booked = rs.c.review_booked.is_(True)
     columns: list[Any] = [
         _flag(booked),
         _flag(and_(booked, rs.c.attended == 1)),
@@ -205,12 +215,7 @@ def review_counts(site: bool) -> ClauseElement:
     ]
     for name in (*REVIEW_FINDINGS, "opening_poor"):
         columns += [func.count(rs.c[name]), func.coalesce(func.sum(rs.c[name]), 0)]
-    return (
-        select(*keys, *columns)
-        .select_from(s.outerjoin(rs, s.c.note_key == rs.c.session_key))
-        .group_by(*keys)
-        .order_by(*keys)
-    )
+    return select(*keys, *columns).group_by(*keys).order_by(*keys)
 
 
 def review_rollup(rows: Sequence[Sequence[Any]], level: str) -> dict[tuple[str, ...], list[int]]:
