@@ -256,8 +256,9 @@ def test_a_session_amended_after_its_review_keeps_the_review_done(
     # Before any review, the review is still owed.
     assert _review_request_status(amend(1, "Nurse Invented One")) == "active"
     assert post(api, "/reviews", review()).status_code == 201
-    # After a signed, attended review, an amendment of the session does not reopen it.
-    assert _review_request_status(amend(2, "Nurse Invented Two")) == "completed"
+    # The review made version 3 of the session (its request completed); an amendment of the
+    # session after a signed, attended review does not reopen it.
+    assert _review_request_status(amend(3, "Nurse Invented Two")) == "completed"
 
 
 def test_review_reads_changes_and_refusals_are_in_the_audit_trail(
@@ -329,3 +330,67 @@ def test_a_missed_review_amended_later_never_reopens_a_completed_review(
     )
     assert amended.status_code == 200, amended.text
     assert _review_request(amended)["status"] == "completed"
+
+
+def _served_request(api: Api, session_id: str) -> dict[str, Any]:
+    answer = api.client.get(
+        f"/fhir/ServiceRequest/{session_id}-due-review", headers=api.headers("analyst")
+    )
+    assert answer.status_code == 200, answer.text
+    found: dict[str, Any] = answer.json()
+    return found
+
+
+def test_capnotes_own_record_says_the_review_is_done_and_owed_again_after_a_void(
+    api: Api, session_id: str
+) -> None:
+    assert _served_request(api, session_id)["status"] == "active"
+    created = post(api, "/reviews", review())
+    assert created.status_code == 201, created.text
+    # The session gets a version of capnote's own, so that its read API, its searches and
+    # its Bundle say what the hospital's record now holds.
+    served = _served_request(api, session_id)
+    assert served["status"] == "completed"
+    assert served["meta"]["versionId"] == "2"
+    versions = api.client.get(f"/notes/{session_id}/versions", headers=api.headers("auditor"))
+    last = versions.json()["versions"][-1]
+    assert last["version"] == 2
+    assert "review" in last["reason"]
+    patient = f"{SESSION['patient']['system']}|{SESSION['patient']['value']}"
+    found = api.client.get(
+        "/fhir/ServiceRequest",
+        params={"subject:identifier": patient, "status": "completed"},
+        headers=api.headers("analyst"),
+    )
+    assert found.status_code == 200, found.text
+    # Its searches find it completed too (the iop recheck was done by a reading in the note).
+    ids = [e["resource"]["id"] for e in found.json().get("entry", [])]
+    assert f"{session_id}-due-review" in ids
+    # The session's Observations did not change: they keep their status.
+    note = api.client.get(f"/notes/{session_id}", headers=api.headers("auditor")).json()
+    statuses = {
+        e["resource"]["status"]
+        for e in note["bundle"]["entry"]
+        if e["resource"]["resourceType"] == "Observation"
+    }
+    assert statuses == {"final"}
+    # A resend of the review changes nothing more.
+    assert post(api, "/reviews", review()).status_code == 200
+    assert _served_request(api, session_id)["meta"]["versionId"] == "2"
+    voided = api.client.post(
+        f"/reviews/{created.json()['id']}/void",
+        content=orjson.dumps({"reason": "entered on the wrong visit"}),
+        headers=api.headers("clinician", **{"if-match": 'W/"1"'}),
+    )
+    assert voided.status_code == 200, voided.text
+    served = _served_request(api, session_id)
+    assert served["status"] == "active"
+    assert served["meta"]["versionId"] == "3"
+    again = api.client.get(
+        "/fhir/ServiceRequest",
+        params={"subject:identifier": patient, "status": "completed"},
+        headers=api.headers("analyst"),
+    )
+    assert f"{session_id}-due-review" not in [
+        e["resource"]["id"] for e in again.json().get("entry", [])
+    ]

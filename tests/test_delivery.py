@@ -329,5 +329,7 @@ def test_a_review_completes_the_review_request_at_the_receiver(setup: Any) -> No
         for versions in receiver.resources["Condition"].values()
     }
     assert verified == {"refuted"}
-    assert states(service) == Counter({"delivered": 2})
+    # The session, its version that completes the review request, and the review.
+    assert states(service) == Counter({"delivered": 3})
+    assert receiver.count("Procedure") == 1
     assert stored.key == done.session_key

@@ -82,7 +82,8 @@ class Change:
     emitted: Version
     status: str
     reason: str | None
-    action: str  # for the audit trail and the Provenance: create, amend, void or recount
+    # For the audit trail and the Provenance: create, amend, void, recount or reviewed.
+    action: str
     # A version capnote writes itself keeps the signature of the version it recounts.
     carried: Signature | None = None
 
@@ -416,6 +417,42 @@ class NoteService:
             f"session number and cumulative energy counted again: an earlier session of this "
             f"eye (note {cause.key}) was {what}",
             "recount",
+            signature_of(latest),
+        )
+        new, _stored_note = self.prepare(change, SYSTEM)
+        return new
+
+    async def reviewed_version(self, key: str, reviewed: bool, why: str) -> NewVersion | None:
+        """The new version of a signed session that a review visit makes, or None when none
+        is needed: its review request completed (reviewed) or owed again, so that capnote's
+        own record (the FHIR read API, the searches, the Bundle) says what the hospital's
+        now holds. The same note, a system reason, the signature it had; stored by the
+        caller with the review, in one transaction."""
+        latest = await self.store.latest(key)
+        if latest is None or latest.status != "final":
+            return None  # a draft's request is a draft; a voided session owes nothing
+        before = emitted_before(latest)
+        requests = [
+            e["resource"]
+            for e, role in zip(before.bundle["entry"], before.roles, strict=True)
+            if role == "due-review" and e["resource"]["resourceType"] == "ServiceRequest"
+        ]
+        if not requests or (requests[0]["status"] == "completed") == reviewed:
+            return None  # no review booked, or the request says so already
+        note = Note.model_validate_json(latest.note_json)
+        _note, findings = check_payload(
+            latest.note_json, Context(self.assessor.policy, self.clock())
+        )
+        change = Change(
+            key,
+            note,
+            latest.note_json,
+            findings,
+            await self._others(note, key),
+            Version(latest.version + 1, amends_final=True, previous=before, reviewed=reviewed),
+            latest.status,
+            why,
+            "reviewed",
             signature_of(latest),
         )
         new, _stored_note = self.prepare(change, SYSTEM)

@@ -30,7 +30,7 @@ from capnote.fhir.review import ReviewDerived, emit_review
 from capnote.findings import Finding, has_errors
 from capnote.note import Identifier, Note
 from capnote.note_input import check_match, json_object, known_key, problem, reason_text
-from capnote.notes import Principal, delivery_view
+from capnote.notes import NoteService, Principal, delivery_view
 from capnote.plain_text import CAUTION
 from capnote.review import Review
 from capnote.rules import Context
@@ -177,6 +177,8 @@ class ReviewService:
         self.clock = clock
         # With forwarding on, each review version's Bundle goes to the outbox with it.
         self.forward = forward
+        # The session's new version when a review completes its request, or reopens it.
+        self.notes = NoteService(store, assessor, clock, forward=forward)
 
     # -- checking --------------------------------------------------------------------------
 
@@ -200,15 +202,17 @@ class ReviewService:
         result = _assessment(review, findings, session)
         if review is None or has_errors(findings) or row is None:
             return {**result, "bundle": None}
-        emitted = await self._emit(review, row, Version(1))
+        others = await self.store.reviews_of_session(row.note_key)
+        emitted = self._emit(review, row, Version(1), others)
         return {"id": review_key(review), **result, "bundle": emitted.bundle}
 
-    async def _emit(self, review: Review, session_row: VersionRow, version: Version) -> Emitted:
+    def _emit(
+        self, review: Review, session_row: VersionRow, version: Version, others: list[ReviewRow]
+    ) -> Emitted:
         derived = derived_values(review, reviewed_session(session_row))
         bundle = orjson.loads(unpack_bundle(session_row.bundle))
         roles = tuple(role for _kind, role in unpack_roles(session_row.roles))
         key = review_key(review)
-        others = await self.store.reviews_of_session(session_row.note_key)
         return emit_review(
             review,
             bundle,
@@ -216,9 +220,7 @@ class ReviewService:
             ReviewDerived(derived["logmar"], derived["iop_change_from_pre_laser_mmhg"]),
             version,
             self.assessor.policy.record,
-            reviewed_elsewhere=any(
-                r.status == "final" and r.attended and r.review_key != key for r in others
-            ),
+            reviewed_elsewhere=_completed_elsewhere(key, others),
         )
 
     # -- writing ---------------------------------------------------------------------------
@@ -237,7 +239,8 @@ class ReviewService:
     ) -> StoredReview:
         key = review_key(review)
         now = self.clock()
-        emitted = await self._emit(review, session_row, version)
+        others = await self.store.reviews_of_session(session.key)
+        emitted = self._emit(review, session_row, version, others)
         keys = KeyMaker.of_record(review.review_id, REVIEW_KIND)
         signed = status == "final" and review.seen_by is not None
         seen_by = review.seen_by
@@ -293,10 +296,20 @@ class ReviewService:
             opening_adequate=_opening_adequate(review),
         )
         audit = AuditRow(now, who.label, who.role, f"review-{action}", who.remote, who.token_id)
+        completes = status == "final" and review.attended
+        reviewed = completes or _completed_elsewhere(key, others)
+        if reviewed:
+            why = f"the review visit (review {key}) was recorded: the review is done"
+        else:
+            what = {"void": "voided", "amend": "amended", "create": "recorded"}[action]
+            why = f"the review visit (review {key}) was {what}: the review is still owed"
+        update = await self.notes.reviewed_version(session.key, reviewed, why)
         try:
-            await self.store.write_review(row, audit, forward=self.forward)
+            await self.store.write_review(row, audit, forward=self.forward, session=update)
         except DuplicateVersionError as exc:
-            raise PreconditionError("the review changed meanwhile; read it and retry") from exc
+            raise PreconditionError(
+                "the review or its session changed meanwhile; read it and retry"
+            ) from exc
         return _stored(row)
 
     async def submit(self, payload: bytes, who: Principal) -> tuple[bool, StoredReview]:
@@ -479,6 +492,12 @@ class ReviewService:
                 for r in rows
             ],
         }
+
+
+def _completed_elsewhere(key: str, others: list[ReviewRow]) -> bool:
+    """Whether another review of the session (not key), signed and attended, completed its
+    review request (the newest version of each: a voided one completes nothing)."""
+    return any(r.status == "final" and r.attended and r.review_key != key for r in others)
 
 
 def _opening_adequate(review: Review) -> bool | None:

@@ -36,6 +36,7 @@ _KINDS: dict[str, tuple[dict[str, str], str | None, str]] = {
     "create": (_REST, "create", "C"),
     "amend": (_REST, "update", "U"),
     "recount": (_REST, "update", "U"),
+    "reviewed": (_REST, "update", "U"),
     # A void stores a version that marks everything entered in error: a logical delete.
     "void": (_REST, "update", "D"),
     "review-read": (_REST, "read", "R"),

@@ -26,6 +26,7 @@ _ACTIVITY = {
     "create": ("CREATE", "create"),
     "amend": ("UPDATE", "revise"),
     "recount": ("UPDATE", "revise"),
+    "reviewed": ("UPDATE", "revise"),
     "void": ("DELETE", "delete"),
 }
 _AGENT_TYPE = {

@@ -859,9 +859,16 @@ class Store(ABC):
         when another writer stored one of these versions first."""
 
     @abstractmethod
-    async def write_all(self, steps: Sequence[tuple[str, dict[str, Any]]]) -> None:
-        """Run fixed statements (by name, with their parameters) in one transaction, all or
-        nothing; DuplicateVersionError when a unique constraint refuses a row."""
+    async def write_all(
+        self,
+        steps: Sequence[tuple[str, dict[str, Any]]],
+        versions: Sequence[NewVersion] = (),
+        *,
+        forward: bool = False,
+    ) -> None:
+        """Run fixed statements (by name, with their parameters) and store note versions (as
+        write_many) in one transaction, all or nothing; DuplicateVersionError when a unique
+        constraint refuses a row."""
 
     # -- review visit records (capnote.reviews) ---------------------------------------------
 
@@ -890,9 +897,18 @@ class Store(ABC):
         rows = await self._fetch(self._sql["reviews_of_session"], {"session": session_key})
         return [review_row(r) for r in rows]
 
-    async def write_review(self, row: ReviewRow, audit: AuditRow, *, forward: bool) -> None:
+    async def write_review(
+        self,
+        row: ReviewRow,
+        audit: AuditRow,
+        *,
+        forward: bool,
+        session: NewVersion | None = None,
+    ) -> None:
         """Add one review version, its audit entry and, when forwarding, its outbox entry,
-        all or nothing; DuplicateVersionError when another writer stored it first."""
+        with the new version of its session that the review makes (its review request
+        completed, or owed again), all or nothing; DuplicateVersionError when another
+        writer stored either first."""
         steps = [
             ("add_review", review_params(row, self._time)),
             ("add_audit", audit_params(audit, row.review_key, row.version, self._time)),
@@ -902,7 +918,7 @@ class Store(ABC):
             steps.append(
                 ("add_outbox", {"note_key": row.review_key, "version": row.version, "at": at})
             )
-        await self.write_all(steps)
+        await self.write_all(steps, () if session is None else (session,), forward=forward)
 
     # -- the clinical audit (capnote.store.audit_sql) ---------------------------------------
 

@@ -186,9 +186,17 @@ class PostgresStore(Store):
         statements = [(_WRITES[(v.row.version > 1, forward)], _write_params(v)) for v in versions]
         await self._write(statements)
 
-    async def write_all(self, steps: Sequence[tuple[str, dict[str, Any]]]) -> None:
-        """Run the named statements in one transaction (see Store)."""
-        await self._write([(self._sql[n].text, self._sql[n].params(p)) for n, p in steps])
+    async def write_all(
+        self,
+        steps: Sequence[tuple[str, dict[str, Any]]],
+        versions: Sequence[NewVersion] = (),
+        *,
+        forward: bool = False,
+    ) -> None:
+        """Run the named statements and store the versions in one transaction (see Store)."""
+        statements = [(_WRITES[(v.row.version > 1, forward)], _write_params(v)) for v in versions]
+        statements += [(self._sql[n].text, self._sql[n].params(p)) for n, p in steps]
+        await self._write(statements)
 
     async def _write(self, statements: Sequence[tuple[str, dict[str, Any]]]) -> None:
         """Run statements in one transaction (one alone needs none), driver errors mapped."""

@@ -183,9 +183,17 @@ class SqliteStore(Store):
             loop.call_soon(self._commit_waiting)
         await done
 
-    async def write_all(self, steps: Sequence[tuple[str, dict[str, Any]]]) -> None:
-        """Run the named statements all or nothing, in the next group commit (see Store)."""
-        planned = [(self._sql[name], params) for name, params in steps]
+    async def write_all(
+        self,
+        steps: Sequence[tuple[str, dict[str, Any]]],
+        versions: Sequence[NewVersion] = (),
+        *,
+        forward: bool = False,
+    ) -> None:
+        """Run the named statements and store the versions all or nothing, in the next group
+        commit (see Store)."""
+        planned = [step for v in versions for step in self._steps(v, forward=forward)]
+        planned += [(self._sql[name], params) for name, params in steps]
         loop = asyncio.get_running_loop()
         done: asyncio.Future[None] = loop.create_future()
         self._waiting.append((planned, done))
