@@ -279,6 +279,7 @@ def _check_reviews(figures: Any, notes: list[dict[str, Any]], by_session: Any) -
         got = figures.review_rates[name]
         assert (got.count, got.total) == (count, total), name
         if total:
+            # The 95% Wilson interval (Wilson 1927; Newcombe 1998 method 3), by scipy.
             ci = binomtest(count, total).proportion_ci(method="wilson")
             assert (got.low, got.high) == pytest.approx((ci.low, ci.high), abs=1e-9)
     assert (
