@@ -256,3 +256,15 @@ def test_conditional_references_reach_the_session_by_its_key(session: Assessment
     obs = of_kind(bundle, "Observation")[0]
     assert obs["basedOn"][0]["reference"].startswith("ServiceRequest?identifier=")
     assert obs["subject"]["reference"].startswith("Patient?identifier=")
+
+
+def test_a_review_of_an_unsigned_session_leaves_its_request_a_draft_until_done(
+    assessor: Assessor,
+) -> None:
+    unsigned = assessor.assess(orjson.dumps({**SESSION, "status": "draft"}), NOW)
+    assert unsigned.bundle is not None, unsigned.findings
+    assert session_request(unsigned)["resource"]["status"] == "draft"
+    pending = emitted(unsigned, review(status="draft")).bundle
+    assert of_kind(pending, "ServiceRequest")[0]["status"] == "draft"
+    done = emitted(unsigned, review()).bundle
+    assert of_kind(done, "ServiceRequest")[0]["status"] == "completed"

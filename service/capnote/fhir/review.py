@@ -292,7 +292,9 @@ def _session_request(
     done = reviewed_elsewhere or (
         review.attended and review.status == "final" and not ctx.version.voided
     )
-    resource["status"] = "completed" if done else "active"
+    # Not done: owed again, or, for a session not yet signed, still the draft it was.
+    owed = "draft" if resource.get("status") == "draft" else "active"
+    resource["status"] = "completed" if done else owed
     day = review.seen_at.date().isoformat()
     if done:
         line = "Done: the review visit was recorded."
